@@ -1,0 +1,144 @@
+"""Closed-form signal equations (pure, vectorised numpy).
+
+Broadcasting convention used throughout ``fitting``: the acquisition variable
+(TI, flip angle or TE) is a 1D array of length M that maps to the *last* axis;
+the tissue/scanner parameters broadcast together to a shape B (for example
+(N,) voxels, or scalars). The result has shape ``B + (M,)``. Times in seconds,
+angles in degrees.
+
+The extended-phase-graph CPMG model lives in :mod:`fitting.epg`.
+"""
+from __future__ import annotations
+
+import numpy as np
+from numpy.typing import ArrayLike
+
+
+def _prep(x: ArrayLike, *params: ArrayLike):
+    """x as (M,), parameters broadcast to B and given a trailing axis."""
+    x = np.asarray(x, dtype=float)
+    if x.ndim != 1:
+        x = x.reshape(-1)
+    ps = np.broadcast_arrays(*[np.asarray(p) for p in params])
+    return x, [p[..., None] for p in ps]
+
+
+def ir_signal(ti: ArrayLike, t1: ArrayLike, m0: ArrayLike, eff: ArrayLike = 1.0,
+              tr: ArrayLike = np.inf, alpha_deg: ArrayLike = 90.0) -> np.ndarray:
+    """Steady-state inversion recovery with imperfect inversion and finite TR.
+
+    One inversion pulse, a wait TI, one excitation of angle α (spoiled afterwards)
+    and recovery until the next inversion TR after the previous one. The inversion
+    efficiency ``eff`` = −cos θ_inv (1 for an ideal 180° pulse, 0 for none) turns
+    Mz into −eff·Mz. Solving the Bloch recursion for the steady state gives
+
+        S(TI) = M0·sin α · [1 − (1 + eff)·e^(−TI/T1) + eff·e^(−TR/T1)]
+                / [1 + eff·cos α·e^(−TR/T1)]
+
+    (Barral et al. 2010, Magn Reson Med 64:1057, eq. 1 family; with eff = 1,
+    α = 90° and TR → ∞ this is the textbook S = M0·(1 − 2·e^(−TI/T1)), which
+    crosses zero at TI = T1·ln 2). For fixed T1 it is linear in two constants:
+    S = a + b·e^(−TI/T1) (see :func:`ir_signal_ab`), the basis of the
+    reduced-dimension fit. The signal is signed (real); magnitude data are |S|.
+    TI, TR and T1 in seconds, α in degrees.
+    """
+    ti, (t1, m0, eff, tr, alpha) = _prep(ti, t1, m0, eff, tr, alpha_deg)
+    a = np.deg2rad(alpha)
+    e_tr = np.exp(-tr / t1)
+    num = 1.0 - (1.0 + eff) * np.exp(-ti / t1) + eff * e_tr
+    return m0 * np.sin(a) * num / (1.0 + eff * np.cos(a) * e_tr)
+
+
+def ir_ab_from_params(t1: ArrayLike, m0: ArrayLike, eff: ArrayLike = 1.0,
+                      tr: ArrayLike = np.inf, alpha_deg: ArrayLike = 90.0):
+    """The constants (a, b) of S = a + b·e^(−TI/T1) for :func:`ir_signal`'s parameters."""
+    t1, m0, eff, tr, alpha = np.broadcast_arrays(*map(np.asarray, (t1, m0, eff, tr, alpha_deg)))
+    a_ = np.deg2rad(alpha)
+    e_tr = np.exp(-tr / t1)
+    k = m0 * np.sin(a_) / (1.0 + eff * np.cos(a_) * e_tr)
+    return k * (1.0 + eff * e_tr), -k * (1.0 + eff)
+
+
+def ir_params_from_ab(t1: ArrayLike, a: ArrayLike, b: ArrayLike, tr: ArrayLike = np.inf,
+                      alpha_deg: ArrayLike = 90.0):
+    """Invert :func:`ir_ab_from_params`: (M0, eff) from (T1, a, b); exact for finite TR.
+
+    With E = e^(−TR/T1) and K = M0·sin α/(1 + eff·cos α·E):
+    K·eff = −(a + b)/(1 − E), K = −b − K·eff.
+    """
+    t1, a, b, tr, alpha = np.broadcast_arrays(*map(np.asarray, (t1, a, b, tr, alpha_deg)))
+    al = np.deg2rad(alpha)
+    e_tr = np.exp(-tr / t1)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        k_eff = -(a + b) / (1.0 - e_tr)
+        k = -b - k_eff
+        eff = k_eff / k
+        m0 = k * (1.0 + eff * np.cos(al) * e_tr) / np.sin(al)
+    return m0, eff
+
+
+def ir_signal_ab(ti: ArrayLike, t1: ArrayLike, a: ArrayLike, b: ArrayLike) -> np.ndarray:
+    """Three-parameter inversion recovery S = a + b·e^(−TI/T1).
+
+    The general form to which :func:`ir_signal` reduces for any inversion angle,
+    excitation angle and finite TR (Barral et al. 2010, Magn Reson Med 64:1057).
+    """
+    ti, (t1, a, b) = _prep(ti, t1, a, b)
+    return a + b * np.exp(-ti / t1)
+
+
+def spgr_signal(alpha_deg: ArrayLike, t1: ArrayLike, m0: ArrayLike, tr: ArrayLike,
+                b1: ArrayLike = 1.0) -> np.ndarray:
+    """Spoiled gradient echo (variable flip angle) steady state.
+
+        S(α) = M0·sin(B1·α)·(1 − E1) / (1 − cos(B1·α)·E1),  E1 = e^(−TR/T1)
+
+    B1 is the ratio of actual to nominal flip angle (Ernst & Anderson 1966,
+    Rev Sci Instrum 37:93; Deoni, Rutt & Peters 2003, Magn Reson Med 49:515).
+    Peaks at the Ernst angle arccos(E1). T2* decay at the echo time is folded into M0.
+    """
+    alpha, (t1, m0, tr, b1) = _prep(alpha_deg, t1, m0, tr, b1)
+    a = np.deg2rad(alpha) * b1
+    with np.errstate(invalid="ignore"):  # TR = inf (full recovery) gives E1 = 0 even for T1 = inf
+        e1 = np.where(np.isinf(tr), 0.0, np.exp(-tr / t1))
+    return m0 * np.sin(a) * (1.0 - e1) / (1.0 - np.cos(a) * e1)
+
+
+def ernst_angle_deg(tr: ArrayLike, t1: ArrayLike) -> np.ndarray:
+    """Ernst angle arccos(e^(−TR/T1)) in degrees (Ernst & Anderson 1966)."""
+    return np.rad2deg(np.arccos(np.exp(-np.asarray(tr, float) / np.asarray(t1, float))))
+
+
+def dam_signals(alpha_deg: ArrayLike, b1: ArrayLike, m0: ArrayLike = 1.0,
+                t1: ArrayLike = np.inf, tr: ArrayLike = np.inf) -> np.ndarray:
+    """Double-angle pair [S(α), S(2α)] of a spoiled acquisition, last axis of length 2.
+
+    With TR ≫ T1 (full recovery, the method's assumption) S(θ) = M0·sin(B1·θ), so
+    S(2α)/S(α) = 2·cos(B1·α) and B1 = arccos(S(2α)/(2·S(α)))/α
+    (Insko & Bolinger 1993, J Magn Reson A 103:82). Finite TR uses :func:`spgr_signal`.
+    """
+    alpha = float(np.asarray(alpha_deg))
+    return spgr_signal(np.array([alpha, 2.0 * alpha]), t1, m0, tr, b1)
+
+
+def dam_b1(s_alpha: ArrayLike, s_2alpha: ArrayLike, alpha_deg: float) -> np.ndarray:
+    """B1 ratio from a double-angle pair: arccos(S(2α)/(2·S(α)))/α (Insko & Bolinger 1993).
+
+    Ratios outside [−1, 1] (noise) are clipped; S(α) = 0 gives NaN.
+    """
+    s1 = np.asarray(s_alpha, float)
+    s2 = np.asarray(s_2alpha, float)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        r = np.clip(s2 / (2.0 * s1), -1.0, 1.0)
+        out = np.arccos(r) / np.deg2rad(alpha_deg)
+    return np.where(s1 > 0, out, np.nan)
+
+
+def mono_exp(te: ArrayLike, t2: ArrayLike, m0: ArrayLike, offset: ArrayLike = 0.0) -> np.ndarray:
+    """Mono-exponential decay S(TE) = M0·e^(−TE/T2) + offset.
+
+    The classic multi-echo spin-echo T2 model (``mese-mono``, optional constant
+    offset) and the T2* model of multi-echo gradient echo (``megre``) with T2 → T2*.
+    """
+    te, (t2, m0, offset) = _prep(te, t2, m0, offset)
+    return m0 * np.exp(-te / t2) + offset

@@ -1,0 +1,1 @@
+"""relaxline: relaxometry fitting pipeline."""

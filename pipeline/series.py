@@ -1,0 +1,336 @@
+"""Series discovery, validation and lazy loading (design §3).
+
+A *series* is the set of images one fit needs, in one of two forms:
+
+1. one 4D NIfTI ``X.nii[.gz]`` with a sidecar ``X.json`` whose varying key holds a
+   list with one value per volume;
+2. several 3D NIfTIs, each with its own sidecar holding a scalar for that key.
+
+Times are in seconds (BIDS), angles in degrees. Volumes are sorted by the varying
+value. Every problem is a :class:`~pipeline.errors.InputError` naming the file,
+the key, what was expected and how to fix it. Image data stay on disk behind
+nibabel's array proxies until a slab is asked for.
+"""
+from __future__ import annotations
+
+import hashlib
+import json
+import math
+import re
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any, Iterator, Sequence
+
+import numpy as np
+
+from pipeline.errors import InputError
+
+TIME_KEYS = ("InversionTime", "EchoTime", "RepetitionTime")
+ANGLE_KEYS = ("FlipAngle", "RefocusingFlipAngle")
+SCALAR_KEYS = TIME_KEYS + ANGLE_KEYS + ("MagneticFieldStrength",)
+MS_THRESHOLD_S = 30.0  # a "time" above this is almost certainly milliseconds
+AFFINE_ATOL_MM = 1e-3
+# BIDS entities that index the volumes of a split series; dropped to form the stem.
+_INDEX_ENTITY = re.compile(r"_(inv|echo|flip|part|mt)-[0-9A-Za-z]+")
+
+
+def nifti_stem(path: str | Path) -> str:
+    """File name without ``.nii`` / ``.nii.gz``."""
+    name = Path(path).name
+    for ext in (".nii.gz", ".nii"):
+        if name.endswith(ext):
+            return name[: -len(ext)]
+    return Path(name).stem
+
+
+def sidecar_path(path: str | Path) -> Path:
+    p = Path(path)
+    return p.with_name(nifti_stem(p) + ".json")
+
+
+def sha256_file(path: str | Path, chunk: int = 1 << 20) -> str:
+    h = hashlib.sha256()
+    with open(path, "rb") as fh:
+        for block in iter(lambda: fh.read(chunk), b""):
+            h.update(block)
+    return h.hexdigest()
+
+
+def read_sidecar(path: Path) -> dict[str, Any]:
+    """Read a JSON sidecar; it must hold a JSON object."""
+    if not path.is_file():
+        raise InputError(f"{path}: sidecar not found. Every NIfTI needs a JSON sidecar of the "
+                         f"same name holding its acquisition parameters (BIDS keys).")
+    try:
+        text = path.read_text(encoding="utf-8")
+        obj = json.loads(text)
+    except UnicodeDecodeError:
+        raise InputError(f"{path}: sidecar is not UTF-8 text; write it as JSON.") from None
+    except json.JSONDecodeError as exc:
+        raise InputError(f"{path}: not valid JSON (line {exc.lineno}, column {exc.colno}: "
+                         f"{exc.msg}); fix the sidecar.") from None
+    if not isinstance(obj, dict):
+        raise InputError(f"{path}: expected a JSON object of BIDS keys, got "
+                         f"{type(obj).__name__}.")
+    return obj
+
+
+def _as_number(value: Any, where: str, key: str) -> float:
+    if isinstance(value, bool) or not isinstance(value, (int, float)):
+        raise InputError(f"{where}: key '{key}' must be a number, got {value!r} "
+                         f"({type(value).__name__}).")
+    v = float(value)
+    if not math.isfinite(v):
+        raise InputError(f"{where}: key '{key}' is not finite ({value!r}); give a real value.")
+    return v
+
+
+def _check_unit(key: str, v: float, where: str, time_unit: str) -> float:
+    """Convert to seconds and reject values that look like milliseconds."""
+    if key in TIME_KEYS:
+        if time_unit == "ms":
+            v = v / 1000.0
+        elif v > MS_THRESHOLD_S:
+            raise InputError(
+                f"{where}: key '{key}' = {v:g} looks like milliseconds (BIDS times are in "
+                f"seconds; anything above {MS_THRESHOLD_S:g} s is taken as a unit mistake). "
+                f"Fix the sidecar, or pass --time-unit ms if all its times are in ms.")
+        if v < 0:
+            raise InputError(f"{where}: key '{key}' = {v:g} s is negative.")
+    return v
+
+
+@dataclass
+class Series:
+    """A validated series; image data are read lazily with :meth:`read`."""
+
+    paths: list[Path]            # NIfTI files as given (4D: one file)
+    key: str                     # varying key, e.g. "InversionTime"
+    values: np.ndarray           # varying values, sorted ascending (s or degrees)
+    shape: tuple[int, int, int]  # spatial grid
+    affine: np.ndarray
+    meta: dict[str, Any]         # scalar acquisition parameters (seconds, degrees, tesla)
+    stem: str                    # output name stem
+    is_complex: bool = False
+    _order: np.ndarray = field(default_factory=lambda: np.zeros(0, int), repr=False)
+    _images: list[Any] = field(default_factory=list, repr=False)
+
+    @property
+    def n_volumes(self) -> int:
+        return int(self.values.size)
+
+    @property
+    def n_voxels(self) -> int:
+        return int(np.prod(self.shape))
+
+    @property
+    def nbytes_float32(self) -> int:
+        return self.n_voxels * self.n_volumes * (8 if self.is_complex else 4)
+
+    def read(self, z: slice | None = None) -> np.ndarray:
+        """Volumes sorted by the varying value as ``(x, y, z, n)``.
+
+        ``z`` selects a slab of slices; only that slab is read from disk.
+        float32 (complex64 for complex data).
+        """
+        z = z or slice(0, self.shape[2])
+        dtype = np.complex64 if self.is_complex else np.float32
+        if len(self._images) == 1 and len(self.paths) == 1 and self.n_volumes > 1:
+            raw = np.asarray(self._images[0].dataobj[:, :, z, :])
+            out = raw[..., self._order].astype(dtype, copy=False)
+        else:
+            nz = len(range(*z.indices(self.shape[2])))
+            out = np.empty(self.shape[:2] + (nz, self.n_volumes), dtype)
+            for j, i in enumerate(self._order):
+                vol = np.asarray(self._images[i].dataobj[:, :, z])
+                out[..., j] = vol.reshape(self.shape[:2] + (nz,))
+        return out
+
+    def slabs(self, max_voxels: int) -> Iterator[slice]:
+        """Slabs of whole slices holding at most ``max_voxels`` voxels (at least one slice)."""
+        per_slice = self.shape[0] * self.shape[1]
+        step = max(1, max_voxels // max(per_slice, 1))
+        for z0 in range(0, self.shape[2], step):
+            yield slice(z0, min(z0 + step, self.shape[2]))
+
+    def checksums(self) -> list[dict[str, str]]:
+        out = []
+        for p in self.paths:
+            out.append({"path": str(p), "sha256": sha256_file(p)})
+            sc = sidecar_path(p)
+            if sc.is_file():
+                out.append({"path": str(sc), "sha256": sha256_file(sc)})
+        return out
+
+
+def _load_image(path: Path):
+    import nibabel as nib
+    if not path.exists():
+        raise InputError(f"{path}: file not found.")
+    if not (path.name.endswith(".nii") or path.name.endswith(".nii.gz")):
+        raise InputError(f"{path}: expected a NIfTI file ending in .nii or .nii.gz.")
+    try:
+        img = nib.load(str(path))
+        _ = img.shape
+    except Exception as exc:
+        raise InputError(f"{path}: cannot be read as NIfTI ({exc}). Check that the file is "
+                         f"complete and really NIfTI.") from None
+    return img
+
+
+def _spatial(img, path: Path) -> tuple[int, int, int]:
+    shp = tuple(int(s) for s in img.shape)
+    if len(shp) == 2:
+        shp = shp + (1,)
+    if len(shp) < 3:
+        raise InputError(f"{path}: image has shape {shp}; expected a 3D volume or 4D series.")
+    return shp[:3]  # type: ignore[return-value]
+
+
+def check_same_grid(ref_shape: Sequence[int], ref_affine: np.ndarray, img, path: Path,
+                    what: str) -> None:
+    """Raise unless ``img`` lies on the voxel grid ``(ref_shape, ref_affine)``."""
+    shp = _spatial(img, path)
+    if tuple(shp) != tuple(ref_shape):
+        raise InputError(f"{path}: {what} has grid {shp}, but the series has "
+                         f"{tuple(ref_shape)}. Maps and masks must share the series' voxel grid "
+                         f"(relaxline does not resample); resample it to the series first.")
+    if not np.allclose(img.affine, ref_affine, atol=AFFINE_ATOL_MM):
+        raise InputError(f"{path}: {what} has a different affine (voxel-to-world) from the "
+                         f"series. It must share the series' voxel grid; resample it first.")
+
+
+def read_series(inputs: Sequence[str | Path], key: str, time_unit: str = "s",
+                min_volumes: int = 1) -> Series:
+    """Validate and open a series whose volumes vary in ``key``.
+
+    Parameters
+    ----------
+    inputs : one 4D NIfTI, or several 3D NIfTIs, each with a JSON sidecar.
+    key : the varying BIDS key (``InversionTime``, ``FlipAngle``, ``EchoTime``).
+    time_unit : ``"s"`` (BIDS) or ``"ms"`` for sidecars written in milliseconds.
+    min_volumes : fewer volumes than this is an error (e.g. the model's parameter count).
+    """
+    if time_unit not in ("s", "ms"):
+        raise InputError(f"--time-unit must be 's' or 'ms', got {time_unit!r}.")
+    paths = [Path(p) for p in inputs]
+    if not paths:
+        raise InputError("no input series given.")
+    if len(set(map(str, paths))) != len(paths):
+        raise InputError("the same input file is given twice: "
+                         + ", ".join(sorted({str(p) for p in paths if paths.count(p) > 1})))
+    images = [_load_image(p) for p in paths]
+    sidecars = [read_sidecar(sidecar_path(p)) for p in paths]
+    ndims = [len(img.shape) for img in images]
+
+    if len(paths) == 1 and ndims[0] == 4 and images[0].shape[3] > 1:
+        p, img, sc = paths[0], images[0], sidecars[0]
+        n = int(img.shape[3])
+        where = str(sidecar_path(p))
+        if key not in sc:
+            raise InputError(f"{where}: missing key '{key}'. A 4D series needs '{key}' as a list "
+                             f"with one value per volume ({n} volumes).")
+        raw = sc[key]
+        if not isinstance(raw, list):
+            raise InputError(f"{where}: key '{key}' must be a list of {n} values (one per "
+                             f"volume of the 4D image), got {raw!r}.")
+        if len(raw) != n:
+            raise InputError(f"{where}: key '{key}' has {len(raw)} values but {p.name} has "
+                             f"{n} volumes; give one value per volume.")
+        values = [_check_unit(key, _as_number(v, where, key), where, time_unit) for v in raw]
+        metas = [sc]
+        shape, affine = _spatial(img, p), img.affine
+    else:
+        if any(d == 4 and img.shape[3] > 1 for d, img in zip(ndims, images)):
+            bad = [str(p) for p, d, img in zip(paths, ndims, images) if d == 4 and img.shape[3] > 1]
+            raise InputError(f"{', '.join(bad)}: a 4D image must be the only input of its series; "
+                             f"give either one 4D NIfTI or several 3D NIfTIs.")
+        shape, affine = _spatial(images[0], paths[0]), images[0].affine
+        values = []
+        for p, img, sc in zip(paths, images, sidecars):
+            where = str(sidecar_path(p))
+            check_same_grid(shape, affine, img, p, "this volume")
+            if key not in sc:
+                raise InputError(f"{where}: missing key '{key}'; each 3D volume's sidecar needs "
+                                 f"its '{key}' as a number.")
+            if isinstance(sc[key], list):
+                raise InputError(f"{where}: key '{key}' is a list, but {p.name} is a single 3D "
+                                 f"volume; give one number.")
+            values.append(_check_unit(key, _as_number(sc[key], where, key), where, time_unit))
+        metas = sidecars
+
+    vals = np.asarray(values, dtype=float)
+    if vals.size < min_volumes:
+        raise InputError(f"{paths[0]}: {vals.size} volume(s) in the series but the model needs "
+                         f"at least {min_volumes} values of '{key}'.")
+    uniq, counts = np.unique(vals, return_counts=True)
+    if np.any(counts > 1):
+        raise InputError(f"{', '.join(map(str, paths))}: duplicate '{key}' value(s) "
+                         f"{uniq[counts > 1].tolist()}; each volume needs a distinct value.")
+
+    meta = _common_meta(paths, metas, key, time_unit)
+    order = np.argsort(vals, kind="stable")
+    dt = images[0].get_data_dtype()
+    stem = _series_stem(paths)
+    return Series(paths=paths, key=key, values=vals[order], shape=shape,
+                  affine=np.asarray(affine, float), meta=meta, stem=stem,
+                  is_complex=np.issubdtype(dt, np.complexfloating),
+                  _order=order if len(paths) > 1 or ndims[0] == 4 else np.arange(1),
+                  _images=images)
+
+
+def _common_meta(paths: list[Path], metas: list[dict], key: str, time_unit: str) -> dict:
+    """Scalar acquisition parameters; they must agree across the volumes of a series."""
+    meta: dict[str, Any] = {}
+    for k in SCALAR_KEYS:
+        if k == key:
+            continue
+        seen = []
+        for p, sc in zip(paths, metas):
+            if k in sc and sc[k] is not None:
+                where = str(sidecar_path(p))
+                if isinstance(sc[k], list):
+                    raise InputError(f"{where}: key '{k}' must be a single number for this "
+                                     f"series (it varies in '{key}'), got a list.")
+                seen.append((p, _check_unit(k, _as_number(sc[k], where, k), where, time_unit)))
+        if seen:
+            v0 = seen[0][1]
+            for p, v in seen[1:]:
+                if not math.isclose(v, v0, rel_tol=1e-6, abs_tol=1e-9):
+                    raise InputError(f"{sidecar_path(p)}: key '{k}' = {v:g} differs from "
+                                     f"{v0:g} in {sidecar_path(seen[0][0])}; all volumes of a "
+                                     f"series must share it.")
+            meta[k] = v0
+    for k in ("PhantomTemperature", "Site", "Scanner"):  # optional QC context
+        if k in metas[0]:
+            meta[k] = metas[0][k]
+    return meta
+
+
+def _series_stem(paths: list[Path]) -> str:
+    if len(paths) == 1:
+        return nifti_stem(paths[0])
+    stems = {_INDEX_ENTITY.sub("", nifti_stem(p)) for p in paths}
+    if len(stems) == 1:
+        return stems.pop()
+    import os
+    prefix = os.path.commonprefix([nifti_stem(p) for p in paths]).rstrip("_-")
+    return prefix or nifti_stem(paths[0])
+
+
+def load_grid_map(path: str | Path, series_or_shape, affine: np.ndarray | None = None,
+                  what: str = "map") -> np.ndarray:
+    """Load a 3D map (B1, mask, labels) that must share the series' voxel grid.
+
+    Returns float32 (labels and masks are converted by the caller).
+    """
+    p = Path(path)
+    img = _load_image(p)
+    if isinstance(series_or_shape, Series):
+        shape, affine = series_or_shape.shape, series_or_shape.affine
+    else:
+        shape = tuple(series_or_shape)
+    if len(img.shape) > 3 and any(s > 1 for s in img.shape[3:]):
+        raise InputError(f"{p}: {what} must be a 3D image, got shape {tuple(img.shape)}.")
+    check_same_grid(shape, affine, img, p, what)
+    return np.asarray(img.dataobj, dtype=np.float32).reshape(shape)
