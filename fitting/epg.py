@@ -29,14 +29,16 @@ Implementation notes
 * After pulse n (1-based) of N, a state of order 2j+1 cannot reach F_0 before
   echo n + j, so only j ≤ N − n is propagated: at most ⌈N/2⌉ states, and a loop
   over echoes (never over voxels or states).
-* The returned echo is the component along the CPMG axis. The part of the
-  magnetisation that is longitudinal when a refocusing pulse arrives — left by an
-  excitation that is not exactly 90°, or regrown by T1 during the train — is
-  tipped onto the *perpendicular* axis and forms echoes in quadrature; being on
-  the other axis it never mixes with the CPMG component (the pulse matrices above
-  are real), and it is not included, as in the usual CPMG EPG fitting models.
-  Within this model the CPMG component is exactly what an isochromat simulation
-  projects onto the CPMG axis (tested in ``tests/test_epg.py``).
+* Longitudinal magnetisation present when a refocusing pulse arrives (left by an
+  excitation that is not exactly 90°, or regrown by T1) is tipped onto the axis
+  perpendicular to the CPMG axis as an order-0 state at the *pulse* time. Such
+  states have even orders at pulse times and hence odd orders at echo times, so
+  they never reach F_0 at an echo: the echo lies entirely on the CPMG axis, and
+  Z_0 need not be tracked (checked against isochromats in ``tests/test_epg.py``).
+* The echo on the CPMG axis is real but not always positive: with T2 of the
+  order of ESP, T1 ≫ T2 and α < 180°, late echoes can change sign (stimulated
+  pathways stored in Z outlast the spin echoes). Magnitude images record |S|,
+  which is what :func:`cpmg_echoes` returns by default (``signed=True`` gives S).
 """
 from __future__ import annotations
 
@@ -56,7 +58,8 @@ def _check(n_echoes: int, esp: float) -> tuple[int, float]:
 
 
 def _simulate(n_echoes: int, esp: float, t2: ArrayLike, t1: ArrayLike, b1: ArrayLike,
-              refocus_deg: float, excite_deg: float, m0: ArrayLike, derivs: bool):
+              refocus_deg: float, excite_deg: float, m0: ArrayLike, derivs: bool,
+              signed: bool):
     """Run the state recursion; returns S (and dS/dT2, dS/dB1 if ``derivs``)."""
     n, esp = _check(n_echoes, esp)
     t2, t1, b1, m0 = np.broadcast_arrays(*(np.asarray(p, dtype=float) for p in (t2, t1, b1, m0)))
@@ -144,6 +147,11 @@ def _simulate(n_echoes: int, esp: float, t2: ArrayLike, t1: ArrayLike, b1: Array
             gz[:, :min(m, mm)] = g_new_z[:, :mm] * e1
             gz[:, m:mm] = 0.0
 
+    if not signed:                             # magnitude; d|S| = sign(S)·dS (sign 0 taken as +)
+        neg = out < 0
+        out = np.abs(out)
+        if derivs:
+            d_out = np.where(neg, -d_out, d_out)
     s = out.T.reshape(shape + (n,))
     if not derivs:
         return s
@@ -152,7 +160,7 @@ def _simulate(n_echoes: int, esp: float, t2: ArrayLike, t1: ArrayLike, b1: Array
 
 def cpmg_echoes(n_echoes: int, esp: float, t2: ArrayLike, t1: ArrayLike, b1: ArrayLike = 1.0,
                 refocus_deg: float = 180.0, excite_deg: float = 90.0,
-                m0: ArrayLike = 1.0) -> np.ndarray:
+                m0: ArrayLike = 1.0, *, signed: bool = False) -> np.ndarray:
     """CPMG echo train by extended phase graphs.
 
     Excitation of nominal angle ``excite_deg``, then ``n_echoes`` refocusing pulses
@@ -172,29 +180,35 @@ def cpmg_echoes(n_echoes: int, esp: float, t2: ArrayLike, t1: ArrayLike, b1: Arr
     b1 : actual/nominal flip-angle ratio.
     refocus_deg, excite_deg : nominal pulse angles in degrees.
     m0 : equilibrium magnetisation (signal scale).
+    signed : if True return the signed echo S on the CPMG axis instead of |S|.
 
     Returns
     -------
     ndarray, shape B + (n_echoes,)
-        Echo amplitude along the CPMG axis (real; nonnegative when b1·excite_deg
-        is in [0°, 180°]). The quadrature echoes from longitudinal magnetisation
-        tipped by the refocusing pulses are not included (see module docstring).
+        Echo magnitude |S| (real, nonnegative), the model for magnitude images. The
+        whole echo lies on the CPMG axis (see module docstring); S itself is positive
+        except in late echoes of trains with T2 ~ ESP ≪ T1 and α < 180°, or when
+        b1·excite_deg exceeds 180°.
     """
-    return _simulate(n_echoes, esp, t2, t1, b1, refocus_deg, excite_deg, m0, derivs=False)
+    return _simulate(n_echoes, esp, t2, t1, b1, refocus_deg, excite_deg, m0, derivs=False,
+                     signed=signed)
 
 
 def cpmg_echoes_jacobian(n_echoes: int, esp: float, t2: ArrayLike, t1: ArrayLike,
                          b1: ArrayLike = 1.0, refocus_deg: float = 180.0,
-                         excite_deg: float = 90.0, m0: ArrayLike = 1.0):
+                         excite_deg: float = 90.0, m0: ArrayLike = 1.0, *,
+                         signed: bool = False):
     """Echo train and its exact derivatives with respect to T2 and B1.
 
     The derivative states d/dT2 and d/dB1 of every configuration state are carried
     through the same recursion (forward-mode differentiation: pulse matrices
     differentiated in b1, relaxation factors in T2), so they are exact to
-    rounding. dS/dM0 is S/M0.
+    rounding. dS/dM0 is S/M0. With the default ``signed=False`` S is |S| and the
+    derivatives are those of |S| (sign(S)·dS; at S = 0 the one-sided + branch).
 
     Returns
     -------
     (S, dS_dT2, dS_dB1), each of shape B + (n_echoes,); see :func:`cpmg_echoes`.
     """
-    return _simulate(n_echoes, esp, t2, t1, b1, refocus_deg, excite_deg, m0, derivs=True)
+    return _simulate(n_echoes, esp, t2, t1, b1, refocus_deg, excite_deg, m0, derivs=True,
+                     signed=signed)
