@@ -1,18 +1,70 @@
-"""`relaxline qc`: not available yet."""
+"""`relaxline qc`: vial statistics against reference values, tolerances and an HTML report."""
 from __future__ import annotations
 
 import argparse
 
-from pipeline.errors import InputError
+HELP = "Vial statistics against reference values, tolerances, figures and an HTML report"
+DESCRIPTION = """\
+Statistics of each map (T1map, T2map, T2starmap, TB1map found in MAPS_DIR by their BIDS
+suffixes) inside each labelled vial, compared with the reference table corrected to the
+phantom temperature, classified against tolerances (pass / warn / fail).
 
-HELP = "Vial statistics against reference values, tolerances and an HTML report (not available yet)"
-PASSTHROUGH = True
+Writes OUT/roi_stats.tsv, OUT/figures/*.png and OUT/report.html (self-contained).
+Voxels whose fit is not usable (fit-status mask) are excluded and counted.
+
+Temperature: --temperature, else PhantomTemperature in the map or source-series
+sidecars, else `temperature` in --config; without one, temperature-dependent reference
+values are used uncorrected and the report says so.
+
+Without --reference (scan sessions) only statistics are written; status is n/a.
+Exit status: 0 all pass/warn/n-a, 1 any vial fails, 2 bad input (e.g. label map on
+another grid).
+
+For quality assurance and research; not a medical device. Local codes, QA procedures
+and the responsible licensed physicist take precedence."""
 
 
 def add_arguments(p: argparse.ArgumentParser) -> None:
-    p.add_argument("args", nargs="*", help="MAPS_DIR --labels F --reference F.tsv --out DIR")
+    p.add_argument("maps_dir", metavar="MAPS_DIR", help="folder of maps written by `relaxline fit`")
+    p.add_argument("--labels", metavar="F", required=True,
+                   help="label map (NIfTI, same grid as the maps; 0 = background)")
+    p.add_argument("--reference", metavar="F.tsv",
+                   help="reference table (TSV: label, name, T1, T2, T1_sd, T2_sd, temperature, "
+                        "field, T1_coef, T2_coef); omit for scan sessions")
+    p.add_argument("--out", metavar="DIR", required=True, help="output folder")
+    p.add_argument("--temperature", metavar="C", type=float,
+                   help="phantom temperature in °C (overrides the sidecars)")
+    p.add_argument("--session", metavar="S", help="session label (default: the ses- entity)")
+    p.add_argument("--config", metavar="F.yaml",
+                   help="QC config: tolerances per map/vial, fallback temperature "
+                        "(default: illustrative built-in tolerances; see "
+                        "sample_config/tolerances.yaml)")
+    p.add_argument("--erode", metavar="MM", type=float, default=0.0,
+                   help="shrink each vial by this margin in mm before statistics (partial "
+                        "volume at the walls); default 0")
+    p.add_argument("--no-figures", action="store_true",
+                   help="skip figures (the report then holds the table only)")
 
 
 def run(args: argparse.Namespace) -> int:
-    raise InputError("`relaxline qc` is not available in this version yet; "
-                     "it lands with a later release of relaxline.")
+    import math
+
+    from pipeline.errors import InputError
+    from pipeline.qcjob import labels_from_file, run_qc
+
+    if args.temperature is not None and not math.isfinite(args.temperature):
+        raise InputError(f"--temperature must be a finite number in °C, got {args.temperature}.")
+    if not math.isfinite(args.erode) or args.erode < 0:
+        raise InputError(f"--erode must be a non-negative margin in mm, got {args.erode}.")
+    result = run_qc(args.maps_dir, args.out, labels_from_file(args.labels),
+                    reference_path=args.reference, config=args.config,
+                    temperature=args.temperature, session=args.session,
+                    erode_mm=args.erode, figures=not args.no_figures)
+    t = result.table
+    counts = t["status"].value_counts().to_dict()
+    summary = ", ".join(f"{counts.get(k, 0)} {k}" for k in ("pass", "warn", "fail", "n/a")
+                        if counts.get(k))
+    print(f"relaxline qc: {len(t)} vial/map rows ({summary}); wrote {args.out}/roi_stats.tsv")
+    for w in result.warnings:
+        print(f"relaxline qc: warning: {w}")
+    return result.exit_code

@@ -1,0 +1,329 @@
+"""Glue for `relaxline qc`: find maps, load them, run the qc layer, write outputs atomically.
+
+The qc layer (``qc.*``) works on arrays and tables; this module does the file handling:
+discovering ``<stem>_<suffix>.nii.gz`` maps by their BIDS suffixes, reading sidecars,
+resolving the phantom temperature, reading the source series for signal curves and
+background noise, and writing ``roi_stats.tsv``, ``figures/*.png`` and ``report.html``.
+
+The label map comes from a :data:`LabelSource` callable, so a vial map can be read from a
+file (:func:`labels_from_file`) or placed automatically from a layout by another function.
+"""
+from __future__ import annotations
+
+import json
+import math
+import re
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any, Callable
+
+import numpy as np
+import pandas as pd
+
+from pipeline.errors import EXIT_OK, EXIT_QC_FAIL, InputError
+from pipeline.series import check_same_grid, load_grid_map
+
+QC_MAPS = ("T1map", "T2map", "T2starmap", "TB1map")
+ALL_MAPS = QC_MAPS + ("M0map",)
+TSV_COLUMNS = ["session", "series", "map", "label", "name", "n_voxels", "n_excluded", "mean",
+               "sd", "median", "iqr", "cv_pct", "median_stderr", "units", "reference",
+               "reference_sd", "reference_temperature", "temperature", "temperature_source",
+               "reference_at_temperature", "bias_pct", "warn_pct", "tolerance_pct", "status",
+               "note"]
+_MAP_NAME = re.compile(r"^(?P<stem>.+?)_(?P<suffix>" + "|".join(ALL_MAPS) + r")\.nii(\.gz)?$")
+_SESSION = re.compile(r"(?:^|_)ses-([0-9A-Za-z]+)")
+
+
+@dataclass
+class MapFile:
+    """One parameter map found in MAPS_DIR with its sidecar and companion files."""
+
+    stem: str
+    suffix: str
+    path: Path
+    sidecar: dict[str, Any]
+    status_path: Path | None = None
+    stderr_path: Path | None = None
+    _img: Any = field(default=None, repr=False)
+
+    @property
+    def image(self):
+        if self._img is None:
+            import nibabel as nib
+            try:
+                self._img = nib.load(str(self.path))
+                _ = self._img.shape
+            except Exception as exc:
+                raise InputError(f"{self.path}: cannot be read as NIfTI ({exc}).") from None
+        return self._img
+
+    @property
+    def shape(self) -> tuple[int, ...]:
+        return tuple(int(s) for s in self.image.shape[:3])
+
+    @property
+    def affine(self) -> np.ndarray:
+        return np.asarray(self.image.affine, float)
+
+    @property
+    def voxel_size(self) -> tuple[float, ...]:
+        return tuple(float(z) for z in self.image.header.get_zooms()[:3])
+
+    def data(self) -> np.ndarray:
+        arr = np.asarray(self.image.dataobj, dtype=np.float32)
+        if arr.ndim > 3:
+            if any(s > 1 for s in arr.shape[3:]):
+                raise InputError(f"{self.path}: a parameter map must be 3D, got shape "
+                                 f"{arr.shape}.")
+            arr = arr.reshape(arr.shape[:3])
+        return arr.reshape(self.shape)
+
+    def companion(self, path: Path | None, what: str, dtype=np.float32) -> np.ndarray | None:
+        if path is None:
+            return None
+        import nibabel as nib
+        img = nib.load(str(path))
+        check_same_grid(self.shape, self.affine, img, path, what)
+        return np.asarray(img.dataobj).astype(dtype).reshape(self.shape)
+
+
+LabelSource = Callable[[MapFile], np.ndarray]
+"""Returns the integer label map on a map's grid (raises InputError when impossible)."""
+
+
+def _read_json(path: Path) -> dict[str, Any]:
+    try:
+        obj = json.loads(path.read_text(encoding="utf-8"))
+    except (OSError, UnicodeDecodeError, json.JSONDecodeError) as exc:
+        raise InputError(f"{path}: cannot read the map's JSON sidecar ({exc}); rerun "
+                         "`relaxline fit` to rewrite it.") from None
+    if not isinstance(obj, dict):
+        raise InputError(f"{path}: sidecar must hold a JSON object.")
+    return obj
+
+
+def discover_maps(maps_dir: str | Path) -> list[MapFile]:
+    """Parameter maps in ``maps_dir`` (``<stem>_<suffix>.nii[.gz]``, no ``desc-`` entity)."""
+    d = Path(maps_dir)
+    if not d.is_dir():
+        raise InputError(f"{d}: maps folder not found (MAPS_DIR is the --out folder of "
+                         "`relaxline fit`).")
+    found = []
+    for p in sorted(d.iterdir()):
+        m = _MAP_NAME.match(p.name)
+        if not m or "_desc-" in p.name:
+            continue
+        stem, suffix = m.group("stem"), m.group("suffix")
+        side = p.with_name(p.name.split(".nii")[0] + ".json")
+        sidecar = _read_json(side) if side.is_file() else {}
+        status = next((q for q in (d / f"{stem}_desc-fitstatus_mask.nii.gz",
+                                   d / f"{stem}_desc-fitstatus_mask.nii") if q.is_file()), None)
+        stderr = next((q for q in (d / f"{stem}_desc-stderr_{suffix}.nii.gz",
+                                   d / f"{stem}_desc-stderr_{suffix}.nii") if q.is_file()), None)
+        found.append(MapFile(stem, suffix, p, sidecar, status, stderr))
+    if not any(f.suffix in QC_MAPS for f in found):
+        raise InputError(f"{d}: no parameter maps found; expected files named "
+                         f"<stem>_{{{','.join(QC_MAPS)}}}.nii.gz as written by `relaxline fit`.")
+    return found
+
+
+def session_of(stem: str) -> str:
+    """The BIDS ``ses-`` label of a stem, or '' when it has none."""
+    m = _SESSION.search(stem)
+    return m.group(1) if m else ""
+
+
+def labels_from_file(path: str | Path) -> LabelSource:
+    """A label source reading one label map that must lie on every map's grid."""
+    p = Path(path)
+    cache: dict[str, np.ndarray] = {}
+
+    def source(mf: MapFile) -> np.ndarray:
+        key = f"{mf.shape}|{mf.affine.round(4).tolist()}"
+        if key not in cache:
+            arr = load_grid_map(p, mf.shape, mf.affine, what="label map")
+            from fitting.errors import RelaxlineError
+            from qc.roi import label_values
+            try:
+                label_values(arr)
+            except RelaxlineError as exc:
+                raise InputError(f"{p}: {exc}") from None
+            cache[key] = arr.astype(np.int64)
+        return cache[key]
+
+    return source
+
+
+def source_sidecars(mf: MapFile) -> list[dict[str, Any]]:
+    """JSON sidecars of the series a map was fitted from (those that still exist)."""
+    out = []
+    for src in mf.sidecar.get("Sources") or []:
+        p = Path(src.get("path", "")) if isinstance(src, dict) else Path(str(src))
+        if p.suffix == ".json" and p.is_file():
+            try:
+                out.append(_read_json(p))
+            except InputError:
+                continue
+    return out
+
+
+def resolve_temperature(option: float | None, maps: list[MapFile],
+                        fallback: float | None) -> tuple[float | None, str]:
+    """Phantom temperature (°C) and where it came from: option, sidecars, config, none."""
+    if option is not None:
+        return float(option), "--temperature"
+    for mf in maps:
+        t = mf.sidecar.get("PhantomTemperature")
+        if isinstance(t, (int, float)) and not isinstance(t, bool) and math.isfinite(t):
+            return float(t), f"sidecar {mf.path.name}"
+    for mf in maps:
+        for sc in source_sidecars(mf):
+            t = sc.get("PhantomTemperature")
+            if isinstance(t, (int, float)) and not isinstance(t, bool) and math.isfinite(t):
+                return float(t), "source series sidecar"
+    if fallback is not None:
+        return float(fallback), "config"
+    return None, "none"
+
+
+def field_strength(maps: list[MapFile]) -> float | None:
+    for mf in maps:
+        for sc in [mf.sidecar, *source_sidecars(mf)]:
+            b0 = sc.get("MagneticFieldStrength")
+            if isinstance(b0, (int, float)) and not isinstance(b0, bool):
+                return float(b0)
+    return None
+
+
+@dataclass
+class QCResult:
+    table: pd.DataFrame
+    warnings: list[str]
+    maps: list[MapFile]
+    labels: dict[str, np.ndarray]          # stem -> label map used (after erosion)
+    temperatures: dict[str, tuple[float | None, str]]
+
+    @property
+    def exit_code(self) -> int:
+        return EXIT_QC_FAIL if (self.table["status"] == "fail").any() else EXIT_OK
+
+
+def compute(maps: list[MapFile], label_source: LabelSource, reference=None, tolerances=None,
+            temperature: float | None = None, session: str | None = None,
+            erode_mm: float = 0.0) -> QCResult:
+    """ROI statistics, reference comparison and status for every map (no writing)."""
+    from qc.reference import MAP_QUANTITY
+    from qc.roi import erode_labels, roi_stats
+    from qc.tolerance import load_tolerances
+
+    tol = tolerances if tolerances is not None else load_tolerances(None)
+    warnings: list[str] = []
+    rows = []
+    labels_used: dict[str, np.ndarray] = {}
+    temps: dict[str, tuple[float | None, str]] = {}
+    by_stem: dict[str, list[MapFile]] = {}
+    for mf in maps:
+        by_stem.setdefault(mf.stem, []).append(mf)
+    names = reference.names() if reference is not None else {}
+    for stem, group in by_stem.items():
+        t, t_src = resolve_temperature(temperature, group, tol.temperature)
+        temps[stem] = (t, t_src)
+        ses = session if session else session_of(stem)
+        if reference is not None:
+            w = reference.field_warning(field_strength(group))
+            if w:
+                warnings.append(f"{stem}: {w}")
+        for mf in group:
+            if mf.suffix not in QC_MAPS:
+                continue
+            labels = label_source(mf)
+            if erode_mm > 0:
+                labels = erode_labels(labels, erode_mm, mf.voxel_size)
+            labels_used.setdefault(stem, labels)
+            status_map = mf.companion(mf.status_path, "fit-status mask", np.uint8)
+            if status_map is None:
+                warnings.append(f"{stem}: no fit-status mask ({stem}_desc-fitstatus_mask.nii.gz)"
+                                f"; only non-finite voxels were excluded from {mf.suffix}.")
+            from qc.roi import label_values
+            wanted = sorted(set(label_values(labels)) |
+                            set(reference.labels if reference is not None else []))
+            stats = roi_stats(mf.data(), labels, status_map, only=wanted)
+            stderr = mf.companion(mf.stderr_path, "standard-error map")
+            stats["median_stderr"] = np.nan
+            if stderr is not None:
+                from fitting.status import USABLE
+                keep = np.isfinite(stderr) if status_map is None else \
+                    np.isfinite(stderr) & np.isin(status_map, USABLE)
+                for i, lab in enumerate(stats["label"]):
+                    v = stderr[(labels == lab) & keep]
+                    stats.loc[i, "median_stderr"] = float(np.median(v)) if v.size else np.nan
+            quantity = MAP_QUANTITY.get(mf.suffix)
+            if reference is not None and quantity and reference.has(quantity):
+                ref = reference.at_temperature(quantity, t).drop(columns="name")
+                if t is None and reference.needs_temperature(quantity):
+                    warnings.append(
+                        f"{stem} {mf.suffix}: no phantom temperature (no --temperature, no "
+                        "PhantomTemperature in the sidecars, none in the config); the "
+                        "temperature-dependent reference values were used uncorrected at "
+                        "their own temperature. Give --temperature to correct them.")
+            else:
+                ref = pd.DataFrame({"label": stats["label"]})
+                for c in ("reference", "reference_sd", "reference_temperature",
+                          "reference_at_temperature"):
+                    ref[c] = np.nan
+                ref["reference_note"] = ""
+            df = stats.merge(ref, on="label", how="left")
+            df["session"], df["series"], df["map"] = ses, stem, mf.suffix
+            df["name"] = [names.get(int(v), f"label {int(v)}") for v in df["label"]]
+            df["units"] = mf.sidecar.get("Units", "")
+            df["temperature"] = t if t is not None else np.nan
+            df["temperature_source"] = t_src
+            refT = df["reference_at_temperature"].astype(float)
+            df["bias_pct"] = 100.0 * (df["mean"] - refT) / refT
+            lims = [tol.limits(mf.suffix, int(v)) for v in df["label"]]
+            has_ref = np.isfinite(refT)
+            df["warn_pct"] = [w if h else np.nan for (w, _), h in zip(lims, has_ref)]
+            df["tolerance_pct"] = [f if h else np.nan for (_, f), h in zip(lims, has_ref)]
+            df["status"] = [tol.status(b, mf.suffix, int(v), bool(h))
+                            for b, v, h in zip(df["bias_pct"], df["label"], has_ref)]
+            notes = []
+            for r in df.itertuples():
+                n = [r.reference_note] if isinstance(r.reference_note, str) and \
+                    r.reference_note else []
+                if r.n_voxels == 0:
+                    n.append("no usable voxel in this vial")
+                elif r.n_excluded > 0:
+                    n.append(f"{r.n_excluded} voxel(s) excluded (fit not usable)")
+                notes.append("; ".join(n))
+            df["note"] = notes
+            rows.append(df)
+            empty = df[df["n_voxels"] == 0]["label"].tolist()
+            if empty:
+                warnings.append(f"{stem} {mf.suffix}: no usable voxel in label(s) {empty}"
+                                + (" after erosion" if erode_mm > 0 else "") + ".")
+    table = pd.concat(rows, ignore_index=True)[TSV_COLUMNS] if rows else \
+        pd.DataFrame(columns=TSV_COLUMNS)
+    if reference is not None:
+        extra = sorted(set(table["label"]) - set(reference.labels))
+        if extra:
+            warnings.append(f"label(s) {extra} of the label map have no row in "
+                            f"{reference.source}; they are reported without reference.")
+    return QCResult(table, list(dict.fromkeys(warnings)), maps, labels_used, temps)
+
+
+def run_qc(maps_dir: str | Path, out_dir: str | Path, label_source: LabelSource,
+           reference_path: str | Path | None = None, config: Any = None,
+           temperature: float | None = None, session: str | None = None,
+           erode_mm: float = 0.0, figures: bool = True) -> QCResult:
+    """Full QC of one maps folder: compute, then write roi_stats.tsv, figures and report."""
+    from pipeline.outputs import atomic_write_tsv, ensure_dir
+    from qc.reference import Reference
+    from qc.tolerance import load_tolerances
+
+    maps = discover_maps(maps_dir)
+    reference = Reference.load(reference_path) if reference_path is not None else None
+    tol = load_tolerances(config)
+    result = compute(maps, label_source, reference, tol, temperature, session, erode_mm)
+    out = ensure_dir(out_dir)
+    atomic_write_tsv(out / "roi_stats.tsv", result.table)
+    return result

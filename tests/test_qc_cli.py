@@ -1,0 +1,155 @@
+"""`relaxline qc` end to end on constructed maps (known values written with nibabel)."""
+from __future__ import annotations
+
+import json
+import re
+from html.parser import HTMLParser
+from pathlib import Path
+
+import nibabel as nib
+import numpy as np
+import pandas as pd
+import pytest
+
+from fitting import status
+from pipeline.cli import main
+
+AFFINE = np.diag([1.0, 1.0, 3.0, 1.0])
+SHAPE = (16, 16, 2)
+T1_TRUE = {1: 1.20, 2: 0.60, 3: 0.30}   # s, invented vials
+T2_TRUE = {1: 0.12, 2: 0.06, 3: 0.04}
+
+
+def _labels() -> np.ndarray:
+    lab = np.zeros(SHAPE, np.int16)
+    lab[2:6, 2:6] = 1
+    lab[9:13, 2:6] = 2
+    lab[5:10, 9:14] = 3
+    return lab
+
+
+def _write(path: Path, arr: np.ndarray, sidecar: dict | None = None,
+           affine: np.ndarray = AFFINE) -> None:
+    nib.save(nib.Nifti1Image(arr, affine), str(path))
+    if sidecar is not None:
+        path.with_name(path.name.replace(".nii.gz", ".json")).write_text(json.dumps(sidecar))
+
+
+def make_maps(d: Path, stem: str = "sub-phantom_ses-20260101_IR", scale: dict | None = None,
+              temperature: float | None = 22.0, seed: int = 1) -> dict:
+    """T1map/T2map with known vial values (× ``scale[label]``), failed voxels, status mask."""
+    d.mkdir(parents=True, exist_ok=True)
+    rng = np.random.default_rng(seed)
+    lab = _labels()
+    scale = scale or {}
+    t1 = np.full(SHAPE, np.nan, np.float32)
+    t2 = np.full(SHAPE, np.nan, np.float32)
+    for v in (1, 2, 3):
+        m = lab == v
+        t1[m] = T1_TRUE[v] * scale.get(v, 1.0) * (1 + 0.01 * rng.standard_normal(m.sum()))
+        t2[m] = T2_TRUE[v] * (1 + 0.01 * rng.standard_normal(m.sum()))
+    st = np.where(lab > 0, status.OK, status.OUTSIDE).astype(np.uint8)
+    st[3, 3, 0] = status.FAILED
+    t1[3, 3, 0] = 55.0          # garbage in a failed voxel must not reach the statistics
+    st[10, 3, 1] = status.AT_BOUND
+    side = {"Units": "s", "Model": "ir", "Engine": "fast", "Options": {},
+            "RelaxlineVersion": "test", "Sources": []}
+    if temperature is not None:
+        side["PhantomTemperature"] = temperature
+    _write(d / f"{stem}_T1map.nii.gz", t1, side)
+    _write(d / f"{stem}_T2map.nii.gz", t2, {**side, "Model": "mese-mono"})
+    _write(d / f"{stem}_desc-fitstatus_mask.nii.gz", st, {"Units": "code"})
+    return {"labels": lab, "T1": t1, "status": st}
+
+
+REF = ("label\tname\tT1\tT2\tT1_sd\tT2_sd\ttemperature\tfield\tT1_coef\tT2_coef\n"
+       "1\tdemo vial one\t1.20\t0.12\t0.01\t0.002\t22\t3\t0.01\t\n"
+       "2\tdemo vial two\t0.60\t0.06\t0.01\t0.002\t22\t3\t0.01\t\n"
+       "3\tdemo vial three\t0.30\t0.04\t0.01\t0.002\t22\t3\t0.01\t\n")
+
+
+@pytest.fixture
+def case(tmp_path: Path):
+    def build(**kw):
+        maps = tmp_path / "maps"
+        info = make_maps(maps, **kw)
+        lab_path = tmp_path / "labels.nii.gz"
+        _write(lab_path, info["labels"])
+        ref = tmp_path / "reference.tsv"
+        ref.write_text(REF)
+        return maps, lab_path, ref, tmp_path / "qc", info
+    return build
+
+
+def _qc(maps, lab, ref, out, *extra) -> int:
+    args = ["qc", str(maps), "--labels", str(lab), "--out", str(out), "--no-figures", *extra]
+    if ref is not None:
+        args += ["--reference", str(ref)]
+    return main(args)
+
+
+def test_pass_writes_table_with_contract_columns(case):
+    maps, lab, ref, out, info = case()
+    assert _qc(maps, lab, ref, out) == 0
+    df = pd.read_csv(out / "roi_stats.tsv", sep="\t", dtype={"session": str})
+    for col in ("session, series, map, label, name, n_voxels, mean, sd, median, iqr, cv_pct, "
+                "reference, reference_at_temperature, bias_pct, tolerance_pct, status").split(", "):
+        assert col in df.columns
+    assert set(df["status"]) == {"pass"}
+    assert set(df["session"]) == {"20260101"} and set(df["map"]) == {"T1map", "T2map"}
+    r = df[(df["map"] == "T1map") & (df["label"] == 1)].iloc[0]
+    keep = (info["labels"] == 1) & np.isin(info["status"], status.USABLE)
+    assert r.n_excluded == 1 and r.n_voxels == keep.sum()
+    assert r["mean"] == pytest.approx(info["T1"][keep].mean(), rel=1e-5)
+    assert r.temperature == 22 and r.temperature_source.startswith("sidecar")
+
+
+def test_fail_exit_1_and_temperature_correction(case):
+    maps, lab, ref, out, _ = case(scale={2: 1.2})          # vial 2 reads 20 % long
+    assert _qc(maps, lab, ref, out) == 1
+    df = pd.read_csv(out / "roi_stats.tsv", sep="\t", dtype={"session": str})
+    t1 = df[df["map"] == "T1map"].set_index("label")
+    assert t1.loc[2, "status"] == "fail" and t1.loc[1, "status"] == "pass"
+    # --temperature overrides the sidecar; the coefficient makes vial 1 need 1.2·(1+0.01·5)
+    assert _qc(maps, lab, ref, out, "--temperature", "27") == 1
+    df = pd.read_csv(out / "roi_stats.tsv", sep="\t", dtype={"session": str})
+    r = df[(df["map"] == "T1map") & (df["label"] == 1)].iloc[0]
+    assert r.reference_at_temperature == pytest.approx(1.20 * 1.05, rel=1e-6)
+    assert r.temperature_source == "--temperature"
+    assert r.bias_pct == pytest.approx(100 * (r["mean"] / (1.26) - 1), rel=1e-4)
+
+
+def test_missing_temperature_warns(case, capsys):
+    maps, lab, ref, out, _ = case(temperature=None)
+    assert _qc(maps, lab, ref, out) == 0
+    assert "no phantom temperature" in capsys.readouterr().out
+    df = pd.read_csv(out / "roi_stats.tsv", sep="\t", dtype={"session": str})
+    t1 = df[df["map"] == "T1map"]
+    assert t1["note"].str.contains("no phantom temperature").all()
+    assert (t1["reference_at_temperature"] == t1["reference"]).all()
+    # T2 has no coefficient in this table: nothing to correct, nothing flagged
+    assert not df[df["map"] == "T2map"]["note"].fillna("").str.contains("temperature").any()
+
+
+def test_scan_session_without_reference(case):
+    maps, lab, _, out, _ = case(scale={2: 1.5})
+    assert _qc(maps, lab, None, out, "--session", "scan01") == 0
+    df = pd.read_csv(out / "roi_stats.tsv", sep="\t", keep_default_na=False)
+    assert set(df["status"]) == {"n/a"} and set(df["session"]) == {"scan01"}
+
+
+def test_label_map_on_other_grid_exit_2(case, capsys):
+    maps, lab, ref, out, info = case()
+    other = lab.with_name("other.nii.gz")
+    _write(other, info["labels"], affine=np.diag([2.0, 1.0, 3.0, 1.0]))
+    assert _qc(maps, other, ref, out) == 2
+    err = capsys.readouterr().err
+    assert "label map" in err and "grid" in err or "affine" in err
+    assert not (out / "roi_stats.tsv").exists()
+
+
+def test_bad_reference_exit_2(case, capsys):
+    maps, lab, ref, out, _ = case()
+    ref.write_text(REF.replace("0.60", "fast"))
+    assert _qc(maps, lab, ref, out) == 2
+    assert "not a number" in capsys.readouterr().err
