@@ -1,18 +1,47 @@
-"""`relaxline simulate`: not available yet."""
+"""`relaxline simulate`: write demo sessions of the invented relaxline demo phantom."""
 from __future__ import annotations
 
 import argparse
 
-from pipeline.errors import InputError
+HELP = "Write demo sessions of the invented relaxline demo phantom as NIfTI series"
+DESCRIPTION = """\
+Simulate sessions of the relaxline demo phantom (an INVENTED phantom: 12 gel vials,
+T1 0.1-2.5 s, T2 0.01-0.6 s, in a water-filled cylinder) as BIDS-like NIfTI series:
+OUTDIR/sub-relaxlinedemo/ses-<date>/anat/ with _IRT1, _VFA, _flip-1/2_TB1DAM, _MESE,
+_MEGRE series, a vial label map (_dseg), and OUTDIR/phantom/ with reference.tsv,
+layout.tsv and the per-session truth (truth_ses-<date>.tsv/.json, true B1 map).
 
-HELP = "Write demo phantom sessions (invented phantom) as NIfTI series (not available yet)"
-PASSTHROUGH = True
+Sessions differ by phantom temperature, a small phantom motion and an optional drift.
+Noise is complex Gaussian (magnitude stored: Rician); sigma = largest noise-free
+magnitude of the series / SNR. The same options give byte-identical files.
+Files of the same names in OUTDIR are replaced; nothing else there is touched."""
 
 
 def add_arguments(p: argparse.ArgumentParser) -> None:
-    p.add_argument("args", nargs="*", help="OUTDIR [--sessions N] [--seed K] [--snr S]")
+    p.add_argument("outdir", metavar="OUTDIR", help="folder to write the sessions into")
+    p.add_argument("--sessions", type=int, default=3, help="number of sessions (default 3)")
+    p.add_argument("--seed", type=int, default=0, help="random seed (default 0)")
+    p.add_argument("--snr", type=float, default=100.0,
+                   help="peak signal / noise sigma per series (default 100; inf = no noise)")
+    p.add_argument("--drift", type=float, default=0.0, metavar="PCT",
+                   help="vial T1/T2 drift in %% per session after the first (default 0)")
+    p.add_argument("--slices", type=int, default=3, help="slices of 5 mm (default 3)")
+    p.add_argument("--matrix", type=int, default=80,
+                   help="in-plane matrix over a 200 mm field of view (default 80: 2.5 mm)")
 
 
 def run(args: argparse.Namespace) -> int:
-    raise InputError("`relaxline simulate` is not available in this version yet; "
-                     "it lands with a later release of relaxline.")
+    import time
+
+    from pipeline.progress import Progress
+    from pipeline.simulate import SERIES, SimOptions, simulate
+
+    opts = SimOptions(sessions=args.sessions, seed=args.seed, snr=args.snr,
+                      drift_pct=args.drift, slices=args.slices, matrix=args.matrix)
+    opts.validate()
+    t0 = time.monotonic()
+    files = simulate(args.outdir, opts,
+                     progress=Progress(opts.sessions * len(SERIES), "simulate"))
+    print(f"relaxline simulate: wrote {opts.sessions} session(s), {len(files)} files to "
+          f"{args.outdir} in {time.monotonic() - t0:.1f} s")
+    return 0

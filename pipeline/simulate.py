@@ -1,0 +1,333 @@
+"""Demo data: simulated sessions of the invented relaxline demo phantom.
+
+Each session is a BIDS-like folder ``OUTDIR/sub-relaxlinedemo/ses-<date>/anat/``
+holding one series per model in the design §3 input form (inversion recovery,
+variable flip angle, double angle, multi-echo spin echo, multi-echo gradient echo),
+a vial label map (``_dseg``) on the scan grid, and under ``OUTDIR/phantom/`` the
+reference table, the layout and the per-session ground truth.
+
+Physics
+-------
+* Signals come from the forward functions of :mod:`fitting.signals` and
+  :func:`fitting.epg.cpmg_echoes`; no signal equation is written here.
+* One smooth B1 field (ratio of actual to nominal flip angle, about 0.85–1.23
+  over the phantom) scales every excitation and refocusing angle of a session.
+  The inversion pulse is taken as adiabatic (B1-insensitive) with an efficiency
+  of 0.92–0.96 drawn per session.
+* Sessions differ by phantom temperature (reference ± 2 °C; T1 and T2 follow the
+  reference table's coefficients), an optional linear drift of the vial T1 and T2
+  (``drift_pct`` per session after the first), and a small rigid motion of the
+  phantom (≤ 3 mm, ≤ 3°) that the label map follows.
+* Noise: complex Gaussian of standard deviation σ on the real and imaginary parts,
+  magnitude stored, so magnitudes are Rician (Rice 1944; Gudbjartsson & Patz 1995,
+  Magn Reson Med 34:910) and the air around the phantom is Rayleigh. σ is set per
+  series as (largest noise-free magnitude in the series)/SNR and is recorded in
+  each sidecar as ``SimulationNoiseSigma``. SNR = inf gives noise-free images.
+
+Determinism: the same options give the same bytes. Every session and series draws
+from its own ``numpy.random.SeedSequence(seed, spawn_key=(session, stream))``, so
+session k does not depend on how many sessions are requested.
+
+Writing policy: files are written atomically into OUTDIR; existing files of the
+same names are replaced, nothing else in OUTDIR is touched or deleted.
+"""
+from __future__ import annotations
+
+import datetime as _dt
+import math
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Callable
+
+import numpy as np
+
+from pipeline import phantom
+from pipeline.errors import InputError
+from pipeline.outputs import (atomic_write_json, atomic_write_nifti, atomic_write_tsv,
+                              ensure_dir, package_version)
+
+FOV_MM = 200.0
+SLICE_MM = 5.0
+SITE = "northfield-lab"
+SCANNER = "bay2"
+FIRST_SESSION = _dt.date(2026, 11, 1)
+
+# Protocol (times in s, angles in degrees).
+IR_TI = [0.035, 0.07, 0.12, 0.2, 0.3, 0.45, 0.65, 0.9, 1.3, 1.9]
+IR_TR = 2.5                 # finite: the long-T1 vials do not recover between inversions
+VFA_FLIPS = [12.0, 2.0, 25.0, 4.0, 18.0, 8.0]  # acquisition order (not sorted on purpose)
+VFA_TR = 0.015
+DAM_ALPHA = 60.0
+DAM_TR = 10.0
+MESE_ECHOES = 32
+MESE_ESP = 0.010
+MESE_TR = 10.0              # ≥ 4·T1 of every compartment: full recovery assumed
+MEGRE_TE = [0.003, 0.008, 0.015, 0.025, 0.040, 0.060]
+MEGRE_FLIP = 20.0
+MEGRE_TR = 0.08
+
+# Independent random streams inside a session (order fixed: part of the output contract).
+_STREAMS = ("geometry", "IRT1", "VFA", "TB1DAM", "MESE", "MEGRE")
+SERIES = ("IRT1", "VFA", "TB1DAM", "MESE", "MEGRE")
+
+LIMITS = {"sessions": (1, 60), "slices": (1, 64), "matrix": (40, 512)}
+
+
+@dataclass(frozen=True)
+class SimOptions:
+    """Options of ``relaxline simulate`` (see the command's help)."""
+
+    sessions: int = 3
+    seed: int = 0
+    snr: float = 100.0
+    drift_pct: float = 0.0
+    slices: int = 3
+    matrix: int = 80
+
+    def validate(self) -> None:
+        for name, (lo, hi) in LIMITS.items():
+            v = getattr(self, name)
+            if not lo <= v <= hi:
+                raise InputError(f"--{name} must be an integer from {lo} to {hi}, got {v}.")
+        if self.seed < 0:
+            raise InputError(f"--seed must be a non-negative integer, got {self.seed}.")
+        if not (self.snr > 0):  # also rejects NaN; inf means noise-free
+            raise InputError(f"--snr must be positive (inf for noise-free images), "
+                             f"got {self.snr:g}.")
+        if not (math.isfinite(self.drift_pct) and abs(self.drift_pct) < 50.0):
+            raise InputError(f"--drift must be a percentage per session between -50 and 50, "
+                             f"got {self.drift_pct:g}.")
+
+    @property
+    def voxel_mm(self) -> tuple[float, float, float]:
+        return (FOV_MM / self.matrix, FOV_MM / self.matrix, SLICE_MM)
+
+
+def session_label(index: int) -> str:
+    """BIDS session label of session ``index`` (0-based): consecutive days from 2026-11-01."""
+    return (FIRST_SESSION + _dt.timedelta(days=index)).strftime("%Y%m%d")
+
+
+def grid(options: SimOptions) -> tuple[tuple[int, int, int], np.ndarray, tuple[np.ndarray, ...]]:
+    """Shape, affine (RAS+, FOV centred on the world origin) and world x, y, z of voxel centres."""
+    shape = (options.matrix, options.matrix, options.slices)
+    vox = options.voxel_mm
+    affine = np.diag([*vox, 1.0])
+    affine[:3, 3] = [-(n - 1) / 2.0 * v for n, v in zip(shape, vox)]
+    ijk = np.meshgrid(*[np.arange(n, dtype=float) for n in shape], indexing="ij")
+    xyz = tuple(affine[a, a] * ijk[a] + affine[a, 3] for a in range(3))
+    return shape, affine, xyz
+
+
+def b1_field(x: np.ndarray, y: np.ndarray, z: np.ndarray) -> np.ndarray:
+    """Smooth transmit field (ratio to nominal) in scanner coordinates (mm).
+
+    An off-centre Gaussian bump on a slight left–right and head–foot slope:
+    about 1.23 near (12, −8) mm falling to about 0.85 at the phantom's rim (invented).
+    """
+    bump = np.exp(-((x - 12.0) ** 2 + (y + 8.0) ** 2) / (2.0 * 65.0 ** 2))
+    return 0.80 + 0.42 * bump + 0.0006 * x + 0.002 * z
+
+
+def _rng(seed: int, session: int, stream: str) -> np.random.Generator:
+    ss = np.random.SeedSequence(seed, spawn_key=(session, _STREAMS.index(stream)))
+    return np.random.default_rng(ss)
+
+
+@dataclass
+class SessionState:
+    """Geometry, temperature and per-voxel truth of one session."""
+
+    label: str
+    temperature: float
+    shift_mm: tuple[float, float]
+    rotation_deg: float
+    inversion_efficiency: float
+    drift_factor: float
+    labels: np.ndarray   # int16 (x, y, z)
+    inside: np.ndarray   # bool, inside the cylinder
+    b1: np.ndarray       # (x, y, z)
+    pd: np.ndarray       # (x, y, z), 0 in air
+    t1: np.ndarray
+    t2: np.ndarray
+    t2s: np.ndarray
+
+
+def session_state(index: int, options: SimOptions) -> SessionState:
+    """Draw a session's temperature, motion and inversion efficiency; build truth maps."""
+    rng = _rng(options.seed, index, "geometry")
+    temperature = round(phantom.REFERENCE_TEMPERATURE_C + rng.uniform(-2.0, 2.0), 1)
+    radius, angle = 3.0 * math.sqrt(rng.uniform()), rng.uniform(0.0, 2.0 * math.pi)
+    shift = (round(radius * math.cos(angle), 2), round(radius * math.sin(angle), 2))
+    rotation = round(rng.uniform(-3.0, 3.0), 2)
+    eff = round(rng.uniform(0.92, 0.96), 3)
+    drift = 1.0 + options.drift_pct / 100.0 * index
+
+    _, _, (x, y, z) = grid(options)
+    labels, inside = phantom.label_map(x, y, shift, rotation)
+    shape = labels.shape
+    pd, t1, t2, t2s = (np.zeros(shape) for _ in range(4))
+    t1[:], t2[:], t2s[:] = 1.0, 1.0, 1.0  # finite placeholders in air (pd = 0 there)
+    for comp in (phantom.FILL, *phantom.VIALS):
+        sel = (labels == comp.label) & inside
+        c_t1, c_t2 = comp.at(temperature)
+        if comp.label:  # drift ages the gels, not the fill
+            c_t1, c_t2 = c_t1 * drift, c_t2 * drift
+        pd[sel], t1[sel], t2[sel] = comp.pd, c_t1, c_t2
+        t2s[sel] = 1.0 / (1.0 / c_t2 + comp.r2_prime)
+    return SessionState(label=session_label(index), temperature=temperature, shift_mm=shift,
+                        rotation_deg=rotation, inversion_efficiency=eff, drift_factor=drift,
+                        labels=labels, inside=inside, b1=b1_field(x, y, z), pd=pd, t1=t1,
+                        t2=t2, t2s=t2s)
+
+
+def clean_signals(st: SessionState) -> dict[str, np.ndarray]:
+    """Noise-free (signed) signals of every series, ``(x, y, z, n)``; zero outside the phantom.
+
+    Volumes are in acquisition order (the order of the protocol lists above).
+    """
+    from fitting.epg import cpmg_echoes
+    from fitting.signals import dam_signals, ir_signal, mono_exp, spgr_signal
+
+    m = st.inside
+    t1, t2, t2s, pd, b1 = st.t1[m], st.t2[m], st.t2s[m], st.pd[m], st.b1[m]
+    per_series = {
+        "IRT1": ir_signal(IR_TI, t1, pd, eff=st.inversion_efficiency, tr=IR_TR,
+                          alpha_deg=90.0 * b1),
+        "VFA": spgr_signal(VFA_FLIPS, t1, pd, VFA_TR, b1),
+        "TB1DAM": dam_signals(DAM_ALPHA, b1, pd, t1, DAM_TR),
+        "MESE": cpmg_echoes(MESE_ECHOES, MESE_ESP, t2, t1, b1=b1, refocus_deg=180.0,
+                            excite_deg=90.0, m0=pd),
+        # Spoiled steady state at TE = 0, then T2* decay over the echoes.
+        "MEGRE": mono_exp(MEGRE_TE, t2s, spgr_signal([MEGRE_FLIP], t1, pd, MEGRE_TR, b1)[:, 0]),
+    }
+    out = {}
+    for name, sig in per_series.items():
+        full = np.zeros(m.shape + (sig.shape[-1],))
+        full[m] = sig
+        out[name] = full
+    return out
+
+
+def rician_magnitude(clean: np.ndarray, sigma: float, rng: np.random.Generator) -> np.ndarray:
+    """|S + n_re + i·n_im| with n ~ N(0, σ²) on each part: Rician magnitude (Rice 1944)."""
+    if sigma == 0.0:
+        return np.abs(clean).astype(np.float32)
+    noise = rng.standard_normal((2,) + clean.shape)
+    return np.hypot(clean + sigma * noise[0], sigma * noise[1]).astype(np.float32)
+
+
+def _common_sidecar(st: SessionState, sigma: float, desc: str) -> dict:
+    return {"MagneticFieldStrength": phantom.FIELD_T, "PhantomTemperature": st.temperature,
+            "Site": SITE, "Scanner": SCANNER, "SeriesDescription": desc,
+            "SimulationNoiseSigma": round(sigma, 8),
+            "GeneratedBy": f"relaxline simulate {package_version()} ({phantom.PHANTOM_NAME}, "
+                           f"invented)"}
+
+
+def _round(values) -> list[float]:
+    return [round(float(v), 6) for v in values]
+
+
+def write_session(outdir: Path, index: int, options: SimOptions,
+                  progress: Callable[[int], None] | None = None) -> list[Path]:
+    """Simulate and write one session; returns the files written."""
+    st = session_state(index, options)
+    _, affine, _ = grid(options)
+    sub = f"sub-{phantom.SUBJECT_LABEL}"
+    ses = f"ses-{st.label}"
+    anat = ensure_dir(outdir / sub / ses / "anat")
+    stem = f"{sub}_{ses}"
+    clean = clean_signals(st)
+    written: list[Path] = []
+
+    def put(name: str, data: np.ndarray, sidecar: dict | None) -> None:
+        path = anat / f"{name}.nii.gz"
+        atomic_write_nifti(path, data, affine)
+        written.append(path)
+        if sidecar is not None:
+            written.append(atomic_write_json(anat / f"{name}.json", sidecar))
+
+    for series in SERIES:
+        sig = clean[series]
+        sigma = 0.0 if math.isinf(options.snr) else float(np.abs(sig).max()) / options.snr
+        mag = rician_magnitude(sig, sigma, _rng(options.seed, index, series))
+        if series == "IRT1":
+            put(f"{stem}_IRT1", mag, {**_common_sidecar(st, sigma, "inversion recovery"),
+                                      "InversionTime": _round(IR_TI), "RepetitionTime": IR_TR,
+                                      "FlipAngle": 90.0})
+        elif series == "VFA":
+            put(f"{stem}_VFA", mag, {**_common_sidecar(st, sigma, "variable flip angle"),
+                                     "FlipAngle": _round(VFA_FLIPS), "RepetitionTime": VFA_TR})
+        elif series == "TB1DAM":
+            for k, flip in enumerate((DAM_ALPHA, 2.0 * DAM_ALPHA)):
+                put(f"{stem}_flip-{k + 1}_TB1DAM", mag[..., k],
+                    {**_common_sidecar(st, sigma, "double angle B1"), "FlipAngle": flip,
+                     "RepetitionTime": DAM_TR})
+        elif series == "MESE":
+            put(f"{stem}_MESE", mag, {**_common_sidecar(st, sigma, "multi-echo spin echo"),
+                                      "EchoTime": _round(MESE_ESP * (np.arange(MESE_ECHOES) + 1)),
+                                      "RepetitionTime": MESE_TR, "FlipAngle": 90.0,
+                                      "RefocusingFlipAngle": 180.0})
+        else:
+            put(f"{stem}_MEGRE", mag, {**_common_sidecar(st, sigma, "multi-echo gradient echo"),
+                                       "EchoTime": _round(MEGRE_TE), "RepetitionTime": MEGRE_TR,
+                                       "FlipAngle": MEGRE_FLIP})
+        if progress:
+            progress(1)
+
+    import pandas as pd
+    put(f"{stem}_dseg", st.labels, None)
+    written.append(atomic_write_tsv(anat / f"{stem}_dseg.tsv", pd.DataFrame(
+        {"index": [v.label for v in phantom.VIALS], "name": [v.name for v in phantom.VIALS]})))
+
+    pdir = ensure_dir(outdir / "phantom")
+    truth_path = pdir / f"truth_{ses}"
+    atomic_write_nifti(pdir / f"truth_{ses}_TB1map.nii.gz", st.b1.astype(np.float32), affine)
+    written.append(pdir / f"truth_{ses}_TB1map.nii.gz")
+    written.append(atomic_write_tsv(truth_path.with_suffix(".tsv"), truth_table(st)))
+    written.append(atomic_write_json(truth_path.with_suffix(".json"), {
+        "session": ses, "temperature": st.temperature, "shift_mm": list(st.shift_mm),
+        "rotation_deg": st.rotation_deg, "inversion_efficiency": st.inversion_efficiency,
+        "drift_factor": st.drift_factor, "snr": None if math.isinf(options.snr) else options.snr,
+        "seed": options.seed,
+        "note": "world = R(rotation)·p + shift for a phantom-frame point p (layout.tsv); "
+                "R rotates counter-clockwise seen from +z."}))
+    return written
+
+
+def truth_table(st: SessionState):
+    """Per-vial truth of a session: T1, T2, T2* (s), PD, temperature, B1 within the vial."""
+    import pandas as pd
+    rows = []
+    for v in phantom.VIALS:
+        sel = st.labels == v.label
+        t1, t2 = v.at(st.temperature)
+        t1, t2 = t1 * st.drift_factor, t2 * st.drift_factor
+        rows.append({"label": v.label, "name": v.name, "temperature": st.temperature,
+                     "drift_factor": st.drift_factor, "T1": t1, "T2": t2,
+                     "T2star": 1.0 / (1.0 / t2 + v.r2_prime), "PD": v.pd,
+                     "B1_mean": float(st.b1[sel].mean()) if sel.any() else float("nan"),
+                     "n_voxels": int(sel.sum())})
+    return pd.DataFrame(rows)
+
+
+def simulate(outdir: str | Path, options: SimOptions,
+             progress: Callable[[int], None] | None = None) -> list[Path]:
+    """Write ``options.sessions`` sessions plus the phantom files into ``outdir``."""
+    options.validate()
+    outdir = Path(outdir)
+    if outdir.exists() and not outdir.is_dir():
+        raise InputError(f"{outdir}: exists and is not a folder; give a folder for the "
+                         f"simulated sessions.")
+    ensure_dir(outdir)
+    written = [atomic_write_json(outdir / "dataset_description.json", {
+        "Name": f"{phantom.PHANTOM_NAME} (simulated, invented phantom)",
+        "BIDSVersion": "1.9.0", "DatasetType": "raw",
+        "GeneratedBy": [{"Name": "relaxline simulate", "Version": package_version()}]})]
+    pdir = ensure_dir(outdir / "phantom")
+    written.append(atomic_write_tsv(pdir / "reference.tsv", phantom.reference_table()))
+    written.append(atomic_write_tsv(pdir / "layout.tsv", phantom.layout_table()))
+    for i in range(options.sessions):
+        written += write_session(outdir, i, options, progress)
+    return written
