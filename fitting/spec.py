@@ -1,0 +1,190 @@
+"""Model specifications shared by every engine, and the model registry.
+
+A :class:`ModelSpec` says everything an engine needs to fit one model voxelwise:
+parameter names, units and bounds, the forward signal (always a thin wrapper around
+:mod:`fitting.signals` / :mod:`fitting.epg`, so a model is written once), a vectorised
+initialiser, the BIDS key of the varying acquisition value, the output suffix of
+each parameter and how the fixed acquisition constants come from the sidecars.
+
+Conventions
+-----------
+* ``x`` is the varying acquisition value, shape (M,), sorted ascending (seconds or
+  degrees, as read by ``pipeline.series``).
+* ``p`` is a dict ``name -> (N,)`` array; ``signal(x, p, fixed)`` returns (N, M).
+* ``fixed`` is a dict of constants. Scalars (and tuples) are global; the names in
+  ``voxel_fixed`` hold (N,) arrays, one value per voxel (for example a B1 map), and
+  engines subset them together with the data.
+* ``init(x, data, fixed)`` returns a dict ``name -> (N,)`` of starting values inside
+  the bounds, computed without Python loops over voxels.
+
+Registering a model
+-------------------
+Model modules build their specs and call :func:`register` at import time
+(``fitting/t1_models.py`` registers ``ir``, ``vfa``, ``dam``; a T2 module does the
+same for ``mese``, ``mese-mono``, ``megre``). :func:`get_model` imports every module
+listed in :data:`MODEL_MODULES` on first use, so adding a model family is one line
+there plus its module.
+"""
+from __future__ import annotations
+
+import importlib
+from dataclasses import dataclass, field
+from typing import Any, Callable, Mapping
+
+import numpy as np
+
+from fitting.errors import RelaxlineError
+
+Params = dict[str, np.ndarray]
+Fixed = dict[str, Any]
+
+# Modules that register models when imported (see module docstring).
+MODEL_MODULES: list[str] = ["fitting.t1_models", "fitting.t2_models"]
+
+MODELS: dict[str, "ModelSpec"] = {}
+
+
+def _no_validate(x: np.ndarray, fixed: Fixed) -> None:
+    return None
+
+
+def _no_prepare(x: np.ndarray, data: np.ndarray, fixed: Fixed) -> tuple[np.ndarray, Fixed]:
+    """Default data preparation: complex data are fitted as magnitude."""
+    if np.iscomplexobj(data):
+        data = np.abs(data)
+    return np.asarray(data, dtype=float), fixed
+
+
+@dataclass(frozen=True)
+class ModelSpec:
+    """Everything an engine needs to fit one model (see module docstring).
+
+    Attributes
+    ----------
+    name : model name as used on the command line (``ir``, ``vfa``, ...).
+    params : fitted parameter names, in engine order (valid Python identifiers).
+    units : unit of each parameter (``"s"``, ``"arbitrary"``, ``"ratio"``).
+    lower, upper : bounds per parameter (``np.inf`` allowed).
+    xkey : BIDS sidecar key of the varying acquisition value.
+    signal : ``signal(x, p, fixed) -> (N, M)``.
+    init : ``init(x, data, fixed) -> {name: (N,)}`` vectorised starting values.
+    outputs : parameter -> BIDS suffix of its map (``T1map``, ``M0map``, ...).
+    min_volumes : fewest volumes a fit needs (at least the number of parameters).
+    fixed_from_meta : ``(meta, options) -> fixed`` reads TR, angles, ... from the
+        series' sidecar metadata; raises RelaxlineError naming a missing key.
+    validate : ``(x, fixed) -> None`` raises RelaxlineError on impossible protocols
+        (for example TI >= TR), naming the key.
+    prepare : ``(x, data, fixed) -> (real data, fixed)`` turns raw (possibly complex)
+        data into what ``signal`` models; default takes the magnitude.
+    jacobian : optional ``(x, p, fixed) -> (N, M, P)``; engines fall back to forward
+        differences when it is None.
+    scale_param : a parameter the signal is proportional to (``M0``); engines use
+        dS/dM0 = S/M0 exactly instead of a finite difference.
+    voxel_fixed : names in ``fixed`` that hold per-voxel (N,) arrays.
+    closed_form : True when ``init`` already is the estimate (e.g. ``dam``); engines
+        then skip the iterative fit.
+    primary : the parameter whose map names the rmse map (``<stem>_desc-rmse_<suffix>``).
+    description : one line for ``--help`` and sidecars.
+    """
+
+    name: str
+    params: tuple[str, ...]
+    units: tuple[str, ...]
+    lower: tuple[float, ...]
+    upper: tuple[float, ...]
+    xkey: str
+    signal: Callable[[np.ndarray, Params, Fixed], np.ndarray]
+    init: Callable[[np.ndarray, np.ndarray, Fixed], Params]
+    outputs: Mapping[str, str]
+    min_volumes: int
+    fixed_from_meta: Callable[[Mapping[str, Any], Mapping[str, Any]], Fixed]
+    validate: Callable[[np.ndarray, Fixed], None] = _no_validate
+    prepare: Callable[[np.ndarray, np.ndarray, Fixed], tuple[np.ndarray, Fixed]] = _no_prepare
+    jacobian: Callable[[np.ndarray, Params, Fixed], np.ndarray] | None = None
+    scale_param: str | None = None
+    voxel_fixed: tuple[str, ...] = ()
+    closed_form: bool = False
+    primary: str = ""
+    description: str = ""
+    extra: Mapping[str, Any] = field(default_factory=dict)
+
+    def __post_init__(self) -> None:
+        n = len(self.params)
+        if not (len(self.units) == len(self.lower) == len(self.upper) == n):
+            raise ValueError(f"model {self.name}: units/bounds must have one entry per parameter")
+        if self.min_volumes < n and not self.closed_form:
+            raise ValueError(f"model {self.name}: min_volumes below the parameter count")
+        if self.scale_param is not None and self.scale_param not in self.params:
+            raise ValueError(f"model {self.name}: scale_param {self.scale_param} not a parameter")
+
+    @property
+    def n_params(self) -> int:
+        return len(self.params)
+
+    @property
+    def lower_array(self) -> np.ndarray:
+        return np.asarray(self.lower, dtype=float)
+
+    @property
+    def upper_array(self) -> np.ndarray:
+        return np.asarray(self.upper, dtype=float)
+
+    @property
+    def primary_param(self) -> str:
+        return self.primary or self.params[0]
+
+    def unit(self, param: str) -> str:
+        return self.units[self.params.index(param)]
+
+    def pack(self, p: Params) -> np.ndarray:
+        """dict of (N,) -> (N, P) array in parameter order."""
+        return np.stack([np.asarray(p[k], dtype=float) for k in self.params], axis=-1)
+
+    def unpack(self, arr: np.ndarray) -> Params:
+        """(N, P) -> dict of (N,)."""
+        return {k: arr[..., i] for i, k in enumerate(self.params)}
+
+    def evaluate(self, x: np.ndarray, arr: np.ndarray, fixed: Fixed) -> np.ndarray:
+        """Signal (N, M) for packed parameters (N, P)."""
+        return self.signal(np.asarray(x, float), self.unpack(arr), fixed)
+
+
+def subset_fixed(spec: ModelSpec, fixed: Fixed, idx) -> Fixed:
+    """``fixed`` restricted to the voxels ``idx`` (per-voxel entries only are indexed)."""
+    if not spec.voxel_fixed:
+        return fixed
+    out = dict(fixed)
+    for k in spec.voxel_fixed:
+        if k in out and np.ndim(out[k]) >= 1:
+            out[k] = np.asarray(out[k])[idx]
+    return out
+
+
+def register(spec: ModelSpec) -> ModelSpec:
+    """Add ``spec`` to :data:`MODELS` (a later registration of the same name replaces it)."""
+    MODELS[spec.name] = spec
+    return spec
+
+
+def _load_all() -> None:
+    for mod in MODEL_MODULES:
+        try:
+            importlib.import_module(mod)
+        except ModuleNotFoundError as exc:
+            if exc.name != mod:  # a real import error inside the module: surface it
+                raise
+
+
+def model_names() -> list[str]:
+    _load_all()
+    return sorted(MODELS)
+
+
+def get_model(name: str) -> ModelSpec:
+    """The registered model ``name``; RelaxlineError listing the known names otherwise."""
+    _load_all()
+    try:
+        return MODELS[name]
+    except KeyError:
+        raise RelaxlineError(f"unknown model {name!r}; choose one of: "
+                             f"{', '.join(sorted(MODELS)) or '(none registered)'}.") from None

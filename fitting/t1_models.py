@@ -1,0 +1,274 @@
+"""T1 models ``ir``, ``vfa`` and the B1 model ``dam`` as :class:`~fitting.spec.ModelSpec` entries.
+
+Signal formulas come from :mod:`fitting.signals`; this module adds bounds, vectorised
+initialisation, sidecar handling and protocol validation.
+
+* ``ir`` — parameters T1 (s), M0, ``eff`` (inversion efficiency, −cos θ_inv; 1 for an
+  ideal 180° pulse). Output suffixes ``T1map``, ``M0map`` and ``InvEffmap`` (not a BIDS
+  suffix: relaxline's name for the inversion-efficiency map, unitless). The finite-TR
+  steady state is exact (:func:`fitting.signals.ir_signal`), and because (M0, eff) map
+  one-to-one onto the linear constants (a, b) of S = a + b·e^(−TI/T1), T1 is unbiased for
+  any inversion angle, excitation angle or TR; ``eff`` then is the *apparent* efficiency
+  (it also absorbs an excitation-angle error). Magnitude data are modelled as |S| with
+  polarity restored in the initialisation; complex data are phase-corrected
+  (φ = ½·arg Σ y², the sign chosen so the signal recovers with TI) and fitted as the
+  signed real signal.
+* ``vfa`` — T1, M0 from spoiled gradient echoes at several flip angles, each nominal
+  angle scaled by a per-voxel B1 (``fixed["b1"]``, default 1).
+* ``dam`` — B1 (actual/nominal angle ratio) and M0 from an α/2α pair in closed form;
+  output ``TB1map``.
+"""
+from __future__ import annotations
+
+from functools import lru_cache
+from typing import Any, Mapping
+
+import numpy as np
+
+from fitting.errors import RelaxlineError
+from fitting.signals import dam_b1, dam_signals, ir_params_from_ab, ir_signal, spgr_signal
+from fitting.spec import Fixed, ModelSpec, Params, register
+
+T1_LOWER, T1_UPPER = 0.005, 20.0   # s; wide enough for phantoms and tissue at any field
+EFF_LOWER, EFF_UPPER = 0.0, 1.5    # above 1 is unphysical, but a margin keeps noisy ideal
+                                    # inversions off the bound
+IR_GRID_POINTS = 200               # log-spaced T1 values of the reduced-dimension search
+
+
+# --------------------------------------------------------------------------- ir
+def _ir_fixed(meta: Mapping[str, Any], options: Mapping[str, Any]) -> Fixed:
+    if "RepetitionTime" not in meta:
+        raise RelaxlineError(
+            "inversion-recovery series: sidecar key 'RepetitionTime' is missing. The ir model "
+            "needs the time between inversions (s) for its exact finite-TR steady state; "
+            "add RepetitionTime to the JSON sidecar(s).")
+    return {"tr": float(meta["RepetitionTime"]), "alpha": float(meta.get("FlipAngle", 90.0)),
+            "signed": False}
+
+
+def _ir_validate(x: np.ndarray, fixed: Fixed) -> None:
+    tr = fixed["tr"]
+    if np.any(x >= tr):
+        raise RelaxlineError(
+            f"'InversionTime' values {x[x >= tr].tolist()} s are not shorter than "
+            f"'RepetitionTime' = {tr:g} s. Every TI must be below TR; check the sidecar units "
+            f"(seconds) and values.")
+    if np.any(x < 0):
+        raise RelaxlineError("'InversionTime' must not be negative.")
+    if not 0.0 < fixed["alpha"] < 180.0:
+        raise RelaxlineError(f"'FlipAngle' = {fixed['alpha']:g} degrees: the excitation angle "
+                             f"must lie in (0, 180).")
+
+
+def _ir_prepare(x: np.ndarray, data: np.ndarray, fixed: Fixed) -> tuple[np.ndarray, Fixed]:
+    """Complex data -> signed real signal by per-voxel phase correction."""
+    if not np.iscomplexobj(data):
+        return np.asarray(data, float), fixed
+    data = np.asarray(data, np.complex128)
+    # y = S·e^{iφ} with S real: y² = S²·e^{2iφ}, so φ = ½·arg Σ y² (mod π).
+    phi = 0.5 * np.angle(np.sum(data * data, axis=1))
+    real = np.real(data * np.exp(-1j * phi)[:, None])
+    # The mod-π ambiguity is a global sign: an IR signal rises with TI (M0, eff > 0).
+    sign = np.where(real[:, -1] - real[:, 0] < 0, -1.0, 1.0)
+    return real * sign[:, None], {**fixed, "signed": True}
+
+
+def _ir_signal(x: np.ndarray, p: Params, fixed: Fixed) -> np.ndarray:
+    s = ir_signal(x, p["T1"], p["M0"], p["eff"], fixed["tr"], fixed["alpha"])
+    return s if fixed.get("signed") else np.abs(s)
+
+
+@lru_cache(maxsize=16)
+def _ir_grid(ti: tuple[float, ...], n: int = IR_GRID_POINTS):
+    """T1 grid, orthonormal bases Q of span{1, e^(−TI/T1)} as (M, 2G), and R⁻¹ (G, 2, 2)."""
+    t = np.asarray(ti)
+    grid = np.geomspace(T1_LOWER, T1_UPPER, n)
+    basis = np.stack([np.ones((n, t.size)), np.exp(-t[None, :] / grid[:, None])], axis=-1)
+    q, r = np.linalg.qr(basis)                      # (G, M, 2), (G, 2, 2)
+    rinv = np.linalg.inv(r)
+    qflat = np.ascontiguousarray(q.transpose(1, 0, 2).reshape(t.size, 2 * n))
+    return grid, qflat, rinv
+
+
+def _ir_init(x: np.ndarray, data: np.ndarray, fixed: Fixed) -> Params:
+    """Reduced-dimension non-linear least squares with polarity restoration.
+
+    For every T1 on a log grid the best (a, b) of S = a + b·e^(−TI/T1) are linear,
+    so the residual is ||y||² − ||Qᵀy||² with Q an orthonormal basis of the two
+    columns; maximising ||Qᵀy||² over the grid gives T1 (Barral et al. 2010,
+    Magn Reson Med 64:1057). Magnitude data are tried with the points before the
+    minimum negated, and with the minimum negated too (the zero crossing lies next
+    to the smallest magnitude; same reference). (M0, eff) follow exactly from (a, b)
+    at finite TR.
+    """
+    grid, qflat, rinv = _ir_grid(tuple(np.asarray(x, float).tolist()))
+    n, m = data.shape
+    g = grid.size
+    if fixed.get("signed"):
+        patterns = [data]
+    else:
+        imin = np.argmin(data, axis=1)[:, None]
+        idx = np.arange(m)[None, :]
+        patterns = [np.where(idx < imin, -data, data), np.where(idx <= imin, -data, data)]
+    best = np.full(n, -np.inf)
+    best_g = np.zeros(n, dtype=int)
+    coef = np.zeros((n, 2))
+    rows = np.arange(n)
+    for y in patterns:
+        # einsum (not BLAS) keeps each voxel's arithmetic independent of the batch size.
+        proj = np.einsum("nm,mk->nk", y, qflat).reshape(n, g, 2)
+        score = np.einsum("ngj,ngj->ng", proj, proj)
+        gi = np.argmax(score, axis=1)
+        s = score[rows, gi]
+        better = s > best
+        best = np.where(better, s, best)
+        best_g = np.where(better, gi, best_g)
+        coef = np.where(better[:, None], proj[rows, gi], coef)
+    ab = np.einsum("nij,nj->ni", rinv[best_g], coef)
+    a, b = ab[:, 0], ab[:, 1]
+    if not fixed.get("signed"):  # |S| cannot tell the global sign: make the asymptote positive
+        flip = a < 0
+        a, b = np.where(flip, -a, a), np.where(flip, -b, b)
+    t1 = grid[best_g]
+    m0, eff = ir_params_from_ab(t1, a, b, fixed["tr"], fixed["alpha"])
+    fallback = np.max(np.abs(data), axis=1)
+    m0 = np.where(np.isfinite(m0) & (m0 > 0), m0, fallback)
+    eff = np.clip(np.where(np.isfinite(eff), eff, 1.0), 0.05, EFF_UPPER)
+    return {"T1": t1, "M0": m0, "eff": eff}
+
+
+IR = register(ModelSpec(
+    name="ir",
+    params=("T1", "M0", "eff"),
+    units=("s", "arbitrary", "ratio"),
+    lower=(T1_LOWER, 0.0, EFF_LOWER),
+    upper=(T1_UPPER, np.inf, EFF_UPPER),
+    xkey="InversionTime",
+    signal=_ir_signal,
+    init=_ir_init,
+    outputs={"T1": "T1map", "M0": "M0map", "eff": "InvEffmap"},
+    min_volumes=4,   # 3 parameters plus one degree of freedom for the noise estimate
+    fixed_from_meta=_ir_fixed,
+    validate=_ir_validate,
+    prepare=_ir_prepare,
+    scale_param="M0",
+    primary="T1",
+    description="inversion recovery: T1, M0 and inversion efficiency, exact finite TR",
+))
+
+
+# --------------------------------------------------------------------------- vfa
+def _vfa_fixed(meta: Mapping[str, Any], options: Mapping[str, Any]) -> Fixed:
+    if "RepetitionTime" not in meta:
+        raise RelaxlineError(
+            "variable-flip-angle series: sidecar key 'RepetitionTime' is missing; the vfa "
+            "model needs TR (s). Add it to the JSON sidecar(s).")
+    return {"tr": float(meta["RepetitionTime"]), "b1": 1.0}
+
+
+def _vfa_validate(x: np.ndarray, fixed: Fixed) -> None:
+    if np.any((x <= 0) | (x >= 180)):
+        raise RelaxlineError(f"'FlipAngle' values {x.tolist()} degrees: each must lie in "
+                             f"(0, 180).")
+    if not fixed["tr"] > 0:
+        raise RelaxlineError(f"'RepetitionTime' = {fixed['tr']:g} s must be positive.")
+
+
+def _vfa_signal(x: np.ndarray, p: Params, fixed: Fixed) -> np.ndarray:
+    return spgr_signal(x, p["T1"], p["M0"], fixed["tr"], fixed.get("b1", 1.0))
+
+
+def _vfa_init(x: np.ndarray, data: np.ndarray, fixed: Fixed) -> Params:
+    """Linearised fit S/sin α = E1·S/tan α + M0·(1 − E1) per voxel (closed-form regression).
+
+    (Gupta 1977, J Magn Reson 25:231; Deoni, Rutt & Peters 2003, Magn Reson Med 49:515.)
+    Angles are the actual ones, B1·α.
+    """
+    n = data.shape[0]
+    b1 = np.broadcast_to(np.asarray(fixed.get("b1", 1.0), float), (n,))
+    a = np.deg2rad(np.asarray(x, float))[None, :] * b1[:, None]
+    with np.errstate(divide="ignore", invalid="ignore"):
+        yv = data / np.sin(a)
+        xv = data / np.tan(a)
+        xm, ym = xv.mean(1, keepdims=True), yv.mean(1, keepdims=True)
+        sxx = ((xv - xm) ** 2).sum(1)
+        e1 = ((xv - xm) * (yv - ym)).sum(1) / sxx
+        e1 = np.clip(np.where(np.isfinite(e1), e1, 0.5), 1e-6, 1 - 1e-6)
+        m0 = (ym[:, 0] - e1 * xm[:, 0]) / (1.0 - e1)
+    t1 = np.clip(-fixed["tr"] / np.log(e1), T1_LOWER, T1_UPPER)
+    fallback = np.max(np.abs(data), axis=1) / np.maximum(np.sin(a).max(1), 1e-6)
+    m0 = np.where(np.isfinite(m0) & (m0 > 0), m0, fallback)
+    return {"T1": t1, "M0": m0}
+
+
+VFA = register(ModelSpec(
+    name="vfa",
+    params=("T1", "M0"),
+    units=("s", "arbitrary"),
+    lower=(T1_LOWER, 0.0),
+    upper=(T1_UPPER, np.inf),
+    xkey="FlipAngle",
+    signal=_vfa_signal,
+    init=_vfa_init,
+    outputs={"T1": "T1map", "M0": "M0map"},
+    min_volumes=2,
+    fixed_from_meta=_vfa_fixed,
+    validate=_vfa_validate,
+    scale_param="M0",
+    voxel_fixed=("b1",),
+    primary="T1",
+    description="variable flip angle spoiled gradient echo: T1 and M0, B1-scaled angles",
+))
+
+
+# --------------------------------------------------------------------------- dam
+DAM_RATIO_RTOL = 0.01
+
+
+def _dam_fixed(meta: Mapping[str, Any], options: Mapping[str, Any]) -> Fixed:
+    return {}
+
+
+def _dam_validate(x: np.ndarray, fixed: Fixed) -> None:
+    if x.size != 2:
+        raise RelaxlineError(f"dam needs exactly two volumes (flip angles α and 2α), got "
+                             f"{x.size} 'FlipAngle' values {x.tolist()}.")
+    if not abs(x[1] / x[0] - 2.0) <= 2.0 * DAM_RATIO_RTOL:
+        raise RelaxlineError(f"'FlipAngle' values {x.tolist()} degrees: the double-angle method "
+                             f"needs a 2:1 pair (α and 2α); got a ratio of {x[1] / x[0]:.3g}.")
+    if not 0 < x[0] < 90:
+        raise RelaxlineError(f"'FlipAngle' α = {x[0]:g} degrees must lie in (0, 90).")
+
+
+def _dam_signal(x: np.ndarray, p: Params, fixed: Fixed) -> np.ndarray:
+    return dam_signals(float(x[0]), p["B1"], p["M0"])
+
+
+def _dam_init(x: np.ndarray, data: np.ndarray, fixed: Fixed) -> Params:
+    """B1 = arccos(S(2α)/(2·S(α)))/α and M0 = S(α)/sin(B1·α) (Insko & Bolinger 1993,
+    J Magn Reson A 103:82; full recovery assumed, TR ≫ T1)."""
+    alpha = float(x[0])
+    b1 = dam_b1(data[:, 0], data[:, 1], alpha)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        m0 = data[:, 0] / np.sin(np.deg2rad(alpha) * b1)
+    return {"B1": b1, "M0": m0}
+
+
+DAM = register(ModelSpec(
+    name="dam",
+    params=("B1", "M0"),
+    units=("ratio", "arbitrary"),
+    lower=(0.0, 0.0),
+    upper=(3.0, np.inf),
+    xkey="FlipAngle",
+    signal=_dam_signal,
+    init=_dam_init,
+    outputs={"B1": "TB1map", "M0": "M0map"},
+    min_volumes=2,
+    fixed_from_meta=_dam_fixed,
+    validate=_dam_validate,
+    closed_form=True,
+    scale_param="M0",
+    primary="B1",
+    description="double-angle B1 map (actual/nominal flip-angle ratio) from an α/2α pair",
+))
