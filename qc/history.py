@@ -1,0 +1,176 @@
+"""History database of ROI statistics across sessions (design §6).
+
+One SQLite file holds every session's ROI statistics keyed by
+``(site, scanner, session, series, map, label)``. Recording a session is one
+transaction that first deletes the session's rows and then inserts the new
+ones, so a rerun *replaces* a session instead of duplicating it, and a crash
+mid-way leaves the previous state intact (SQLite's atomic commit).
+
+The database runs in write-ahead-log mode so the trend job can read while a
+session job writes; writers wait (``busy_timeout``) rather than fail when two
+session jobs finish at once. WAL needs a local file system: on a cluster keep the
+database on a node-local or properly locking shared disk (not plain NFS).
+"""
+from __future__ import annotations
+
+import sqlite3
+from datetime import datetime, timezone
+from pathlib import Path
+import numpy as np
+import pandas as pd
+
+from fitting.errors import RelaxlineError
+
+KEY = ("site", "scanner", "session", "series", "map", "label")
+# roi_stats.tsv columns kept in the history (design §6), after the key.
+STATS = ("name", "n_voxels", "mean", "sd", "median", "iqr", "cv_pct", "reference",
+         "reference_at_temperature", "bias_pct", "tolerance_pct", "status")
+EXTRA = ("subject", "temperature", "recorded_at")
+COLUMNS = KEY + STATS + EXTRA
+_TEXT = {"site", "scanner", "session", "series", "map", "name", "status", "subject",
+         "recorded_at"}
+_INT = {"label", "n_voxels"}
+SCHEMA_VERSION = 1
+BUSY_TIMEOUT_MS = 120_000
+
+
+def _sql_type(col: str) -> str:
+    return "TEXT" if col in _TEXT else "INTEGER" if col in _INT else "REAL"
+
+
+_CREATE = f"""
+CREATE TABLE IF NOT EXISTS roi_history (
+    {", ".join(f"{c} {_sql_type(c)}{' NOT NULL' if c in KEY else ''}" for c in COLUMNS)},
+    PRIMARY KEY ({", ".join(KEY)})
+);
+CREATE TABLE IF NOT EXISTS sessions (
+    site TEXT NOT NULL, scanner TEXT NOT NULL, session TEXT NOT NULL,
+    subject TEXT, source TEXT, n_rows INTEGER, recorded_at TEXT,
+    PRIMARY KEY (site, scanner, session)
+);
+CREATE TABLE IF NOT EXISTS meta (key TEXT PRIMARY KEY, value TEXT);
+"""
+
+
+def connect(path: str | Path) -> sqlite3.Connection:
+    """Open (creating if needed) the history database in WAL mode."""
+    path = Path(path)
+    try:
+        path.parent.mkdir(parents=True, exist_ok=True)
+        conn = sqlite3.connect(str(path), timeout=BUSY_TIMEOUT_MS / 1000,
+                               isolation_level=None)  # explicit BEGIN/COMMIT below
+        conn.execute(f"PRAGMA busy_timeout={BUSY_TIMEOUT_MS}")
+        mode = conn.execute("PRAGMA journal_mode=WAL").fetchone()[0]
+        conn.execute("PRAGMA synchronous=NORMAL")  # durable enough with WAL, much faster
+        conn.executescript(_CREATE)
+        conn.execute("INSERT OR IGNORE INTO meta VALUES ('schema_version', ?)",
+                     (str(SCHEMA_VERSION),))
+    except sqlite3.DatabaseError as exc:
+        raise RelaxlineError(f"{path}: cannot open the history database ({exc}). If it is "
+                             "not a relaxline history file, point `history.database` in the "
+                             "config elsewhere.") from None
+    if str(mode).lower() != "wal":
+        conn.close()
+        raise RelaxlineError(f"{path}: the file system does not support SQLite's WAL mode "
+                             f"(got journal mode '{mode}'); put the history database on a "
+                             "local disk (config key `history.database`).")
+    return conn
+
+
+def _rows(df: pd.DataFrame, site: str, scanner: str, session: str, subject: str | None,
+          temperature: float | None, when: str) -> list[tuple]:
+    missing = [c for c in ("series", "map", "label") if c not in df.columns]
+    if missing:
+        raise RelaxlineError(f"ROI statistics lack column(s) {', '.join(missing)}; expected "
+                             "the roi_stats.tsv columns of design §6.")
+    out = df.copy()
+    out["site"], out["scanner"], out["session"] = site, scanner, session
+    out["subject"], out["recorded_at"] = subject, when
+    if "temperature" not in out.columns:
+        out["temperature"] = temperature
+    for c in COLUMNS:
+        if c not in out.columns:
+            out[c] = None
+    dup = out.duplicated(list(KEY))
+    if dup.any():
+        first = out.loc[dup, list(KEY)].iloc[0].to_dict()
+        raise RelaxlineError(f"ROI statistics of session {session} repeat the key {first}; "
+                             "each (series, map, label) may appear once per session.")
+
+    def conv(c: str, v):
+        if v is None or (isinstance(v, float) and np.isnan(v)) or v is pd.NA:
+            return None
+        if c in _TEXT:
+            return str(v)
+        return int(v) if c in _INT else float(v)
+
+    return [tuple(conv(c, r[c]) for c in COLUMNS) for r in out[list(COLUMNS)].to_dict("records")]
+
+
+def record_session(db: str | Path, stats: pd.DataFrame, *, site: str, scanner: str,
+                   session: str, subject: str | None = None, temperature: float | None = None,
+                   source: str = "") -> int:
+    """Replace one session's rows by ``stats`` in a single transaction.
+
+    Parameters
+    ----------
+    db : path of the SQLite file (created if missing).
+    stats : ROI statistics with at least ``series, map, label`` and the design §6 columns.
+    site, scanner, session : the session's identity (part of the key).
+    subject, temperature, source : stored alongside for the report.
+
+    Returns
+    -------
+    Number of rows now held for the session.
+    """
+    when = datetime.now(timezone.utc).isoformat(timespec="seconds")
+    rows = _rows(stats, site, scanner, session, subject, temperature, when)
+    conn = connect(db)
+    try:
+        conn.execute("BEGIN IMMEDIATE")  # take the write lock now, not halfway through
+        try:
+            conn.execute("DELETE FROM roi_history WHERE site=? AND scanner=? AND session=?",
+                         (site, scanner, session))
+            conn.executemany(f"INSERT INTO roi_history ({', '.join(COLUMNS)}) VALUES "
+                             f"({', '.join('?' * len(COLUMNS))})", rows)
+            conn.execute("INSERT OR REPLACE INTO sessions VALUES (?, ?, ?, ?, ?, ?, ?)",
+                         (site, scanner, session, subject, source, len(rows), when))
+            conn.execute("COMMIT")
+        except BaseException:
+            conn.execute("ROLLBACK")
+            raise
+    finally:
+        conn.close()
+    return len(rows)
+
+
+def load_history(db: str | Path, site: str | None = None,
+                 scanner: str | None = None) -> pd.DataFrame:
+    """All rows (optionally of one site/scanner), ordered by key; empty frame if no file."""
+    if not Path(db).is_file():
+        return pd.DataFrame(columns=list(COLUMNS))
+    conn = connect(db)
+    try:
+        where, args = [], []
+        for col, val in (("site", site), ("scanner", scanner)):
+            if val is not None:
+                where.append(f"{col}=?")
+                args.append(val)
+        sql = "SELECT * FROM roi_history" + (f" WHERE {' AND '.join(where)}" if where else "")
+        df = pd.read_sql_query(sql + f" ORDER BY {', '.join(KEY)}", conn, params=args)
+    finally:
+        conn.close()
+    return df
+
+
+def recorded_sessions(db: str | Path) -> pd.DataFrame:
+    """The ``sessions`` table: one row per recorded (site, scanner, session)."""
+    if not Path(db).is_file():
+        return pd.DataFrame(columns=["site", "scanner", "session", "subject", "source",
+                                     "n_rows", "recorded_at"])
+    conn = connect(db)
+    try:
+        return pd.read_sql_query("SELECT * FROM sessions ORDER BY site, scanner, session", conn)
+    finally:
+        conn.close()
+
