@@ -85,6 +85,13 @@ class ModelSpec:
         then skip the iterative fit.
     primary : the parameter whose map names the rmse map (``<stem>_desc-rmse_<suffix>``).
     description : one line for ``--help`` and sidecars.
+    finalize : optional ``(p, fixed) -> p`` applied by the engines to the converged
+        estimates before they are reported (for example ``mese`` folds B1 to ≤ 1, the
+        echo train being even in B1 − 1); bound checks and standard errors use the
+        fitted values.
+    configure : optional ``(spec, options) -> spec``: the variant to fit for the user's
+        options (for example ``mese`` with a B1 map fits T2 and M0 only); use
+        :func:`configure_model`, which also applies the noise model.
     """
 
     name: str
@@ -107,6 +114,8 @@ class ModelSpec:
     primary: str = ""
     description: str = ""
     extra: Mapping[str, Any] = field(default_factory=dict)
+    finalize: Callable[[Params, Fixed], Params] | None = None
+    configure: Callable[["ModelSpec", Mapping[str, Any]], "ModelSpec"] | None = None
 
     def __post_init__(self) -> None:
         n = len(self.params)
@@ -158,6 +167,21 @@ def subset_fixed(spec: ModelSpec, fixed: Fixed, idx) -> Fixed:
         if k in out and np.ndim(out[k]) >= 1:
             out[k] = np.asarray(out[k])[idx]
     return out
+
+
+def configure_model(spec: ModelSpec, options: Mapping[str, Any]) -> ModelSpec:
+    """The spec to fit for the user's ``options``: the model's own variant
+    (``spec.configure``), then ``options["noise"] == "rician"`` wraps the forward signal in
+    the Rician expectation given ``fixed["sigma"]`` (:func:`fitting.noise.rician_spec`)."""
+    if spec.configure is not None:
+        spec = spec.configure(spec, options)
+    noise = options.get("noise") or "gaussian"
+    if noise == "rician":
+        from fitting.noise import rician_spec  # noise imports this module
+        spec = rician_spec(spec)
+    elif noise != "gaussian":
+        raise RelaxlineError(f"unknown noise model {noise!r}; choose gaussian or rician.")
+    return spec
 
 
 def register(spec: ModelSpec) -> ModelSpec:

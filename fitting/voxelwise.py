@@ -186,6 +186,8 @@ def _finish(spec: ModelSpec, x: np.ndarray, y: np.ndarray, fx: Fixed, p: np.ndar
         jac = jacobian(spec, x, p[ki], subset_fixed(spec, fx, ki))
         err[ki] = stderr_from_jacobian(jac, sigma[ki])
     p = np.where(keep[:, None], p, np.nan)
+    if spec.finalize is not None:
+        p = spec.pack(spec.finalize(spec.unpack(p), fx))
     for i, k in enumerate(spec.params):
         out.params[k][idx] = p[:, i]
         out.stderr[k][idx] = err[:, i]

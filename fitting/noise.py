@@ -1,0 +1,126 @@
+"""Noise-floor handling for magnitude data: the Rician expectation.
+
+A magnitude image of a complex signal ν with Gaussian noise of standard deviation σ
+in each channel follows the Rice distribution; its mean is (Gudbjartsson & Patz 1995,
+Magn Reson Med 34:910, eq. 6)
+
+    E|S| = σ·√(π/2)·L_{1/2}(−ν²/2σ²),
+    L_{1/2}(−a) = e^{−a/2}·[(1 + a)·I₀(a/2) + a·I₁(a/2)],   a = ν²/2σ²,
+
+with I₀, I₁ modified Bessel functions. It is evaluated here with the exponentially
+scaled Bessel functions ``i0e``/``i1e`` (i0e(z) = e^{−z}·I₀(z)), so it neither
+overflows at high SNR nor loses precision at low SNR. Its derivative is
+
+    dE/dν = √(π/2)·(ν/2σ)·[i0e(a/2) + i1e(a/2)],
+
+which tends to 1 at high SNR (E → √(ν² + σ²) ≈ ν) and to 0 at ν = 0 (E → σ·√(π/2),
+the Rayleigh mean of pure noise).
+
+When it matters (measured with :func:`rician_mean`): the relative bias E|S|/ν − 1 is
+about 14 % at ν/σ = 2, 5.8 % at ν/σ = 3, 2.0 % at ν/σ = 5, 0.5 % at ν/σ = 10 and
+0.13 % at ν/σ = 20.
+A plain least-squares fit therefore reads a decay that flattens into the noise floor as
+a too long T2 (or T2*) once the late echoes fall below about ν/σ ≈ 5 — typical for long
+T2 vials sampled far into their tail, or for low-SNR scans. Fitting the Rician
+expectation instead of ν removes that bias given σ (for example the background σ
+estimated from the Rayleigh mean of an air region, :mod:`fitting.uncertainty`).
+At high SNR both fits agree; the noise-aware one is then only slightly slower.
+
+Any model of this package can be wrapped: :func:`rician_wrap` turns the forward
+signal ν(x; p) and its Jacobian into the expectation and its Jacobian by the chain
+rule, dE/dp = dE/dν · dν/dp.
+"""
+from __future__ import annotations
+
+import dataclasses
+
+import numpy as np
+from numpy.typing import ArrayLike
+from scipy.special import i0e, i1e
+
+from fitting.errors import RelaxlineError
+from fitting.spec import ModelSpec
+
+_SQRT_HALF_PI = np.sqrt(np.pi / 2.0)
+
+
+def rician_mean(nu: ArrayLike, sigma: ArrayLike) -> np.ndarray:
+    """Mean magnitude E|S| of a Rician variable with signal ``nu`` and noise ``sigma``.
+
+    Formula in the module docstring (Gudbjartsson & Patz 1995). ``nu`` and ``sigma``
+    broadcast together (give σ a trailing axis to pair a per-voxel σ with B+(M,)
+    signals). ``sigma`` = 0 returns |ν| exactly.
+    """
+    return rician_mean_and_derivative(nu, sigma)[0]
+
+
+def rician_mean_and_derivative(nu: ArrayLike, sigma: ArrayLike) -> tuple[np.ndarray, np.ndarray]:
+    """E|S| and dE|S|/dν (module docstring); odd in ν for the derivative, even for E."""
+    nu = np.asarray(nu, dtype=float)
+    sigma = np.asarray(sigma, dtype=float)
+    nu, sigma = np.broadcast_arrays(nu, sigma)
+    zero = sigma <= 0
+    s = np.where(zero, 1.0, sigma)
+    r = nu / s
+    half_a = 0.25 * r * r                     # a/2 with a = ν²/2σ²
+    b0, b1 = i0e(half_a), i1e(half_a)
+    mean = s * _SQRT_HALF_PI * ((1.0 + 2.0 * half_a) * b0 + 2.0 * half_a * b1)
+    deriv = _SQRT_HALF_PI * 0.5 * r * (b0 + b1)
+    mean = np.where(zero, np.abs(nu), mean)
+    deriv = np.where(zero, np.sign(nu), deriv)
+    return mean, deriv
+
+
+def rician_wrap(signal: np.ndarray, jacobian: np.ndarray | None, sigma: ArrayLike,
+                param_axis: int = -1) -> tuple[np.ndarray, np.ndarray | None]:
+    """Expectation of a magnitude measurement of ``signal`` and its Jacobian.
+
+    Parameters
+    ----------
+    signal : B+(M,) forward signal ν.
+    jacobian : dν/dp with one extra parameter axis at ``param_axis`` (for example
+        B+(M, P) with ``param_axis=-1``, or B+(P, M) with ``param_axis=-2``), or None.
+    sigma : noise standard deviation, broadcastable to ``signal``.
+
+    Returns
+    -------
+    (E|S|, dE/dp) — the Jacobian by the chain rule, None if none was given.
+    """
+    mean, d = rician_mean_and_derivative(signal, sigma)
+    if jacobian is None:
+        return mean, None
+    return mean, np.expand_dims(d, param_axis) * jacobian
+
+
+def _sigma(fixed) -> np.ndarray:
+    if fixed.get("sigma") is None:
+        raise RelaxlineError("the noise-aware (Rician) fit needs the noise standard deviation "
+                             "sigma of the magnitude images: give it, or a background region "
+                             "from which it is estimated.")
+    s = np.asarray(fixed["sigma"], dtype=float)
+    return s[:, None] if s.ndim == 1 else s
+
+
+def rician_spec(spec: ModelSpec) -> ModelSpec:
+    """``spec`` fitted as a magnitude measurement: its signal ν becomes E|S| given σ.
+
+    σ comes from ``fixed["sigma"]`` (scalar, or (N,) per voxel). The analytic Jacobian,
+    if the model has one, is carried through by :func:`rician_wrap`; otherwise the
+    engine differentiates the wrapped signal numerically. Complex data are fitted as
+    their magnitude (the Rice distribution describes the magnitude).
+    """
+    base_signal, base_jac, base_prepare = spec.signal, spec.jacobian, spec.prepare
+
+    def signal(x, p, fixed):
+        return rician_mean(base_signal(x, p, fixed), _sigma(fixed))
+
+    def jacobian(x, p, fixed):
+        return rician_wrap(base_signal(x, p, fixed), base_jac(x, p, fixed), _sigma(fixed))[1]
+
+    def prepare(x, data, fixed):
+        return base_prepare(x, np.abs(data) if np.iscomplexobj(data) else data, fixed)
+
+    return dataclasses.replace(
+        spec, signal=signal, jacobian=None if base_jac is None else jacobian, prepare=prepare,
+        scale_param=None, voxel_fixed=tuple(spec.voxel_fixed) + ("sigma",),
+        description=spec.description + " (Rician noise floor modelled)")
