@@ -1,0 +1,479 @@
+"""Protocol design from the Cramér–Rao bound (``relaxline design``).
+
+For a model, a protocol (its acquisition values x and fixed constants) and true
+parameters θ, the Fisher information under Gaussian noise of standard deviation σ is
+F = JᵀJ/σ² with J = ∂S/∂θ over *all* fitted parameters (nuisance ones included: M0,
+inversion efficiency, B1), and var(T̂) ≥ (F⁻¹)_TT for any unbiased estimator
+(Kay 1993, Fundamentals of Statistical Signal Processing I, §3.7). The bound is
+computed by :func:`fitting.uncertainty.crlb` from the model's own
+:class:`~fitting.spec.ModelSpec`, so the signal equations are the fitting code's.
+
+Objective
+---------
+The predicted coefficient of variation CV(T) = √CRLB(T)/T is evaluated on a log grid of
+``grid_points`` relaxation times spanning the range [LO, HI]; the design minimises the
+*worst* CV over that grid. The optimiser works on a smooth surrogate (the log-sum-exp
+"soft maximum" of log CV, which tends to the maximum as its sharpness grows) with
+L-BFGS-B from several starts (deterministic spreads plus seeded random ones, so the same
+request gives the same protocol); every candidate is then scored on the true maximum.
+The start, and the compared protocol when it is feasible under the same constraints, are
+candidates too, so the result is never worse than either.
+
+Acquisition, constraints and scan-time budget
+---------------------------------------------
+SNR is M0/σ: M0 = 1 and σ = 1/SNR in every model (the signal of a fully relaxed,
+90°-excited voxel over the noise sd of one image).
+
+* ``ir`` — N inversion times in [``MIN_TI``, TR − ``MIN_TI``] (TR = time between
+  inversions, ``tr``); excitation 90°, ideal inversion (eff = 1) assumed true; T1, M0 and
+  eff are estimated. Budget: each TI is one image of one TR per line, counted as N·TR ≤
+  budget (``lines`` phase-encode lines per image multiply it: N·TR·lines ≤ budget).
+* ``vfa`` — N flip angles in [``MIN_ANGLE``, 90]°, spoiled gradient echo of repetition
+  time TR, true B1 = ``b1`` (known, as from a B1 map); T1 and M0 estimated. Budget: each
+  angle is one volume of ``lines`` TRs (phase encodes × partitions), N·TR·lines ≤ budget;
+  with the default lines = 1 the budget simply counts TRs (seconds of N·TR).
+* ``mese`` — one CPMG train, echo k at TE = k·ESP, k = 1..N; ESP ≥ ``min_esp``; the train
+  N·ESP must fit in the budget (the budget *is* the train duration) and within TR if TR is
+  given. Refocusing 180° nominal, true B1 = ``b1`` (default 0.9) and T1 = ``t1`` fixed;
+  T2, M0 and B1 are estimated. B1 = 1 exactly is not allowed as the truth: there the echo
+  train is stationary in B1 (it is even in B1 − 1, see :mod:`fitting.t2_models`), so
+  the Fisher information is singular and the bound infinite. With N free (no ``points``)
+  N and ESP are optimised together; without a budget or TR, ESP ≤ HI.
+
+For ir and vfa N is ``points``; if it is not given it follows from the budget (capped at
+``MAX_POINTS``), else a default (8 TIs, 4 angles). Repeated values are allowed (the
+optimum often repeats points).
+"""
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from typing import Any, Callable, Sequence
+
+import numpy as np
+from scipy.optimize import minimize, minimize_scalar
+
+from fitting.errors import RelaxlineError
+from fitting.spec import ModelSpec, get_model
+from fitting.uncertainty import crlb
+
+DESIGN_MODELS = ("ir", "vfa", "mese")
+GRID_POINTS = 16          # log-spaced relaxation times on which the worst CV is taken
+SOFTMAX_SHARPNESS = 40.0  # of the log-sum-exp surrogate of max log CV
+MIN_TI = 0.01             # s; shortest TI and shortest gap TR − TI (readout, spoiling)
+MIN_ANGLE = 1.0           # degrees
+MAX_ANGLE = 90.0
+MIN_ESP = 0.005           # s; default shortest echo spacing
+MAX_POINTS = 32           # TIs/angles derived from a budget are capped here
+MAX_ECHOES = 64           # echo trains searched up to this length
+DEFAULT_POINTS = {"ir": 8, "vfa": 4, "mese": 32}
+N_RANDOM_STARTS = 4
+INFEASIBLE_CV = 1e6       # % ; stands for an infinite bound inside the optimiser
+UNITS = {"ir": "s", "vfa": "degrees", "mese": "s"}
+
+
+@dataclass(frozen=True)
+class DesignProblem:
+    """A design request; build it with :func:`make_problem` (which validates it)."""
+
+    model: str
+    lo: float
+    hi: float
+    snr: float
+    points: int | None            # N (always set for ir/vfa; None = free for mese)
+    tr: float | None
+    budget: float | None
+    lines: int = 1
+    b1: float = 1.0
+    t1: float = 1.0               # mese: assumed T1 (s)
+    min_esp: float = MIN_ESP
+    max_train: float | None = None  # mese: longest echo train (s)
+    grid_points: int = GRID_POINTS
+    seed: int = 0
+
+    @property
+    def spec(self) -> ModelSpec:
+        return get_model(self.model)
+
+    @property
+    def grid(self) -> np.ndarray:
+        if self.lo == self.hi:
+            return np.array([self.lo])
+        return np.geomspace(self.lo, self.hi, self.grid_points)
+
+    @property
+    def sigma(self) -> float:
+        return 1.0 / self.snr
+
+
+@dataclass
+class Evaluated:
+    """A protocol with its predicted CV over the grid."""
+
+    values: np.ndarray            # TIs (s), angles (deg) or echo times (s)
+    cv_pct: np.ndarray            # (G,) predicted CV of T1/T2, %
+    label: str = ""
+    feasible: bool = True
+    note: str = ""
+
+    @property
+    def worst(self) -> float:
+        return float(np.max(self.cv_pct))
+
+
+@dataclass
+class DesignResult:
+    problem: DesignProblem
+    proposed: Evaluated
+    start: Evaluated
+    compared: Evaluated | None
+    candidates: list[Evaluated] = field(default_factory=list)
+
+
+# --------------------------------------------------------------------------- setup
+def _bad(msg: str) -> RelaxlineError:
+    return RelaxlineError(msg)
+
+
+def make_problem(model: str, lo: float, hi: float, *, points: int | None = None,
+                 tr: float | None = None, snr: float = 50.0, budget: float | None = None,
+                 lines: int = 1, b1: float | None = None, t1: float | None = None,
+                 min_esp: float = MIN_ESP, grid_points: int = GRID_POINTS,
+                 seed: int = 0) -> DesignProblem:
+    """Validate a design request and fix N (see module docstring for the rules).
+
+    ``lo == hi`` designs for a single relaxation time. Raises RelaxlineError naming the
+    option at fault.
+    """
+    if model not in DESIGN_MODELS:
+        raise _bad(f"design supports the models {', '.join(DESIGN_MODELS)}; got {model!r}.")
+    spec = get_model(model)
+    if not (np.isfinite(lo) and np.isfinite(hi) and 0 < lo <= hi):
+        raise _bad(f"--range {lo:g}:{hi:g}: need 0 < LO < HI (seconds of "
+                   f"{spec.primary_param}).")
+    if not (np.isfinite(snr) and snr > 0):
+        raise _bad(f"--snr {snr:g}: the SNR (M0/σ) must be a positive number.")
+    if tr is not None and not (np.isfinite(tr) and tr > 0):
+        raise _bad(f"--tr {tr:g}: the repetition time must be a positive number of seconds.")
+    if budget is not None and not (np.isfinite(budget) and budget > 0):
+        raise _bad(f"--budget {budget:g}: the scan-time budget must be a positive number of "
+                   f"seconds.")
+    if int(lines) != lines or lines < 1:
+        raise _bad(f"--lines {lines!r}: must be a positive integer.")
+    if points is not None and (int(points) != points or points < spec.n_params):
+        raise _bad(f"--points {points!r}: the {model} model estimates {spec.n_params} "
+                   f"parameters ({', '.join(spec.params)}) and needs at least "
+                   f"{spec.n_params} points.")
+    if grid_points < 2 and lo != hi:
+        raise _bad("grid_points must be at least 2.")
+    need = max(spec.n_params, spec.min_volumes if model == "mese" else spec.n_params)
+    max_train = None
+    if model in ("ir", "vfa"):
+        if tr is None:
+            raise _bad(f"--tr is required for {model}: the "
+                       f"{'time between inversions' if model == 'ir' else 'repetition time'} "
+                       f"in seconds.")
+        if model == "ir" and tr <= 2 * MIN_TI:
+            raise _bad(f"--tr {tr:g}: the inversion-recovery TR must exceed {2 * MIN_TI:g} s "
+                       f"(TIs lie in [{MIN_TI:g} s, TR − {MIN_TI:g} s]).")
+        cost = tr * lines
+        if points is None:
+            points = (min(MAX_POINTS, int(np.floor(budget / cost + 1e-9)))
+                      if budget is not None else DEFAULT_POINTS[model])
+        if points < spec.n_params:
+            raise _bad(f"--budget {budget:g} s allows only {points} image(s) of "
+                       f"{cost:g} s (TR × lines) but {model} needs at least {spec.n_params}; "
+                       f"raise the budget to ≥ {spec.n_params * cost:g} s or shorten TR.")
+        if budget is not None and points * cost > budget * (1 + 1e-9):
+            raise _bad(f"--points {points} × {cost:g} s (TR × lines) = {points * cost:g} s "
+                       f"exceeds --budget {budget:g} s; lower --points, shorten TR or raise "
+                       f"the budget.")
+        b1_true = 1.0 if b1 is None else float(b1)
+        t1_true = 1.0
+    else:
+        b1_true = 0.9 if b1 is None else float(b1)
+        if abs(b1_true - 1.0) < 1e-3:
+            raise _bad("--b1 1 for mese: the echo train does not change to first order in B1 "
+                       "at B1 = 1, so B1 (fitted) and the bound are undefined there; give the "
+                       "expected B1 away from 1 (e.g. 0.9).")
+        t1_true = max(1.0, hi) if t1 is None else float(t1)
+        if not (np.isfinite(t1_true) and t1_true > 0):
+            raise _bad(f"--t1 {t1_true:g}: must be a positive number of seconds.")
+        if not (np.isfinite(min_esp) and min_esp > 0):
+            raise _bad(f"--min-esp {min_esp:g}: must be a positive number of seconds.")
+        limits = [v for v in (budget, tr) if v is not None]
+        max_train = min(limits) if limits else None
+        n_min = points if points is not None else need
+        if points is not None and points < need:
+            raise _bad(f"--points {points}: mese needs at least {need} echoes.")
+        if max_train is not None and n_min * min_esp > max_train * (1 + 1e-9):
+            which = "--budget" if budget is not None and max_train == budget else "--tr"
+            raise _bad(f"{which} {max_train:g} s: an echo train of {n_min} echoes at the "
+                       f"minimum spacing {min_esp:g} s lasts {n_min * min_esp:g} s, longer "
+                       f"than allowed; raise the budget, lower --points or --min-esp.")
+        if points is None and max_train is None:
+            points = DEFAULT_POINTS["mese"]
+    if not (np.isfinite(b1_true) and b1_true > 0):
+        raise _bad(f"--b1 {b1_true:g}: must be a positive ratio.")
+    return DesignProblem(model=model, lo=float(lo), hi=float(hi), snr=float(snr),
+                         points=None if points is None else int(points), tr=tr, budget=budget,
+                         lines=int(lines), b1=b1_true, t1=t1_true, min_esp=float(min_esp),
+                         max_train=max_train, grid_points=int(grid_points), seed=int(seed))
+
+
+# --------------------------------------------------------------------------- the bound
+def acquisition(problem: DesignProblem, values: np.ndarray) -> tuple[np.ndarray, dict[str, Any]]:
+    """(x, fixed) of the model's spec for a protocol's values."""
+    x = np.sort(np.asarray(values, float))
+    if problem.model == "ir":
+        return x, {"tr": problem.tr, "alpha": 90.0, "signed": True}
+    if problem.model == "vfa":
+        return x, {"tr": problem.tr, "b1": problem.b1}
+    return x, {"refocus": 180.0, "excite": 90.0, "t1": problem.t1}
+
+
+def truth(problem: DesignProblem, grid: np.ndarray) -> dict[str, np.ndarray]:
+    """True parameters at each relaxation time of ``grid`` (M0 = 1, see module docstring)."""
+    g = np.asarray(grid, float)
+    one = np.ones_like(g)
+    if problem.model == "ir":
+        return {"T1": g, "M0": one, "eff": one}
+    if problem.model == "vfa":
+        return {"T1": g, "M0": one}
+    return {"T2": g, "M0": one, "B1": problem.b1 * one}
+
+
+def predicted_cv(problem: DesignProblem, values: Sequence[float],
+                 grid: np.ndarray | None = None) -> np.ndarray:
+    """Cramér–Rao CV (%) of T1/T2 at each relaxation time of ``grid`` for a protocol.
+
+    All model parameters are estimated (nuisance ones included); σ = 1/SNR, M0 = 1.
+    An unidentifiable protocol gives ``inf``.
+    """
+    g = problem.grid if grid is None else np.asarray(grid, float)
+    x, fixed = acquisition(problem, values)
+    spec = problem.spec
+    sd = crlb(spec, x, truth(problem, g), fixed, problem.sigma)[spec.primary_param]
+    cv = 100.0 * sd / g
+    return np.where(np.isfinite(cv), cv, np.inf)
+
+
+def echo_times(n: int, esp: float) -> np.ndarray:
+    """CPMG echo times k·ESP, k = 1..n."""
+    return esp * np.arange(1, int(n) + 1)
+
+
+# --------------------------------------------------------------------------- feasibility
+def check_protocol(problem: DesignProblem, values: Sequence[float]) -> str:
+    """Why ``values`` break the problem's constraints ('' when feasible)."""
+    v = np.sort(np.asarray(values, float))
+    if v.size == 0 or not np.all(np.isfinite(v)):
+        return "empty or non-finite values"
+    if problem.model == "ir":
+        lo, hi = MIN_TI, problem.tr - MIN_TI
+        if v[0] < lo - 1e-12 or v[-1] > hi + 1e-12:
+            return f"TIs must lie in [{lo:g}, {hi:g}] s (TR {problem.tr:g} s)"
+    elif problem.model == "vfa":
+        if v[0] < MIN_ANGLE - 1e-12 or v[-1] > MAX_ANGLE + 1e-12:
+            return f"angles must lie in [{MIN_ANGLE:g}, {MAX_ANGLE:g}] degrees"
+    else:
+        esp = v[0]
+        if np.max(np.abs(v - echo_times(v.size, esp))) > 0.01 * esp:
+            return "echo times are not k·ESP, k = 1..N"
+        if esp < problem.min_esp * (1 - 1e-9):
+            return f"ESP {esp:g} s is below the minimum {problem.min_esp:g} s"
+        if problem.max_train is not None and v[-1] > problem.max_train * (1 + 1e-9):
+            return f"train {v[-1]:g} s exceeds the allowed {problem.max_train:g} s"
+    if problem.points is not None and v.size != problem.points:
+        return f"{v.size} points where the design has {problem.points}"
+    if problem.model == "mese" and v.size < max(problem.spec.n_params, problem.spec.min_volumes):
+        return f"{v.size} echoes are too few"
+    return ""
+
+
+def evaluate(problem: DesignProblem, values: Sequence[float], label: str = "") -> Evaluated:
+    v = np.sort(np.asarray(values, float))
+    note = check_protocol(problem, v)
+    return Evaluated(values=v, cv_pct=predicted_cv(problem, v), label=label,
+                     feasible=not note, note=note)
+
+
+# --------------------------------------------------------------------------- optimiser
+def _soft_max_log(cv: np.ndarray) -> float:
+    """Log-sum-exp surrogate of max(log CV), always ≥ the true maximum."""
+    lc = np.log(np.minimum(cv, INFEASIBLE_CV))
+    k = SOFTMAX_SHARPNESS
+    m = lc.max()
+    return float(m + np.log(np.sum(np.exp(k * (lc - m)))) / k)
+
+
+def _box(problem: DesignProblem) -> tuple[Callable, Callable, float, float]:
+    """to_values, to_coords and coordinate bounds of the ir/vfa optimiser."""
+    if problem.model == "ir":   # log TI: inversion times span decades
+        return np.exp, np.log, float(np.log(MIN_TI)), float(np.log(problem.tr - MIN_TI))
+    ident = np.asarray
+    return ident, ident, MIN_ANGLE, MAX_ANGLE
+
+
+def start_protocol(problem: DesignProblem) -> np.ndarray:
+    """The deterministic starting protocol (also a fallback candidate).
+
+    ir: TIs log-spaced from LO/4 to 2·HI (clipped to the allowed window), a common
+    spread around the zero crossings T1·ln 2; vfa: angles linearly spaced between half
+    the Ernst angle of HI and twice that of LO (clipped); mese: ESP = LO/2 (clipped) with
+    the largest N the limits allow.
+    """
+    n = problem.points
+    if problem.model == "ir":
+        a = np.clip(problem.lo / 4, MIN_TI, problem.tr - MIN_TI)
+        b = np.clip(2 * problem.hi, a, problem.tr - MIN_TI)
+        return np.geomspace(a, b, n)
+    if problem.model == "vfa":
+        ernst = np.degrees(np.arccos(np.exp(-problem.tr / np.array([problem.hi, problem.lo]))))
+        ernst /= problem.b1
+        a = np.clip(ernst[0] / 2, MIN_ANGLE, MAX_ANGLE)
+        b = np.clip(2 * ernst[1], a, MAX_ANGLE)
+        return np.linspace(a, b, n)
+    n_max, esp_hi = _mese_limits(problem)
+    if n is None:
+        esp = max(problem.min_esp, min(problem.lo / 2, problem.max_train / n_max))
+        n = int(np.clip(np.floor(problem.max_train / esp + 1e-9), _mese_min_n(problem), n_max))
+    else:
+        esp = float(np.clip(problem.lo / 2, problem.min_esp, esp_hi(n)))
+    return echo_times(n, esp)
+
+
+def _optimise_points(problem: DesignProblem) -> list[Evaluated]:
+    """Multi-start L-BFGS-B on the soft maximum, for N values (ir, vfa)."""
+    to_v, to_c, lo, hi = _box(problem)
+    n = problem.points
+    rng = np.random.default_rng(problem.seed)
+
+    def f(c: np.ndarray) -> float:
+        return _soft_max_log(predicted_cv(problem, to_v(c)))
+
+    starts = [to_c(start_protocol(problem)),
+              np.linspace(lo, hi, n + 2)[1:-1],
+              np.concatenate([np.full(n // 2, lo + 0.25 * (hi - lo)),
+                              np.full(n - n // 2, lo + 0.75 * (hi - lo))])]
+    starts += [np.sort(rng.uniform(lo, hi, n)) for _ in range(N_RANDOM_STARTS)]
+    out = []
+    for c0 in starts:
+        res = minimize(f, np.clip(c0, lo, hi), method="L-BFGS-B", bounds=[(lo, hi)] * n,
+                       options={"maxiter": 300, "eps": 1e-5})
+        out.append(evaluate(problem, to_v(np.clip(res.x, lo, hi)), "optimised"))
+    return out
+
+
+def _mese_min_n(problem: DesignProblem) -> int:
+    spec = problem.spec
+    return max(spec.n_params, spec.min_volumes)
+
+
+def _mese_limits(problem: DesignProblem) -> tuple[int, Callable[[int], float]]:
+    """Largest N and the longest ESP for a given N."""
+    if problem.max_train is None:
+        return MAX_ECHOES, lambda n: max(problem.min_esp, problem.hi)
+    n_max = int(min(MAX_ECHOES, np.floor(problem.max_train / problem.min_esp + 1e-9)))
+    return n_max, lambda n: max(problem.min_esp, problem.max_train / n)
+
+
+def _optimise_train(problem: DesignProblem) -> list[Evaluated]:
+    """ESP by a log grid then bounded refinement, for each N searched (mese)."""
+    n_max, esp_hi = _mese_limits(problem)
+    if problem.points is not None:
+        ns = [problem.points]
+    else:
+        ns = sorted(set(np.unique(np.round(np.geomspace(_mese_min_n(problem), n_max, 10))
+                                  .astype(int)).tolist()))
+    out = []
+
+    def best_for(n: int) -> Evaluated:
+        a, b = np.log(problem.min_esp), np.log(esp_hi(n))
+        if b - a < 1e-9:
+            return evaluate(problem, echo_times(n, problem.min_esp), "optimised")
+
+        def f(le: float) -> float:
+            return _soft_max_log(predicted_cv(problem, echo_times(n, np.exp(le))))
+
+        coarse = np.linspace(a, b, 12)
+        vals = [f(c) for c in coarse]
+        i = int(np.argmin(vals))
+        res = minimize_scalar(f, bounds=(coarse[max(i - 1, 0)], coarse[min(i + 1, 11)]),
+                              method="bounded", options={"xatol": 1e-4})
+        le = res.x if res.fun <= vals[i] else coarse[i]
+        esp = float(np.clip(np.exp(le), problem.min_esp, esp_hi(n)))
+        return evaluate(problem, echo_times(n, esp), "optimised")
+
+    for n in ns:
+        out.append(best_for(n))
+    if problem.points is None:  # refine N around the best of the coarse N search
+        best_n = out[int(np.argmin([e.worst for e in out]))].values.size
+        for n in range(max(_mese_min_n(problem), best_n - 3), min(n_max, best_n + 3) + 1):
+            if n not in ns:
+                out.append(best_for(n))
+    return out
+
+
+def pad_protocol(problem: DesignProblem, values: Sequence[float]) -> np.ndarray:
+    """Grow a protocol with fewer than N points to N by repeating its values greedily.
+
+    Repeating a measurement only adds Fisher information, so the padded protocol is
+    never predicted worse than the original; used to make a shorter compared protocol
+    a fair candidate.
+    """
+    v = list(np.sort(np.asarray(values, float)))
+    while problem.points is not None and len(v) < problem.points:
+        trials = [np.array(v + [u]) for u in sorted(set(v))]
+        scores = [float(np.max(predicted_cv(problem, t))) for t in trials]
+        v = list(np.sort(trials[int(np.argmin(scores))]))
+    return np.array(v)
+
+
+def design(problem: DesignProblem, compare: Sequence[float] | None = None) -> DesignResult:
+    """Optimise the protocol; the best of optimised, start and (feasible) compared.
+
+    The compared protocol, if shorter than N (ir/vfa), enters padded by repetition
+    (:func:`pad_protocol`); if it breaks a constraint it is reported with a note and is
+    not a candidate.
+    """
+    start = evaluate(problem, start_protocol(problem), "start")
+    cands = (_optimise_points(problem) if problem.model in ("ir", "vfa")
+             else _optimise_train(problem))
+    cands.append(start)
+    comp = None
+    if compare is not None and len(compare):
+        comp = evaluate(problem, compare, "compared")
+        if problem.model != "mese" and comp.values.size < (problem.points or 0):
+            padded = np.clip(pad_protocol(problem, comp.values), *_value_bounds(problem))
+            pe = evaluate(problem, padded, "compared, repeated to N points")
+            if pe.feasible:
+                cands.append(pe)
+        elif comp.feasible:
+            cands.append(comp)
+    feasible = [c for c in cands if c.feasible]
+    best = min(feasible, key=lambda e: (e.worst, e.values.size))
+    return DesignResult(problem=problem, proposed=best, start=start, compared=comp,
+                        candidates=cands)
+
+
+def _value_bounds(problem: DesignProblem) -> tuple[float, float]:
+    if problem.model == "ir":
+        return MIN_TI, problem.tr - MIN_TI
+    return MIN_ANGLE, MAX_ANGLE
+
+
+def parse_values(model: str, text: str) -> np.ndarray:
+    """A comma-separated protocol (TIs s, angles degrees, echo times s) as a sorted array."""
+    try:
+        v = np.array([float(t) for t in text.split(",") if t.strip()], float)
+    except ValueError:
+        raise _bad(f"--compare {text!r}: expected comma-separated numbers "
+                   f"({'seconds' if UNITS[model] == 's' else 'degrees'}).") from None
+    if v.size == 0 or not np.all(np.isfinite(v)) or np.any(v <= 0):
+        raise _bad(f"--compare {text!r}: expected positive finite numbers.")
+    if model == "mese":
+        esp = np.sort(v)[0]
+        if np.max(np.abs(np.sort(v) - echo_times(v.size, esp))) > 0.01 * esp:
+            raise _bad(f"--compare {text!r}: mese echo times must be k·ESP, k = 1..N (a CPMG "
+                       f"train from its first echo).")
+    return np.sort(v)
