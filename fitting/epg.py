@@ -57,105 +57,146 @@ def _check(n_echoes: int, esp: float) -> tuple[int, float]:
     return int(n_echoes), esp
 
 
+_CHUNK = 4096  # voxels per block: keeps the (states × voxels) arrays in cache
+
+
 def _simulate(n_echoes: int, esp: float, t2: ArrayLike, t1: ArrayLike, b1: ArrayLike,
               refocus_deg: float, excite_deg: float, m0: ArrayLike, derivs: bool,
               signed: bool):
-    """Run the state recursion; returns S (and dS/dT2, dS/dB1 if ``derivs``)."""
+    """Broadcast, run the recursion block by block; S (and dS/dT2, dS/dB1 if ``derivs``)."""
     n, esp = _check(n_echoes, esp)
     t2, t1, b1, m0 = np.broadcast_arrays(*(np.asarray(p, dtype=float) for p in (t2, t1, b1, m0)))
     shape = t2.shape
     t2, t1, b1, m0 = (p.reshape(-1) for p in (t2, t1, b1, m0))
     nv = t2.size
+    out = np.empty((3 if derivs else 1, n, nv))
+    for lo in range(0, nv, _CHUNK):
+        sl = slice(lo, min(lo + _CHUNK, nv))
+        _recursion(n, esp, t2[sl], t1[sl], b1[sl], m0[sl], np.deg2rad(float(refocus_deg)),
+                   np.deg2rad(float(excite_deg)), out[:, :, sl])
+    if not signed:                             # magnitude; d|S| = sign(S)·dS (sign 0 taken as +)
+        neg = out[0] < 0
+        out = np.where(neg, -out, out)
+    res = [np.ascontiguousarray(o.T).reshape(shape + (n,)) for o in out]
+    return tuple(res) if derivs else res[0]
 
-    a_ref = np.deg2rad(float(refocus_deg))
-    a_exc = np.deg2rad(float(excite_deg))
+
+def _recursion(n: int, esp: float, t2, t1, b1, m0, a_ref: float, a_exc: float, out) -> None:
+    """EPG state recursion for one block of voxels, written into ``out`` (1 or 3, n, nv).
+
+    States live in buffers indexed so that the order shift between pulses is a change
+    of offset, not a copy: positive orders F_+(2j+1) at ``pos[pp + j]`` (pp falls by one
+    per pulse, the new F_+1 being the old F_−1), negative orders F_−(2j+1) at
+    ``neg[qq + j]`` (qq rises by one), Z̃_(2j+1) at ``zz[j]``. Relaxation over ESP is
+    folded into the pulse coefficients. Derivative states (d/dT2, d/dB1) are carried
+    in the same layout with a leading axis of 2.
+    """
+    derivs = out.shape[0] == 3
+    nv = t2.size
     alpha = b1 * a_ref
     sa, ca = np.sin(alpha), np.cos(alpha)
     s2 = np.sin(0.5 * alpha) ** 2
     hsa = 0.5 * sa
     with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
         e2h = np.exp(-0.5 * esp / t2)          # F relaxation over ESP/2
-        e1 = np.exp(-esp / t1)                 # Z relaxation over ESP (no regrowth: see module doc)
-        de2h = e2h * (0.5 * esp) / t2 ** 2      # d e2h / dT2
-        de2h = np.where(np.isfinite(de2h), de2h, 0.0)
+        e1 = np.exp(-esp / t1)                 # Z relaxation over ESP (regrowth never echoes)
+        r2 = esp / t2 ** 2                     # d ln(e2)/dT2 (e2 = e2h²)
+        r2 = np.where(np.isfinite(r2), r2, 0.0)
     e2 = e2h * e2h
-    de2 = 2.0 * e2h * de2h
+    s2e2, sae2 = s2 * e2, sa * e2
+    ca1, hsa1 = ca * e1, hsa * e1
 
-    nj = (n + 1) // 2 + 1                      # max active states is min(n, N − n + 1) ≤ ⌈N/2⌉
-    fp = np.zeros((nj, nv))                    # F_(+(2j+1)) just before a pulse
-    fm = np.zeros((nj, nv))                    # F_(−(2j+1))
-    zz = np.zeros((nj, nv))                    # Z̃_(2j+1)
-    out = np.empty((n, nv))
+    nj = (n + 1) // 2 + 1                      # active states min(p, N − p + 1) ≤ ⌈N/2⌉
+    pos = np.zeros((n + nj + 1, nv))
+    neg = np.zeros((n + nj + 1, nv))
+    zz = np.zeros((nj, nv))
+    tu = np.empty((nj, nv))
+    td = np.empty((nj, nv))
+    tw = np.empty((nj, nv))
+    pp, qq = n, 0
     # Excitation (angle b1·α_exc) puts M0·sin(b1·α_exc) on the CPMG axis, then ESP/2 to pulse 1.
     f0 = m0 * np.sin(b1 * a_exc)
-    fp[0] = f0 * e2h
+    pos[pp] = f0 * e2h
     if derivs:
-        gp = np.zeros((2, nj, nv))             # d/dT2, d/dB1 of fp, fm, zz
-        gm = np.zeros((2, nj, nv))
-        gz = np.zeros((2, nj, nv))
-        d_out = np.empty((2, n, nv))
-        gp[0, 0] = f0 * de2h
-        gp[1, 0] = m0 * a_exc * np.cos(b1 * a_exc) * e2h
-        ds2 = hsa * a_ref                      # d s² / dB1
+        gpos = np.zeros((2,) + pos.shape)
+        gneg = np.zeros((2,) + neg.shape)
+        gzz = np.zeros((2,) + zz.shape)
+        gu = np.empty((2, nj, nv))
+        gd = np.empty((2, nj, nv))
+        gw = np.empty((2, nj, nv))
+        gpos[0, pp] = f0 * e2h * (0.5 * r2)    # d e2h/dT2 = e2h·ESP/(2·T2²)
+        gpos[1, pp] = m0 * a_exc * np.cos(b1 * a_exc) * e2h
+        ds2 = hsa * a_ref                      # d s²/dB1
         dsa = ca * a_ref
         dca = -sa * a_ref
+        ds2e2, dsae2 = ds2 * e2, dsa * e2
+        dca1, hdsa1 = dca * e1, 0.5 * dsa * e1
+        de2h = e2h * (0.5 * r2)
 
     for p in range(1, n + 1):
         m = min(p, n - p + 1)                  # states that can still reach an echo
-        a, b, z = fp[:m], fm[:m], zz[:m]
-        u = b - a
-        d = s2 * u
-        w = sa * z
-        new_a = a + d - w
-        new_b = b - d + w
-        new_z = ca * z - hsa * u
+        a, b, z = pos[pp:pp + m], neg[qq:qq + m], zz[:m]
+        u, d, w = tu[:m], td[:m], tw[:m]
+        np.subtract(b, a, out=u)
+        # Echo p: F_−1 just after the pulse, relaxed over ESP/2, is F_0.
+        fm1 = b[0] - s2 * u[0] + sa * z[0]
+        out[0, p - 1] = e2h * fm1
         if derivs:
-            ga, gb, gzz = gp[:, :m], gm[:, :m], gz[:, :m]
-            gu = gb - ga
-            gd = s2 * gu
-            gw = sa * gzz
-            gd[1] += ds2 * u
-            gw[1] += dsa * z
-            g_new_a = ga + gd - gw
-            g_new_b = gb - gd + gw
-            g_new_z = ca * gzz - hsa * gu
-            g_new_z[1] += dca * z - 0.5 * dsa * u
-        # Echo p: F_−1 after the pulse, relaxed over ESP/2, is F_0.
-        out[p - 1] = e2h * new_b[0]
-        if derivs:
-            d_out[:, p - 1] = e2h * g_new_b[:, 0]
-            d_out[0, p - 1] += de2h * new_b[0]
+            ga, gb, gz = gpos[:, pp:pp + m], gneg[:, qq:qq + m], gzz[:, :m]
+            gu_, gd_, gw_ = gu[:, :m], gd[:, :m], gw[:, :m]
+            np.subtract(gb, ga, out=gu_)
+            g_fm1 = gb[:, 0] - s2 * gu_[:, 0] + sa * gz[:, 0]
+            out[1, p - 1] = e2h * g_fm1[0] + de2h * fm1
+            out[2, p - 1] = e2h * (g_fm1[1] - ds2 * u[0] + dsa * z[0])
+            if p < n:
+                # linear part, then the pulse-coefficient terms of d/dB1 (need old a, b, z, u)
+                np.multiply(s2e2, gu_, out=gd_)
+                np.multiply(sae2, gz, out=gw_)
+                ga *= e2
+                ga += gd_
+                ga -= gw_
+                gb *= e2
+                gb -= gd_
+                gb += gw_
+                gz *= ca1
+                np.multiply(hsa1, gu_, out=gd_)
+                gz -= gd_
+                np.multiply(ds2e2, u, out=gd_[0])
+                np.multiply(dsae2, z, out=gw_[0])
+                gd_[0] -= gw_[0]
+                ga[1] += gd_[0]
+                gb[1] -= gd_[0]
+                np.multiply(dca1, z, out=gd_[0])
+                np.multiply(hdsa1, u, out=gw_[0])
+                gd_[0] -= gw_[0]
+                gz[1] += gd_[0]
         if p == n:
             break
-        # ESP to the next pulse: orders move by +2 (F_−1 becomes F_+1), F relaxes by e2, Z by e1.
-        mm = min(p + 1, n - p)                 # states needed at the next pulse
-        fp[1:mm] = new_a[:mm - 1] * e2
-        fp[0] = new_b[0] * e2
-        k = min(m - 1, mm)
-        fm[:k] = new_b[1:k + 1] * e2
-        fm[k:mm] = 0.0
-        zz[:min(m, mm)] = new_z[:mm] * e1
-        zz[m:mm] = 0.0
+        # Pulse and ESP of relaxation in place (e2, e1 folded into the coefficients).
+        np.multiply(s2e2, u, out=d)
+        np.multiply(sae2, z, out=w)
+        a *= e2
+        a += d
+        a -= w
+        b *= e2
+        b -= d
+        b += w
+        z *= ca1
+        np.multiply(hsa1, u, out=d)
+        z -= d
+        if derivs:                             # d(e2)/dT2 = e2·r2 times the new (relaxed) F
+            np.multiply(r2, a, out=d)
+            ga[0] += d
+            np.multiply(r2, b, out=d)
+            gb[0] += d
+        # Orders move by +2: the old F_−1 becomes F_+1, every other state keeps its slot.
+        pp -= 1
+        pos[pp] = b[0]
+        neg[qq] = 0.0
         if derivs:
-            gp[:, 1:mm] = g_new_a[:, :mm - 1] * e2
-            gp[0, 1:mm] += new_a[:mm - 1] * de2
-            gp[:, 0] = g_new_b[:, 0] * e2
-            gp[0, 0] += new_b[0] * de2
-            gm[:, :k] = g_new_b[:, 1:k + 1] * e2
-            gm[0, :k] += new_b[1:k + 1] * de2
-            gm[:, k:mm] = 0.0
-            gz[:, :min(m, mm)] = g_new_z[:, :mm] * e1
-            gz[:, m:mm] = 0.0
-
-    if not signed:                             # magnitude; d|S| = sign(S)·dS (sign 0 taken as +)
-        neg = out < 0
-        out = np.abs(out)
-        if derivs:
-            d_out = np.where(neg, -d_out, d_out)
-    s = out.T.reshape(shape + (n,))
-    if not derivs:
-        return s
-    return (s, d_out[0].T.reshape(shape + (n,)), d_out[1].T.reshape(shape + (n,)))
+            gpos[:, pp] = gb[:, 0]
+            gneg[:, qq] = 0.0
+        qq += 1
 
 
 def cpmg_echoes(n_echoes: int, esp: float, t2: ArrayLike, t1: ArrayLike, b1: ArrayLike = 1.0,
