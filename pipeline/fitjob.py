@@ -1,0 +1,264 @@
+"""Fit jobs: series -> voxelwise maps -> BIDS-derivative files (design §5, §6, §8).
+
+The pieces are separate so the workflow can split a volume into slab jobs:
+
+* :func:`prepare` validates the series and acquisition constants of a model;
+* :func:`estimate_noise` finds the background σ over the *whole* series (pass the
+  same value to every chunk via ``options["noise_sigma"]``);
+* :func:`fit_arrays` fits a slab ``z`` (or the whole volume), reading it slab by slab;
+* :func:`write_fit_outputs` writes the maps of a whole volume atomically;
+* :func:`fit_command` is ``relaxline fit``.
+
+Which voxels are fitted
+-----------------------
+With ``--mask``: the voxels where the mask is non-zero (others: status OUTSIDE).
+Without: every voxel whose largest magnitude over the volumes reaches the level that
+pure background noise stays under with probability 0.999
+(σ·√(−2 ln(1 − 0.999^(1/n))), n volumes, Rayleigh statistics), when a background is
+found; if the series has no recognisable background every voxel is fitted. Voxels
+with non-finite or all-zero data get BAD_DATA.
+
+Output names (``<stem>`` from the input): one map per parameter with the model's
+suffix (``T1map``, ``M0map``, ``InvEffmap`` for the ir inversion efficiency,
+``TB1map``), ``desc-stderr_<suffix>`` per parameter, ``desc-rmse_<primary suffix>``
+(root-mean-square residual √(RSS/M) in signal units, e.g. ``<stem>_desc-rmse_T1map``)
+and ``desc-fitstatus_mask`` (uint8 codes of :mod:`fitting.status`).
+"""
+from __future__ import annotations
+
+import sys
+from pathlib import Path
+from typing import Any, Callable, Mapping, Sequence, TextIO
+
+import numpy as np
+
+from fitting import status as st
+from fitting.spec import Fixed, ModelSpec, configure_model, get_model
+from fitting.uncertainty import background_from_max, rayleigh_max_threshold
+from fitting.voxelwise import ENGINES, fit_voxels
+from pipeline.errors import InputError, RelaxlineError
+from pipeline.outputs import provenance, write_map
+from pipeline.series import Series, load_grid_map, read_series
+
+SLAB_VOXELS = 131072           # voxels read and fitted at a time (bounds memory)
+NOISE_SAMPLE_VOXELS = 200_000  # voxels sampled for the background-noise estimate
+STATUS_KEY = "desc-fitstatus_mask"
+
+
+def _spec(model: str | ModelSpec) -> ModelSpec:
+    return model if isinstance(model, ModelSpec) else get_model(model)
+
+
+def prepare(model: str | ModelSpec, inputs: Sequence[str | Path],
+            time_unit: str = "s") -> tuple[ModelSpec, Series, Fixed]:
+    """Read and validate the series for ``model``; returns (spec, series, fixed)."""
+    spec = _spec(model)
+    series = read_series(inputs, spec.xkey, time_unit=time_unit, min_volumes=spec.min_volumes)
+    fixed = acquisition(spec, series)
+    return spec, series, fixed
+
+
+def acquisition(spec: ModelSpec, series: Series, options: Mapping[str, Any] | None = None
+                ) -> Fixed:
+    """The model's constants from the sidecars, validated against the varying values."""
+    where = ", ".join(str(p) for p in series.paths)
+    try:
+        fixed = spec.fixed_from_meta(series.meta, dict(options or {}))
+        spec.validate(series.values, fixed)
+    except InputError:
+        raise
+    except RelaxlineError as exc:  # from fitting, which knows no file names
+        raise InputError(f"{where}: {exc}") from None
+    return fixed
+
+
+def estimate_noise(series: Series, max_voxels: int = NOISE_SAMPLE_VOXELS) -> float | None:
+    """Background noise σ of the whole series, or None when it has no background.
+
+    Reads the series once, slab by slab, keeping a regular subsample of voxels
+    (every k-th voxel in file order, so the value is reproducible), and applies
+    :func:`fitting.uncertainty.background_from_max`.
+    """
+    stride = max(1, int(np.ceil(series.n_voxels / max_voxels)))
+    rows, vmax = [], []
+    for z in series.slabs(SLAB_VOXELS):
+        block = series.read(z)
+        nz = block.shape[2]
+        # flat index in (x, y, z) C order of each slab voxel
+        flat = (np.arange(series.shape[0])[:, None, None] * series.shape[1] * series.shape[2]
+                + np.arange(series.shape[1])[None, :, None] * series.shape[2]
+                + np.arange(z.start, z.start + nz)[None, None, :])
+        pick = (flat % stride == 0).ravel()
+        b = block.reshape(-1, block.shape[-1])[pick]
+        rows.append(b)
+        vmax.append(np.max(np.abs(b), axis=1))
+        del block
+    data = np.concatenate(rows)
+    vm = np.concatenate(vmax)
+    return background_from_max(vm, lambda sel: data[sel], series.n_volumes, series.is_complex)
+
+
+def _z_slabs(series: Series, z: slice | None, max_voxels: int):
+    z = z or slice(0, series.shape[2])
+    start, stop, _ = z.indices(series.shape[2])
+    step = max(1, max_voxels // max(series.shape[0] * series.shape[1], 1))
+    for z0 in range(start, stop, step):
+        yield slice(z0, min(z0 + step, stop))
+
+
+def output_keys(spec: ModelSpec) -> list[str]:
+    """Keys of :func:`fit_arrays`' result, which are also the file-name tails."""
+    keys = [spec.outputs[k] for k in spec.params]
+    keys += [f"desc-stderr_{spec.outputs[k]}" for k in spec.params]
+    keys += [f"desc-rmse_{spec.outputs[spec.primary_param]}", STATUS_KEY]
+    return keys
+
+
+def fit_arrays(model: str | ModelSpec, series: Series, mask: np.ndarray | None = None,
+               b1: np.ndarray | None = None, options: Mapping[str, Any] | None = None,
+               z: slice | None = None, progress: Callable[[int], None] | None = None
+               ) -> dict[str, np.ndarray]:
+    """Fit the slices ``z`` (default all) of ``series``; maps shaped (x, y, nz).
+
+    ``mask`` and ``b1`` are full-volume arrays on the series grid (or None).
+    ``options``: ``engine`` ("fast"), ``jobs`` (1), ``noise_sigma`` (float, None for
+    residual-based errors, or absent to estimate it here over the whole series —
+    chunked jobs should pass one value so all chunks agree).
+    Returns ``{key: array}`` with keys from :func:`output_keys`.
+    """
+    options = dict(options or {})
+    spec = configure_model(_spec(model), options)
+    fixed = acquisition(spec, series, options)
+    engine = options.get("engine", "fast")
+    jobs = int(options.get("jobs", 1))
+    sigma = options["noise_sigma"] if "noise_sigma" in options else estimate_noise(series)
+    if "sigma" in spec.voxel_fixed:   # noise-floor-aware variants need σ itself
+        if sigma is None:
+            raise InputError(f"{series.paths[0]}: the Rician noise model needs the background "
+                             f"noise, but no background region was found; use a mask-free "
+                             f"series with air around the object, or the Gaussian model.")
+        fixed["sigma"] = float(sigma)
+    x = series.values
+    n = series.n_volumes
+    z = z or slice(0, series.shape[2])
+    zr = range(*z.indices(series.shape[2]))
+    shape = series.shape[:2] + (len(zr),)
+    keys = output_keys(spec)
+    out = {k: np.full(shape, np.nan, np.float32) for k in keys[:-1]}
+    out[STATUS_KEY] = np.full(shape, st.OUTSIDE, np.uint8)
+    threshold = rayleigh_max_threshold(sigma, n) if (sigma is not None and mask is None) else 0.0
+    for zs in _z_slabs(series, z, SLAB_VOXELS):
+        block = series.read(zs)
+        oz = slice(zs.start - zr.start, zs.stop - zr.start)
+        flat = block.reshape(-1, n)
+        if mask is not None:
+            sel = (mask[:, :, zs] != 0).reshape(-1)
+        else:
+            with np.errstate(invalid="ignore"):
+                vmax = np.max(np.abs(flat), axis=1)
+            # below-threshold background is OUTSIDE; NaN voxels are kept (-> BAD_DATA)
+            sel = ~(vmax < threshold) if threshold > 0 else np.ones(flat.shape[0], bool)
+        idx = np.flatnonzero(sel)
+        fx = dict(fixed)
+        if b1 is not None and "b1" in spec.voxel_fixed:  # ratio map; <= 0 is invalid
+            bv = b1[:, :, zs].reshape(-1)[idx].astype(float)
+            fx["b1"] = np.where(bv > 0, bv, np.nan)
+        res = fit_voxels(spec, x, flat[idx], fx, engine=engine, jobs=jobs, noise_sigma=sigma,
+                         progress=progress)
+        if progress is not None and flat.shape[0] > idx.size:
+            progress(flat.shape[0] - idx.size)
+        slab_shape = block.shape[:3]
+        for k in spec.params:
+            suffix = spec.outputs[k]
+            _put(out[suffix], oz, slab_shape, idx, res.params[k])
+            _put(out[f"desc-stderr_{suffix}"], oz, slab_shape, idx, res.stderr[k])
+        _put(out[keys[-2]], oz, slab_shape, idx, res.rmse)
+        _put(out[STATUS_KEY], oz, slab_shape, idx, res.status)
+        del block, flat
+    return out
+
+
+def _put(target: np.ndarray, oz: slice, slab_shape, idx: np.ndarray, values: np.ndarray):
+    view = target[:, :, oz].reshape(-1)   # a copy if not contiguous: write back below
+    view[idx] = values
+    target[:, :, oz] = view.reshape(slab_shape)
+
+
+def write_fit_outputs(arrays: Mapping[str, np.ndarray], series: Series, out_dir: str | Path,
+                      model: str | ModelSpec, engine: str, options: Mapping[str, Any]
+                      ) -> list[Path]:
+    """Write every map of ``arrays`` (whole volume) with its JSON sidecar; returns paths.
+
+    ``model`` and ``options`` as given to :func:`fit_arrays` (the spec is configured the
+    same way, so the keys match).
+    """
+    spec = configure_model(_spec(model), options)
+    prov = provenance(spec.name, engine, dict(options), series)
+    units = {spec.outputs[k]: spec.unit(k) for k in spec.params}
+    paths = []
+    for key in output_keys(spec):
+        arr = arrays[key]
+        if arr.shape != tuple(series.shape):
+            raise ValueError(f"{key}: array shape {arr.shape} is not the series grid "
+                             f"{series.shape}")
+        desc, suffix = (key.split("_", 1)[0][5:], key.split("_", 1)[1]) \
+            if key.startswith("desc-") else (None, key)
+        extra: dict[str, Any] = {}
+        if desc == "fitstatus":
+            u = "code"
+            extra["StatusCodes"] = {str(c): name for c, name in st.NAMES.items()}
+        elif desc == "rmse":
+            u = "arbitrary"
+            extra["Description"] = "root-mean-square fit residual sqrt(RSS/M), signal units"
+        else:
+            u = units[suffix]
+            if desc == "stderr":
+                extra["Description"] = ("standard error from the Jacobian at the solution; "
+                                        "noise from " + ("background" if options.get(
+                                            "noise_sigma") is not None else "residuals"))
+            if suffix == "InvEffmap":
+                extra["Description"] = ("inversion efficiency -cos(inversion angle): 1 ideal, "
+                                        "0 none (apparent; absorbs excitation errors too)")
+        paths.append(write_map(out_dir, series.stem, suffix, arr, series.affine, prov,
+                               desc=desc, units=u, extra=extra))
+    return paths
+
+
+def fit_command(model: str, inputs: Sequence[str | Path], out: str | Path,
+                mask: str | Path | None = None, b1: str | Path | None = None,
+                engine: str = "fast", jobs: int = 1, time_unit: str = "s",
+                stream: TextIO | None = None, show_progress: bool = True) -> list[Path]:
+    """``relaxline fit``: validate everything, fit, then write all maps."""
+    from pipeline.progress import Progress
+    stream = stream or sys.stderr
+    if engine not in ENGINES:
+        raise InputError(f"--engine must be one of {', '.join(ENGINES)}, got {engine!r}.")
+    if int(jobs) < 1:
+        raise InputError(f"--jobs must be at least 1, got {jobs}.")
+    spec, series, fixed = prepare(model, inputs, time_unit)
+    spec = configure_model(spec, {"b1_map": str(b1) if b1 else None})
+    mask_arr = load_grid_map(mask, series, what="mask") if mask else None
+    if b1 and "b1" not in spec.voxel_fixed:
+        raise InputError(f"--b1 {b1}: the {spec.name} model does not use a B1 map "
+                         f"(it applies to: vfa, mese).")
+    b1_arr = load_grid_map(b1, series, what="B1 map") if b1 else None
+    if b1_arr is not None:
+        finite = b1_arr[np.isfinite(b1_arr)]
+        if finite.size and np.nanmedian(finite) > 10:
+            raise InputError(f"{b1}: B1 map median {np.nanmedian(finite):g} looks like a percent "
+                             f"map; --b1 expects the ratio actual/nominal flip angle (about 1).")
+    if "b1" in spec.voxel_fixed and b1_arr is None:
+        print(f"relaxline fit: warning: no --b1 map given; fitting {spec.name} with B1 = 1. "
+              f"T1 is biased wherever the actual flip angle differs from the nominal one "
+              f"(B1 != 1); pass a B1 map (e.g. from `relaxline fit dam`).", file=stream)
+    sigma = estimate_noise(series)
+    options = {"engine": engine, "jobs": int(jobs), "time_unit": time_unit,
+               "mask": str(mask) if mask else None, "b1_map": str(b1) if b1 else None,
+               "noise_sigma": sigma}
+    prog = Progress(series.n_voxels, f"fit {spec.name}", stream=stream, enabled=show_progress)
+    arrays = fit_arrays(model, series, mask_arr, b1_arr, options, progress=prog)
+    counts = np.bincount(arrays[STATUS_KEY].ravel(), minlength=max(st.NAMES) + 1)
+    summary = ", ".join(f"{st.NAMES[c]}: {int(counts[c])}" for c in sorted(st.NAMES)
+                        if counts[c])
+    print(f"relaxline fit {spec.name}: {summary}", file=stream)
+    return write_fit_outputs(arrays, series, out, model, engine, options)
