@@ -148,3 +148,17 @@ def test_hard_pulse_helper_is_consistent_with_epg_first_echo():
     # The isochromat helper's excitation: 90° about x puts M0 on −y (right-handed rotation).
     m = hard_pulse(np.array([0.0, 0.0, 1.0]), "x", 90.0)
     np.testing.assert_allclose(m, [0.0, -1.0, 0.0], atol=1e-15)
+
+
+def test_block_boundaries_and_empty_input():
+    # Voxels are processed in blocks; results must not depend on a voxel's block.
+    rng = np.random.default_rng(11)
+    nv = 9001
+    t2, b1 = rng.uniform(0.02, 0.3, nv), rng.uniform(0.6, 1.3, nv)
+    s, d_t2, d_b1 = cpmg_echoes_jacobian(9, 0.01, t2, 1.0, b1, 150.0)
+    for i in (0, 4095, 4096, 8191, 8192, 9000):
+        one = cpmg_echoes_jacobian(9, 0.01, t2[i], 1.0, b1[i], 150.0)
+        for full, single in zip((s, d_t2, d_b1), one):
+            np.testing.assert_allclose(full[i], single, rtol=1e-14, atol=1e-15)
+    assert cpmg_echoes(5, 0.01, np.empty(0), 1.0).shape == (0, 5)
+    assert cpmg_echoes(1, 0.01, 0.05, 1.0, refocus_deg=150.0).shape == (1,)
