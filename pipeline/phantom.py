@@ -96,7 +96,7 @@ def _ring(radius_mm: float, angles_deg: list[float]) -> list[tuple[float, float]
 # 4 at irregular angles. No rotation or mirror maps the layout onto itself, so an
 # automatic localiser can tell orientation and handedness from positions alone.
 _CENTRES = (_ring(52.0, [90.0 + 40.0 * k for k in range(8)])
-            + _ring(24.0, [0.0, 110.0, 200.0, 280.0]))
+            + _ring(24.0, [90.0, 170.0, 230.0, 300.0]))
 
 
 def reference_table():
