@@ -147,7 +147,7 @@ IR = register(ModelSpec(
     signal=_ir_signal,
     init=_ir_init,
     outputs={"T1": "T1map", "M0": "M0map", "eff": "InvEffmap"},
-    min_volumes=4,   # 3 parameters plus one degree of freedom for the noise estimate
+    min_volumes=3,   # = parameters; standard errors then need a background noise estimate
     fixed_from_meta=_ir_fixed,
     validate=_ir_validate,
     prepare=_ir_prepare,

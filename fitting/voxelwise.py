@@ -109,8 +109,9 @@ def _fast(spec: ModelSpec, x: np.ndarray, y: np.ndarray, fx: Fixed, jobs: int,
     start = spec.pack(spec.init(x, y, fx))
     if spec.closed_form:
         p = start
-        f = spec.evaluate(x, p, fx)
-        cost = np.einsum("nm,nm->n", f - y, f - y)
+        with np.errstate(invalid="ignore", over="ignore"):  # NaN/inf estimates -> FAILED
+            f = spec.evaluate(x, p, fx)
+            cost = np.einsum("nm,nm->n", f - y, f - y)
         stat = np.where(np.all(np.isfinite(p), axis=1), st.OK, st.FAILED).astype(np.uint8)
         return p, cost, stat
     res = levenberg_marquardt(spec, x, y, start, fx, max_iter=max_iter)
