@@ -311,12 +311,257 @@ def compute(maps: list[MapFile], label_source: LabelSource, reference=None, tole
     return QCResult(table, list(dict.fromkeys(warnings)), maps, labels_used, temps)
 
 
+MAX_SERIES_BYTES = 1 << 30   # read a whole source series for curves/noise up to 1 GiB
+
+
+def open_source_series(mf: MapFile):
+    """The series a map was fitted from (via its sidecar ``Sources``), or (None, reason)."""
+    from pipeline.series import read_series
+
+    key = mf.sidecar.get("VaryingKey")
+    paths = []
+    for src in mf.sidecar.get("Sources") or []:
+        p = Path(src.get("path", "")) if isinstance(src, dict) else Path(str(src))
+        if p.name.endswith((".nii", ".nii.gz")):
+            paths.append(p)
+    if not paths or not key:
+        return None, "the map's sidecar lists no source series"
+    missing = [str(p) for p in paths if not p.is_file()]
+    if missing:
+        return None, f"source series not found ({missing[0]})"
+    try:
+        series = read_series(paths, key)
+        if tuple(series.shape) != mf.shape or not np.allclose(series.affine, mf.affine,
+                                                              atol=1e-3):
+            return None, "the source series is not on the map's grid"
+    except InputError as exc:
+        return None, f"source series unreadable ({exc})"
+    if series.nbytes_float32 > MAX_SERIES_BYTES:
+        return None, "source series too large to read whole for curves and noise"
+    return series, ""
+
+
+def vial_curves(data: np.ndarray, labels: np.ndarray, keep: np.ndarray
+                ) -> dict[int, tuple[np.ndarray, np.ndarray]]:
+    """Mean and SD of the (magnitude) signal over each vial's usable voxels, per volume."""
+    mag = np.abs(data)
+    out = {}
+    for v in sorted(int(x) for x in np.unique(labels) if x > 0):
+        vox = mag[(labels == v) & keep]
+        if vox.shape[0]:
+            out[v] = (vox.mean(axis=0), vox.std(axis=0, ddof=1) if vox.shape[0] > 1
+                      else np.zeros(vox.shape[1]))
+    return out
+
+
+def fitted_curves(mf: MapFile, series, labels: np.ndarray, keep: np.ndarray,
+                  magnitude: bool) -> tuple[dict[int, tuple[np.ndarray, np.ndarray]], str]:
+    """Model curves at each vial's median parameters, via the model registry's forward signal.
+
+    Returns ({label: (x, signal)}, note); the note says why curves are missing.
+    """
+    try:
+        from fitting.spec import get_model
+    except ImportError:
+        return {}, "model registry not available: fitted curves omitted"
+    from fitting.errors import RelaxlineError
+    from qc.roi import vial_medians
+
+    name = mf.sidecar.get("Model")
+    try:
+        spec = get_model(str(name))
+    except RelaxlineError:
+        return {}, f"model {name!r} unknown to this version: fitted curves omitted"
+    params = {}
+    for p in spec.params:
+        suffix = spec.outputs.get(p)
+        path = mf.path.with_name(f"{mf.stem}_{suffix}.nii.gz") if suffix else None
+        if path is None or not path.is_file():
+            return {}, f"no map for parameter {p} ({mf.stem}_{suffix}): fitted curves omitted"
+        import nibabel as nib
+        img = nib.load(str(path))
+        check_same_grid(mf.shape, mf.affine, img, path, f"{p} map")
+        params[p] = np.asarray(img.dataobj, dtype=float).reshape(mf.shape)
+    options = mf.sidecar.get("Options") or {}
+    try:
+        fixed = dict(spec.fixed_from_meta(series.meta, options))
+    except RelaxlineError as exc:
+        return {}, f"fitted curves omitted ({exc})"
+    per_voxel = [k for k in spec.voxel_fixed if isinstance(options.get(k), str)]
+    if per_voxel:
+        return {}, (f"the fit used a per-voxel {per_voxel[0]} map; fitted curves omitted")
+    medians = vial_medians(params, labels, keep)
+    x = np.asarray(series.values, float)
+    xf = np.linspace(x.min(), x.max(), 200)
+    out = {}
+    for lab, med in medians.items():
+        if not all(np.isfinite(v) for v in med.values()):
+            continue
+        p = {k: np.array([v]) for k, v in med.items()}
+        try:
+            y = np.asarray(spec.signal(xf, p, fixed))[0]
+        except Exception as exc:  # an overlay must not stop the QC; the note says why
+            return {}, f"fitted curves omitted ({type(exc).__name__}: {exc})"
+        out[lab] = (xf, np.abs(y) if magnitude else y)
+    return out, ""
+
+
+XLABEL = {"InversionTime": ("inversion time", 1000.0, "ms"), "EchoTime": ("echo time", 1000.0,
+          "ms"), "FlipAngle": ("flip angle", 1.0, "degrees"),
+          "RepetitionTime": ("repetition time", 1000.0, "ms")}
+
+
+def render(result: QCResult, reference, tol, out_figures: bool, erode_mm: float,
+           maps_dir: Path, labels_desc: str, reference_desc: str) -> tuple[str, dict[str, bytes]]:
+    """Figures and the report page. Returns (html, {figure file name: png})."""
+    from fitting.status import USABLE
+    from pipeline.outputs import package_version
+    from qc import figures as F
+    from qc.noise import estimate_noise
+    from qc.report import AGREEMENT, Figure, build_report
+
+    table = result.table
+    disp = F.for_display(table) if len(table) else table
+    figs: list[Figure] = []
+    files: dict[str, bytes] = {}
+    warnings = list(result.warnings)
+    agreement = None
+    names = reference.names() if reference is not None else {}
+    noise_parts = []
+
+    def add(fname: str, fig: Figure) -> None:
+        figs.append(fig)
+        files[fname] = fig.png
+
+    if out_figures and len(table):
+        png = F.measured_vs_reference(disp)
+        if png:
+            add("measured_vs_reference.png", Figure(
+                "Measured against reference", png,
+                "Vial mean ± SD against the reference corrected to the phantom temperature, "
+                "log–log. Black line: identity; shaded: warn and fail bands of the map's "
+                "tolerance (per-vial overrides apply in the table). Marker shape gives the "
+                "status: circle pass, square warn, cross fail.", AGREEMENT))
+        png, agreement = F.bland_altman(disp)
+        if png:
+            add("bland_altman.png", Figure(
+                "Bland–Altman plot", png,
+                "Percent difference from the reference against the mean of measured and "
+                "reference; solid blue: bias, dashed: 95 % limits of agreement "
+                "(bias ± 1.96·SD; Bland & Altman 1986, Lancet 1:307). With few vials the "
+                "limits are themselves uncertain.", AGREEMENT))
+    by_stem: dict[str, list[MapFile]] = {}
+    for mf in result.maps:
+        by_stem.setdefault(mf.stem, []).append(mf)
+    for stem, group in by_stem.items():
+        labels = result.labels.get(stem)
+        if labels is None:
+            continue
+        qc_maps = [m for m in group if m.suffix in QC_MAPS]
+        status_map = qc_maps[0].companion(qc_maps[0].status_path, "fit-status mask", np.uint8) \
+            if qc_maps else None
+        keep = np.ones(labels.shape, bool) if status_map is None else np.isin(status_map, USABLE)
+        if out_figures:
+            for mf in qc_maps:
+                k, u = F.display_scale(mf.suffix, str(mf.sidecar.get("Units", "s")))
+                shown = np.where(keep, mf.data(), np.nan) if status_map is not None \
+                    else mf.data()
+                png = F.map_montage(shown * k, f"{mf.suffix} — {stem}", mf.suffix, u,
+                                    labels)
+                add(f"{stem}_{mf.suffix}_montage.png", Figure(
+                    f"{F.QUANTITY_LABEL.get(mf.suffix, mf.suffix)} map, {stem}", png,
+                    "Evenly spaced slices; vial outlines (white) with their labels"
+                    + (f" after {erode_mm:g} mm erosion" if erode_mm > 0 else "")
+                    + "; grey: no value (outside the mask or fit failed). Colour range: 1st–"
+                      "99th percentile inside the vials.", "Maps"))
+        # one series per model: curves and noise from each distinct source series
+        seen_sources: set[str] = set()
+        for mf in qc_maps:
+            src_key = json.dumps(mf.sidecar.get("Sources") or [], sort_keys=True)
+            if src_key in seen_sources:   # maps of one fit share their series
+                continue
+            seen_sources.add(src_key)
+            series, why = open_source_series(mf)
+            if series is None:
+                noise_parts.append(f"<p>{esc_(stem)} ({esc_(mf.sidecar.get('Model', '?'))}): "
+                                   f"no noise estimate or signal curves — {esc_(why)}.</p>")
+                continue
+            data = series.read()
+            est = estimate_noise(data, labels, names)
+            noise_parts.append(_noise_html(stem, series, est))
+            if not out_figures:
+                continue
+            curves = vial_curves(data, labels, keep)
+            if not curves:
+                continue
+            magnitude = not series.is_complex
+            fitted, note = fitted_curves(mf, series, labels, keep, magnitude)
+            what, kx, ux = XLABEL.get(series.key, (series.key, 1.0, ""))
+            fitted_disp = {lab: (x * kx, y) for lab, (x, y) in fitted.items()}
+            png = F.signal_curves(series.values * kx, f"{what} ({ux})" if ux else what,
+                                  curves, names or {v: f"label {v}" for v in curves},
+                                  f"Mean signal per vial — {stem} ({mf.sidecar.get('Model')})",
+                                  fitted_disp, note)
+            add(f"{stem}_{series.key}_curves.png", Figure(
+                f"Signal curves, {stem}", png,
+                "Vial mean ± SD of the (magnitude) signal over the usable voxels; lines: the "
+                "model at the vial's median fitted parameters" + (f" ({note})" if note else "")
+                + ".", "Signal curves"))
+    temps = {f"{t:g} °C ({src})" if t is not None else "not known — reference uncorrected"
+             for t, src in result.temperatures.values()}
+    tol_src = ("built-in defaults, ILLUSTRATIVE only: set tolerances from your local QA "
+               "procedure (--config)" if tol.source.startswith("built-in") else tol.source)
+    summary = {
+        "session": ", ".join(sorted(set(map(str, table["session"])))) or "–",
+        "series": ", ".join(by_stem),
+        "maps folder": str(maps_dir),
+        "vial labels": labels_desc + (f" (eroded by {erode_mm:g} mm)" if erode_mm > 0 else ""),
+        "reference": reference_desc,
+        "phantom temperature": "; ".join(sorted(temps)),
+        "tolerances": tol_src,
+    }
+    provenance = [{"file": mf.path.name, **{k: mf.sidecar.get(k) for k in
+                  ("Model", "Engine", "Options", "RelaxlineVersion", "Sources")}}
+                  for mf in result.maps if mf.suffix in QC_MAPS]
+    import datetime
+    footer = (f"relaxline {package_version()}, report generated "
+              f"{datetime.datetime.now(datetime.timezone.utc):%Y-%m-%d %H:%M} UTC.")
+    page = build_report(table, summary=summary, figures=figs, agreement=agreement,
+                        noise_html="\n".join(noise_parts), provenance=provenance,
+                        warnings=warnings, footer=footer)
+    return page, files
+
+
+def esc_(x: Any) -> str:
+    import html
+    return html.escape(str(x))
+
+
+def _noise_html(stem: str, series, est) -> str:
+    head = f"<h3>{esc_(stem)} — {esc_(series.key)} series</h3>"
+    if est.sigma is None:
+        return head + f"<p>{esc_(est.note)}.</p>"
+    rows = "".join(f"<tr><td>{r.label}</td><td class=\"t\">{esc_(r.name)}</td>"
+                   f"<td>{r.signal:.4g}</td><td>{r.snr:.1f}</td></tr>"
+                   for r in est.table.itertuples())
+    vol = series.values[est.volume_index]
+    return (head + f"<p>Background noise σ = {est.sigma:.4g} (signal units), from "
+            f"{est.n_background} air voxels (Rayleigh estimator, magnitude data). SNR = vial "
+            f"mean of the brightest volume ({esc_(series.key)} = {vol:g}) / σ.</p>"
+            "<table><thead><tr><th>vial</th><th class=\"t\">name</th><th>signal</th>"
+            f"<th>SNR</th></tr></thead><tbody>{rows}</tbody></table>")
+
+
 def run_qc(maps_dir: str | Path, out_dir: str | Path, label_source: LabelSource,
            reference_path: str | Path | None = None, config: Any = None,
            temperature: float | None = None, session: str | None = None,
-           erode_mm: float = 0.0, figures: bool = True) -> QCResult:
-    """Full QC of one maps folder: compute, then write roi_stats.tsv, figures and report."""
-    from pipeline.outputs import atomic_write_tsv, ensure_dir
+           erode_mm: float = 0.0, figures: bool = True,
+           labels_desc: str = "label map") -> QCResult:
+    """Full QC of one maps folder: compute, then write roi_stats.tsv, figures and report.
+
+    Everything is computed before anything is written, so bad input leaves no output.
+    """
+    from pipeline.outputs import atomic_write_bytes, atomic_write_text, atomic_write_tsv
     from qc.reference import Reference
     from qc.tolerance import load_tolerances
 
@@ -324,6 +569,12 @@ def run_qc(maps_dir: str | Path, out_dir: str | Path, label_source: LabelSource,
     reference = Reference.load(reference_path) if reference_path is not None else None
     tol = load_tolerances(config)
     result = compute(maps, label_source, reference, tol, temperature, session, erode_mm)
-    out = ensure_dir(out_dir)
+    page, files = render(result, reference, tol, figures, erode_mm, Path(maps_dir),
+                         labels_desc, str(reference_path) if reference_path else
+                         "none (scan session: statistics only)")
+    out = Path(out_dir)
     atomic_write_tsv(out / "roi_stats.tsv", result.table)
+    for name, png in files.items():
+        atomic_write_bytes(out / "figures" / name, png)
+    atomic_write_text(out / "report.html", page)
     return result

@@ -153,3 +153,71 @@ def test_bad_reference_exit_2(case, capsys):
     ref.write_text(REF.replace("0.60", "fast"))
     assert _qc(maps, lab, ref, out) == 2
     assert "not a number" in capsys.readouterr().err
+
+
+def make_ir_session(d: Path, seed: int = 4, sigma: float = 20.0) -> dict:
+    """Maps plus the IR series they "came from": background noise, vials with known T1."""
+    from fitting.signals import ir_signal
+    info = make_maps(d, seed=seed)
+    rng = np.random.default_rng(seed)
+    lab = info["labels"]
+    ti = np.array([0.05, 0.2, 0.5, 1.0, 2.0, 4.0])
+    tr = 8.0
+    t1 = np.where(lab > 0, np.nan_to_num(info["T1"], nan=1.0), 1.0)
+    t1 = np.where(info["T1"] > 10, 1.0, t1)
+    m0 = np.where(lab > 0, 1000.0, 0.0)
+    clean = ir_signal(ti, t1, m0, 1.0, tr)
+    noisy = np.abs(clean + sigma * (rng.standard_normal(clean.shape)
+                                    + 1j * rng.standard_normal(clean.shape)))
+    series = d.parent / "raw" / "sub-phantom_ses-20260101_IR.nii.gz"
+    series.parent.mkdir(exist_ok=True)
+    _write(series, noisy.astype(np.float32),
+           {"InversionTime": ti.tolist(), "RepetitionTime": tr, "MagneticFieldStrength": 3.0})
+    stem = "sub-phantom_ses-20260101_IR"
+    for suffix, arr in (("M0map", m0), ("InvEffmap", np.ones(SHAPE))):
+        _write(d / f"{stem}_{suffix}.nii.gz", arr.astype(np.float32), {"Units": "arbitrary"})
+    side = json.loads((d / f"{stem}_T1map.json").read_text())
+    side.update({"Sources": [{"path": str(series), "sha256": "0" * 64},
+                             {"path": str(series).replace(".nii.gz", ".json"),
+                              "sha256": "0" * 64}],
+                 "VaryingKey": "InversionTime"})
+    (d / f"{stem}_T1map.json").write_text(json.dumps(side))
+    return {**info, "sigma": sigma}
+
+
+class _Refs(HTMLParser):
+    def __init__(self):
+        super().__init__()
+        self.urls: list[str] = []
+        self.tags: list[str] = []
+        self.open: list[str] = []
+
+    def handle_starttag(self, tag, attrs):
+        self.tags.append(tag)
+        if tag not in ("meta", "img", "br", "link", "hr", "input"):
+            self.open.append(tag)
+        self.urls += [v for k, v in attrs if k in ("src", "href") and v]
+
+    def handle_endtag(self, tag):
+        assert self.open and self.open[-1] == tag, f"unbalanced </{tag}>"
+        self.open.pop()
+
+
+def test_report_self_contained_with_figures(case, tmp_path):
+    maps, lab, ref, out, _ = case()
+    make_ir_session(maps)
+    rc = main(["qc", str(maps), "--labels", str(lab), "--reference", str(ref), "--out", str(out)])
+    assert rc == 0
+    html_text = (out / "report.html").read_text()
+    parser = _Refs()
+    parser.feed(html_text)
+    parser.close()
+    assert html_text.startswith("<!DOCTYPE html>") and parser.open == []
+    assert parser.urls and all(u.startswith("data:image/png;base64,") for u in parser.urls)
+    assert not re.search(r"""(src|href)\s*=\s*["']?\s*(https?:)?//""", html_text)
+    assert "not a medical device" in html_text and "PASS" in html_text
+    figs = sorted(p.name for p in (out / "figures").iterdir())
+    assert "bland_altman.png" in figs and "measured_vs_reference.png" in figs
+    assert any(f.endswith("_curves.png") for f in figs)
+    assert "fitted curves omitted" not in html_text
+    assert "Background noise" in html_text

@@ -59,12 +59,14 @@ def run(args: argparse.Namespace) -> int:
     result = run_qc(args.maps_dir, args.out, labels_from_file(args.labels),
                     reference_path=args.reference, config=args.config,
                     temperature=args.temperature, session=args.session,
-                    erode_mm=args.erode, figures=not args.no_figures)
+                    erode_mm=args.erode, figures=not args.no_figures,
+                    labels_desc=str(args.labels))
     t = result.table
     counts = t["status"].value_counts().to_dict()
     summary = ", ".join(f"{counts.get(k, 0)} {k}" for k in ("pass", "warn", "fail", "n/a")
                         if counts.get(k))
-    print(f"relaxline qc: {len(t)} vial/map rows ({summary}); wrote {args.out}/roi_stats.tsv")
+    print(f"relaxline qc: {len(t)} vial/map rows ({summary}); wrote {args.out}/roi_stats.tsv "
+          f"and report.html")
     for w in result.warnings:
         print(f"relaxline qc: warning: {w}")
     return result.exit_code

@@ -1,0 +1,68 @@
+"""Background noise and signal-to-noise ratio per vial.
+
+The noise σ comes from the air around the phantom with the background finder and
+Rayleigh estimator of :mod:`fitting.uncertainty` (magnitude images: background values
+follow a Rayleigh distribution, σ = √(mean(m²)/2); Henkelman 1985, Med Phys 12:232;
+Gudbjartsson & Patz 1995, Magn Reson Med 34:910). This assumes single-channel
+magnitude noise (or an equivalent); parallel-imaging reconstructions and multi-coil
+sum-of-squares images make the background non-Rayleigh (the estimator then declines
+and says why).
+
+The SNR of a vial is the mean signal of the series' brightest volume in that vial over σ.
+"""
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from typing import Mapping
+
+import numpy as np
+import pandas as pd
+
+from fitting.uncertainty import background_from_max, rayleigh_max_threshold
+
+
+@dataclass
+class NoiseEstimate:
+    sigma: float | None
+    n_background: int
+    volume_index: int
+    table: pd.DataFrame = field(default_factory=pd.DataFrame)   # label, name, signal, snr
+    note: str = ""
+
+
+def estimate_noise(series: np.ndarray, labels: np.ndarray,
+                   names: Mapping[int, str] | None = None) -> NoiseEstimate:
+    """σ of the background and per-vial SNR from a series ``(x, y, z, n)`` (or one volume).
+
+    Complex data are handled by :func:`fitting.uncertainty.background_sigma` (σ of the
+    real and imaginary parts); the vial signal is then the magnitude.
+    """
+    data = np.asarray(series)
+    if data.ndim == 3:
+        data = data[..., None]
+    is_complex = np.iscomplexobj(data)
+    mag = np.abs(data).astype(float)
+    lab = np.asarray(labels).astype(np.int64)
+    vials = sorted(int(v) for v in np.unique(lab) if v > 0)
+    names = names or {}
+    # brightest volume inside the vials: best SNR, least affected by the noise floor
+    inside = lab > 0
+    means = [np.nanmean(mag[..., k][inside]) if inside.any() else np.nanmean(mag[..., k])
+             for k in range(mag.shape[-1])]
+    k = int(np.nanargmax(means))
+    vmax = np.nanmax(mag, axis=-1)
+    sigma = background_from_max(vmax, lambda sel: data[sel], data.shape[-1], is_complex)
+    rows = []
+    for v in vials:
+        s = float(np.nanmean(mag[..., k][lab == v]))
+        rows.append({"label": v, "name": names.get(v, f"label {v}"), "signal": s,
+                     "snr": s / sigma if sigma else np.nan})
+    table = pd.DataFrame(rows, columns=["label", "name", "signal", "snr"])
+    if sigma is None:
+        return NoiseEstimate(None, 0, k, table,
+                             "no usable background: too few air voxels, or their values do "
+                             "not follow a Rayleigh distribution (zero-filled, masked or "
+                             "multi-coil background); SNR not estimated")
+    n_bg = int(np.sum(np.isfinite(vmax) & (vmax < rayleigh_max_threshold(sigma,
+                                                                        data.shape[-1]))))
+    return NoiseEstimate(float(sigma), n_bg, k, table)
