@@ -10,22 +10,23 @@ three states of the same |k|. Echoes are the F_0 state at the echo times.
 Phase convention used here (the CPMG condition): the refocusing pulses rotate
 about the axis on which the excitation put the magnetisation. With that choice
 the matrix of every pulse is real and the states F_k that build the echoes stay
-real (Weigel 2015, section on CPMG). Writing c² = cos²(α/2), s² = sin²(α/2),
+real. Writing c² = cos²(α/2), s² = sin²(α/2),
 a refocusing pulse of angle α acts on (F_k, F_−k, Z̃_k) as
 
     F_k'  = c²·F_k + s²·F_−k − sin α·Z̃_k
     F_−k' = s²·F_k + c²·F_−k + sin α·Z̃_k
     Z̃_k'  = ½ sin α·(F_k − F_−k) + cos α·Z̃_k
 
-(Weigel 2015, eq. 15 with phase 0 and Z̃ = i·Z). Relaxation over a time t
+(the EPG rotation matrix of Weigel 2015 for pulse phase 0, rewritten with
+Z̃ = i·Z; F_−k here is the conjugate state F⁻_k, real in this convention). Relaxation over a time t
 multiplies F by e^(−t/T2) and Z by e^(−t/T1).
 
 Implementation notes
 --------------------
 * Dephasing is one order per ESP/2 lobe, so just before each refocusing pulse
   only odd orders k = 2j+1 exist and at echo times only even ones. States are
-  stored at the pulse times as three arrays over j (positive orders F_+, negative
-  orders F_−, Z̃), state-major and voxel-minor for contiguous slices.
+  stored at the pulse times (positive orders, negative orders, Z̃), state-major
+  and voxel-minor, in blocks of voxels small enough to stay in cache.
 * After pulse n (1-based) of N, a state of order 2j+1 cannot reach F_0 before
   echo n + j, so only j ≤ N − n is propagated: at most ⌈N/2⌉ states, and a loop
   over echoes (never over voxels or states).
