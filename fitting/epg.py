@@ -82,6 +82,26 @@ def _simulate(n_echoes: int, esp: float, t2: ArrayLike, t1: ArrayLike, b1: Array
     return tuple(res) if derivs else res[0]
 
 
+def _pulse_relax(a, b, z, u, d, w, s2e2, sae2, e2, ca1, hsa1) -> None:
+    """Refocusing pulse then ESP of relaxation, in place on (F_+, F_−, Z̃) given u = F_− − F_+.
+
+    F_+ ← e2·(F_+ + s²·u − sin α·Z̃), F_− ← e2·(F_− − s²·u + sin α·Z̃),
+    Z̃ ← e1·(cos α·Z̃ − ½ sin α·u), the relaxation factors folded into the coefficients.
+    ``d`` and ``w`` are scratch arrays of the same shape.
+    """
+    np.multiply(s2e2, u, out=d)
+    np.multiply(sae2, z, out=w)
+    a *= e2
+    a += d
+    a -= w
+    b *= e2
+    b -= d
+    b += w
+    z *= ca1
+    np.multiply(hsa1, u, out=d)
+    z -= d
+
+
 def _recursion(n: int, esp: float, t2, t1, b1, m0, a_ref: float, a_exc: float, out) -> None:
     """EPG state recursion for one block of voxels, written into ``out`` (1 or 3, n, nv).
 
@@ -151,17 +171,7 @@ def _recursion(n: int, esp: float, t2, t1, b1, m0, a_ref: float, a_exc: float, o
             out[2, p - 1] = e2h * (g_fm1[1] - ds2 * u[0] + dsa * z[0])
             if p < n:
                 # linear part, then the pulse-coefficient terms of d/dB1 (need old a, b, z, u)
-                np.multiply(s2e2, gu_, out=gd_)
-                np.multiply(sae2, gz, out=gw_)
-                ga *= e2
-                ga += gd_
-                ga -= gw_
-                gb *= e2
-                gb -= gd_
-                gb += gw_
-                gz *= ca1
-                np.multiply(hsa1, gu_, out=gd_)
-                gz -= gd_
+                _pulse_relax(ga, gb, gz, gu_, gd_, gw_, s2e2, sae2, e2, ca1, hsa1)
                 np.multiply(ds2e2, u, out=gd_[0])
                 np.multiply(dsae2, z, out=gw_[0])
                 gd_[0] -= gw_[0]
@@ -173,18 +183,7 @@ def _recursion(n: int, esp: float, t2, t1, b1, m0, a_ref: float, a_exc: float, o
                 gz[1] += gd_[0]
         if p == n:
             break
-        # Pulse and ESP of relaxation in place (e2, e1 folded into the coefficients).
-        np.multiply(s2e2, u, out=d)
-        np.multiply(sae2, z, out=w)
-        a *= e2
-        a += d
-        a -= w
-        b *= e2
-        b -= d
-        b += w
-        z *= ca1
-        np.multiply(hsa1, u, out=d)
-        z -= d
+        _pulse_relax(a, b, z, u, d, w, s2e2, sae2, e2, ca1, hsa1)
         if derivs:                             # d(e2)/dT2 = e2·r2 times the new (relaxed) F
             np.multiply(r2, a, out=d)
             ga[0] += d
