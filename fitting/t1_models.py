@@ -32,7 +32,7 @@ from fitting.spec import Fixed, ModelSpec, Params, register
 T1_LOWER, T1_UPPER = 0.005, 20.0   # s; wide enough for phantoms and tissue at any field
 EFF_LOWER, EFF_UPPER = 0.0, 1.5    # above 1 is unphysical, but a margin keeps noisy ideal
                                     # inversions off the bound
-IR_GRID_POINTS = 200               # log-spaced T1 values of the reduced-dimension search
+IR_GRID_POINTS = 128               # log-spaced T1 values of the reduced-dimension search
 
 
 # --------------------------------------------------------------------------- ir
