@@ -89,6 +89,8 @@ class ModelSpec:
         estimates before they are reported (for example ``mese`` folds B1 to ≤ 1, the
         echo train being even in B1 − 1); bound checks and standard errors use the
         fitted values.
+    extra : free-form model settings; ``extra["lm_options"]`` holds keyword arguments
+        for :func:`fitting.lm.levenberg_marquardt` (for example ``damping``).
     configure : optional ``(spec, options) -> spec``: the variant to fit for the user's
         options (for example ``mese`` with a B1 map fits T2 and M0 only); use
         :func:`configure_model`, which also applies the noise model.

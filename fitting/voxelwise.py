@@ -114,7 +114,8 @@ def _fast(spec: ModelSpec, x: np.ndarray, y: np.ndarray, fx: Fixed, jobs: int,
             cost = np.einsum("nm,nm->n", f - y, f - y)
         stat = np.where(np.all(np.isfinite(p), axis=1), st.OK, st.FAILED).astype(np.uint8)
         return p, cost, stat
-    res = levenberg_marquardt(spec, x, y, start, fx, max_iter=max_iter)
+    res = levenberg_marquardt(spec, x, y, start, fx, max_iter=max_iter,
+                              **dict(spec.extra.get("lm_options", {})))
     p, cost = res.params, res.cost
     stat = np.where(res.converged, st.OK, st.FAILED).astype(np.uint8)
     todo = np.flatnonzero(~res.converged)
