@@ -1,18 +1,135 @@
-"""`relaxline run`: not available yet."""
+"""`relaxline run`: the Snakemake workflow over every session of a config."""
 from __future__ import annotations
 
 import argparse
+import os
+import sys
+from pathlib import Path
+from typing import Sequence
 
-from pipeline.errors import InputError
+HELP = "Run the workflow (fit, QC, history, drift rules, report) over all sessions"
+DESCRIPTION = """\
+Run the relaxline Snakemake workflow installed with the package (works from any
+directory) on the sessions found under the config's input_dir:
+every configured model is fitted on every series (large volumes split into z-slab
+jobs), each session is QC'd against the reference, its rows replace any earlier
+ones in the history database, and the drift rules and trend figures are updated in
+OUTPUT_DIR/report.html.
 
-HELP = "Run the Snakemake workflow over sessions (not available yet)"
+Snakemake's working directory is the config's output_dir: its .snakemake/ folder,
+logs/ and all outputs live there. Relative paths in the config are relative to the
+config file. Re-running after a new session arrives runs only that session's jobs
+and the trend update; an interrupted run resumes where it stopped.
+
+Options not listed here go to Snakemake unchanged (e.g. -n for a dry run,
+--keep-going, --forcerun qc). For a SLURM cluster: --profile
+sample_config/profiles/slurm (needs the snakemake-executor-plugin-slurm package).
+
+Exit status: 0 all well; 1 a QC failure or a drift-rule rejection in the newest
+session of a site/scanner (see status.json and the report); 2 bad config or input
+(checked before any job runs) or a failed job."""
 PASSTHROUGH = True
+# Snakemake options after which status.json does not describe this run's result
+_NO_STATUS = {"-n", "--dry-run", "--dryrun", "--lint", "--unlock", "--list-rules", "-l",
+              "--summary", "-S", "--detailed-summary", "-D", "--dag", "--rulegraph",
+              "--filegraph", "--list-changes", "--lc"}
 
 
 def add_arguments(p: argparse.ArgumentParser) -> None:
-    p.add_argument("args", nargs="*", help="[--config F] [--cores N]")
+    p.add_argument("--config", metavar="F", default="config.yaml",
+                   help="workflow config (YAML; default ./config.yaml; documented example: "
+                        "sample_config/config.yaml)")
+    p.add_argument("--cores", metavar="N", type=int,
+                   help="cores for local jobs (default: all available)")
+    p.add_argument("--profile", metavar="DIR",
+                   help="Snakemake profile folder, e.g. sample_config/profiles/slurm")
+
+
+def available_cores() -> int:
+    try:
+        return len(os.sched_getaffinity(0))
+    except AttributeError:  # not on Linux
+        return os.cpu_count() or 1
+
+
+def snakemake_command(config: str | Path, cfg: dict, cores: int | None, profile: str | None,
+                      extra: Sequence[str]) -> list[str]:
+    """The Snakemake command line ``run`` executes (``--nolock``: see :func:`run_workflow`)."""
+    from pipeline.workflow import SNAKEFILE
+    cmd = [sys.executable, "-m", "snakemake", "--snakefile", str(SNAKEFILE),
+           "--configfile", str(Path(config).resolve()),
+           "--config", f"config_dir={cfg['config_dir']}",
+           "--directory", cfg["output_dir"], "--rerun-incomplete", "--nolock"]
+    if profile:
+        cmd += ["--profile", str(Path(profile).resolve())]
+    if cores is not None or not profile:
+        cmd += ["--cores", str(cores or available_cores())]
+    return cmd + list(extra)
+
+
+def run_workflow(config: str | Path, cores: int | None = None, profile: str | None = None,
+                 extra: Sequence[str] = (), stream=sys.stderr) -> int:
+    """Validate, run Snakemake, and return the exit status of design §5."""
+    import fcntl
+    import signal
+    import subprocess
+
+    from pipeline import workflow
+    from pipeline.errors import EXIT_BAD_INPUT, InputError
+
+    if cores is not None and cores < 1:
+        raise InputError(f"--cores must be at least 1, got {cores}.")
+    if profile and not Path(profile, "config.yaml").is_file():
+        raise InputError(f"--profile {profile}: no config.yaml in that folder; a Snakemake "
+                         "profile is a folder holding config.yaml (see "
+                         "sample_config/profiles/slurm).")
+    cfg = workflow.load(config)              # schema, names the key; paths exist
+    plan = workflow.plan(cfg)                # discovery errors before any job
+    if not plan.sessions:
+        d = cfg["discovery"]
+        raise InputError(f"{config}: key `input_dir`: no session under {cfg['input_dir']} "
+                         f"({d['subject_glob']}/{d['session_glob']}/{d['datatype']}/) has a "
+                         f"series matching any `models.*.pattern`.")
+    out = Path(cfg["output_dir"])
+    out.mkdir(parents=True, exist_ok=True)
+    # One run per output folder at a time. The kernel drops this lock when the process
+    # dies, even on SIGKILL, so a killed run never leaves a stale lock behind; this is
+    # why Snakemake's own (file-based) lock is switched off with --nolock.
+    lock = open(out / ".relaxline-run.lock", "w")
+    try:
+        fcntl.flock(lock, fcntl.LOCK_EX | fcntl.LOCK_NB)
+    except BlockingIOError:
+        raise InputError(f"{out}: another `relaxline run` is working in this output folder; "
+                         "wait for it to finish.") from None
+    cmd = snakemake_command(config, cfg, cores, profile, extra)
+    print(f"relaxline run: {len(plan.sessions)} session(s), "
+          f"{sum(len(s.series) for s in plan.sessions)} series; output in {out}",
+          file=stream)
+    proc = subprocess.Popen(cmd)
+    previous = signal.signal(signal.SIGTERM, lambda *_: proc.terminate())
+    try:
+        rc = proc.wait()
+    except KeyboardInterrupt:  # Snakemake got the same SIGINT; let it clean up
+        rc = proc.wait()
+        raise
+    finally:
+        signal.signal(signal.SIGTERM, previous)
+        lock.close()
+    if rc != 0:
+        print(f"relaxline run: error: Snakemake stopped with status {rc}; the messages "
+              f"above name the failing job and its log (under {out}/logs/). Fix the cause "
+              "and run again: finished jobs are not repeated.", file=stream)
+        return EXIT_BAD_INPUT
+    if _NO_STATUS & set(extra):
+        return 0
+    status, summary = workflow.run_status(out)
+    report = out / workflow.REPORT
+    if report.is_file():
+        print(f"relaxline run: report: {report}", file=stream)
+    if summary:
+        print(f"relaxline run: attention: {summary}", file=stream)
+    return status
 
 
 def run(args: argparse.Namespace) -> int:
-    raise InputError("`relaxline run` is not available in this version yet; "
-                     "it lands with a later release of relaxline.")
+    return run_workflow(args.config, args.cores, args.profile, args.extra)

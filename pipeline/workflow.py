@@ -1,0 +1,625 @@
+"""Workflow glue: config, session discovery, job planning and the steps the rules run.
+
+The Snakefile (``pipeline/Snakefile`` + ``pipeline/rules/*.smk``) stays thin: it
+validates the config, asks :func:`plan` for the sessions and series, and every rule
+runs one step of this module as ``python -m pipeline.workflow STEP ...``, so the
+logic lives (and is tested) here.
+
+Layout of the output folder (the Snakemake working directory)::
+
+    sub-<p>/ses-<d>/maps/<model>/<stem>_<suffix>.nii.gz   maps as `relaxline fit` writes
+    sub-<p>/ses-<d>/maps/<model>/<stem>.fit.json          manifest, written last (job done)
+    sub-<p>/ses-<d>/chunks/<model>/<stem>/chunk-<i>.npz   slab results (temporary)
+    sub-<p>/ses-<d>/qc/<model>/roi_stats.tsv ...          as `relaxline qc` writes
+    sub-<p>/ses-<d>/qc/session.json                       QC summary of the session
+    sub-<p>/ses-<d>/qc/history.json                       the session is in the database
+    trend/drift.tsv, trend/scored.tsv, trend/*.png        drift rules and trend figures
+    report.html, status.json                              the report; exit status of a run
+    history.sqlite                                        (default) history database
+
+Every file is written atomically, and each job's declared output is written last, so
+an interrupted run leaves no partial file under a final name and resumes cleanly.
+"""
+from __future__ import annotations
+
+import argparse
+import copy
+import fnmatch
+import json
+import math
+import re
+import sys
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any, Sequence
+
+import numpy as np
+
+from pipeline.errors import EXIT_OK, EXIT_QC_FAIL, InputError
+
+SCHEMA = Path(__file__).with_name("schemas") / "config.schema.yaml"
+SNAKEFILE = Path(__file__).with_name("Snakefile")
+SESSION_DIR = "{sub}/{ses}"
+MANIFEST = "{sub}/{ses}/maps/{model}/{stem}.fit.json"
+CHUNK = "{sub}/{ses}/chunks/{model}/{stem}/chunk-{chunk}.npz"
+QC_SUMMARY = "{sub}/{ses}/qc/session.json"
+RECORDED = "{sub}/{ses}/qc/history.json"
+REPORT, STATUS, DRIFT = "report.html", "status.json", "trend/drift.tsv"
+# a config's model name -> which model provides its B1 map when b1 == "dam"
+B1_USERS = {"vfa": "none", "mese": "fitted"}  # value: the default when no B1 map is used
+
+
+# ---- config ---------------------------------------------------------------------------
+
+def _schema() -> dict:
+    import yaml
+    return yaml.safe_load(SCHEMA.read_text(encoding="utf-8"))
+
+
+def read_config(path: str | Path) -> dict:
+    """Read a YAML config file (errors name the file and line)."""
+    import yaml
+    p = Path(path)
+    if not p.is_file():
+        raise InputError(f"{p}: config file not found; copy sample_config/config.yaml and "
+                         "edit it, or give --config.")
+    try:
+        cfg = yaml.safe_load(p.read_text(encoding="utf-8"))
+    except yaml.YAMLError as exc:
+        mark = getattr(exc, "problem_mark", None)
+        where = f" (line {mark.line + 1}, column {mark.column + 1})" if mark else ""
+        raise InputError(f"{p}: not valid YAML{where}: {getattr(exc, 'problem', exc)}.") \
+            from None
+    if not isinstance(cfg, dict):
+        raise InputError(f"{p}: expected a mapping of config keys, got {type(cfg).__name__}.")
+    return cfg
+
+
+def _key_path(err) -> str:
+    parts = [str(p) for p in err.absolute_path]
+    return ".".join(parts) if parts else "(top level)"
+
+
+def validate_config(cfg: dict, source: str = "config") -> dict:
+    """Check ``cfg`` against the JSON schema and fill defaults; returns a new dict.
+
+    The first problem becomes an :class:`InputError` naming the key, e.g.
+    ``config.yaml: key `fit.chunk_voxels`: 'many' is not of type 'integer'``.
+    """
+    import jsonschema
+    schema = _schema()
+    validator = jsonschema.Draft202012Validator(schema)
+    errors = sorted(validator.iter_errors(cfg), key=lambda e: (len(e.absolute_path),
+                                                                list(map(str, e.absolute_path))))
+    if errors:
+        e = errors[0]
+        msg = e.message
+        if e.validator == "propertyNames":
+            msg = f"unknown name: {msg}"
+        if e.validator == "required":
+            missing = re.findall(r"'([^']+)' is a required property", msg)
+            key = ".".join([p for p in map(str, e.absolute_path)] + missing[:1])
+            raise InputError(f"{source}: key `{key}` is missing; see "
+                             "sample_config/config.yaml for a documented example.")
+        raise InputError(f"{source}: key `{_key_path(e)}`: {msg}. See "
+                         "sample_config/config.yaml for the allowed values.")
+    out = copy.deepcopy(cfg)
+    _fill_defaults(out, schema)
+    for name, m in out["models"].items():
+        b1 = m.get("b1")
+        if b1 is not None and name not in B1_USERS:
+            raise InputError(f"{source}: key `models.{name}.b1`: the {name} model takes no "
+                             "B1 map (only vfa and mese do); remove the key.")
+        if b1 == "fitted" and name != "mese":
+            raise InputError(f"{source}: key `models.{name}.b1`: 'fitted' applies to mese "
+                             "only; use 'dam' or 'none'.")
+        if b1 == "none" and name == "mese":
+            raise InputError(f"{source}: key `models.mese.b1`: use 'fitted' (B1 fitted from "
+                             "the echoes) or 'dam'.")
+        if b1 == "dam" and "dam" not in out["models"]:
+            raise InputError(f"{source}: key `models.{name}.b1` is 'dam' but no `models.dam` "
+                             "is configured; add the dam series pattern or set b1 to "
+                             f"'{B1_USERS[name]}'.")
+    return out
+
+
+def _fill_defaults(obj: dict, schema: dict) -> None:
+    for key, sub in schema.get("properties", {}).items():
+        if key not in obj and "default" in sub:
+            obj[key] = copy.deepcopy(sub["default"])
+        if isinstance(obj.get(key), dict) and sub.get("type") == "object":
+            _fill_defaults(obj[key], sub)
+
+
+def resolve_paths(cfg: dict, base: str | Path | None = None) -> dict:
+    """Make the config's paths absolute: relative to ``config_dir`` (or ``base``)."""
+    out = copy.deepcopy(cfg)
+    root = Path(out.get("config_dir") or base or Path.cwd()).resolve()
+    out["config_dir"] = str(root)
+
+    def absolute(p: str, against: Path) -> str:
+        q = Path(p).expanduser()
+        return str(q if q.is_absolute() else (against / q).resolve())
+
+    out["input_dir"] = absolute(out["input_dir"], root)
+    out["output_dir"] = absolute(out["output_dir"], root)
+    ph = out.setdefault("phantom", {})
+    for k in ("reference", "tolerances"):
+        if ph.get(k):
+            ph[k] = absolute(ph[k], root)
+    hist = out.setdefault("history", {})
+    hist["database"] = absolute(hist.get("database", "history.sqlite"), Path(out["output_dir"]))
+    return out
+
+
+def check_paths(cfg: dict, source: str = "config") -> None:
+    """Paths the config names must exist (before any job runs)."""
+    if not Path(cfg["input_dir"]).is_dir():
+        raise InputError(f"{source}: key `input_dir`: folder {cfg['input_dir']} not found; "
+                         "point it at the tree holding the sub-*/ses-* folders.")
+    for k in ("reference", "tolerances"):
+        p = cfg.get("phantom", {}).get(k)
+        if p and not Path(p).is_file():
+            raise InputError(f"{source}: key `phantom.{k}`: file {p} not found.")
+
+
+def load(path: str | Path | None = None, cfg: dict | None = None) -> dict:
+    """Read (or take), validate, resolve and check a config: what ``run`` and the Snakefile use."""
+    source = str(path) if path is not None else "config"
+    if cfg is None:
+        cfg = read_config(path)
+        cfg.setdefault("config_dir", str(Path(path).resolve().parent))
+    cfg = resolve_paths(validate_config(cfg, source))
+    check_paths(cfg, source)
+    return cfg
+
+
+# ---- discovery ------------------------------------------------------------------------
+
+@dataclass
+class SeriesJob:
+    """One fit: a model on one series of one session."""
+
+    sub: str
+    ses: str
+    model: str
+    stem: str
+    inputs: list[str]
+    shape: tuple[int, int, int]
+    slabs: list[tuple[int, int]]   # z ranges of the chunk jobs; one entry = unchunked
+
+    @property
+    def chunked(self) -> bool:
+        return len(self.slabs) > 1
+
+    def manifest(self) -> str:
+        return MANIFEST.format(sub=self.sub, ses=self.ses, model=self.model, stem=self.stem)
+
+    def chunk_files(self) -> list[str]:
+        return [CHUNK.format(sub=self.sub, ses=self.ses, model=self.model, stem=self.stem,
+                             chunk=i) for i in range(len(self.slabs))] if self.chunked else []
+
+
+@dataclass
+class Session:
+    sub: str
+    ses: str
+    folder: Path
+    site: str
+    scanner: str
+    labels: str | None
+    series: list[SeriesJob] = field(default_factory=list)
+
+    @property
+    def label(self) -> str:
+        """Session label as QC writes it (the ``ses-`` value)."""
+        return self.ses[len("ses-"):] if self.ses.startswith("ses-") else self.ses
+
+
+@dataclass
+class Plan:
+    sessions: list[Session]
+
+    def session(self, sub: str, ses: str) -> Session:
+        for s in self.sessions:
+            if s.sub == sub and s.ses == ses:
+                return s
+        raise KeyError(f"{sub}/{ses}")
+
+    def job(self, sub: str, ses: str, model: str, stem: str) -> SeriesJob:
+        for j in self.session(sub, ses).series:
+            if j.model == model and j.stem == stem:
+                return j
+        raise KeyError(f"{sub}/{ses}/{model}/{stem}")
+
+    def b1_source(self, cfg: dict, job: SeriesJob) -> SeriesJob | None:
+        """The dam fit whose TB1map feeds ``job`` (vfa/mese with ``b1: dam``)."""
+        if cfg["models"][job.model].get("b1") != "dam":
+            return None
+        dams = [j for j in self.session(job.sub, job.ses).series if j.model == "dam"]
+        if len(dams) != 1:
+            raise InputError(f"{self.session(job.sub, job.ses).folder}: models.{job.model}.b1 "
+                             f"is 'dam' but {len(dams)} dam series match "
+                             f"'{cfg['models']['dam']['pattern']}'; make the pattern match "
+                             "exactly one.")
+        return dams[0]
+
+
+def slab_bounds(nz: int, per_slice: int, max_voxels: int) -> list[tuple[int, int]]:
+    """z ranges of whole slices holding at most ``max_voxels`` voxels (≥ 1 slice each)."""
+    step = max(1, max_voxels // max(per_slice, 1))
+    return [(z0, min(z0 + step, nz)) for z0 in range(0, nz, step)]
+
+
+def _series_groups(files: list[Path]) -> dict[str, list[Path]]:
+    # 3D files differing only by an index entity (flip-, echo-, inv-...) are one series;
+    # the series reader names the stem the same way.
+    from pipeline.series import _series_stem, nifti_stem
+    from pipeline.series import _INDEX_ENTITY  # noqa: PLC2701 (same package)
+    groups: dict[str, list[Path]] = {}
+    for f in files:
+        groups.setdefault(_INDEX_ENTITY.sub("", nifti_stem(f)), []).append(f)
+    return {_series_stem(sorted(v)): sorted(v) for v in groups.values()}
+
+
+def _site_scanner(folder: Path, cfg: dict) -> tuple[str, str]:
+    for side in sorted(folder.glob("*.json")):
+        try:
+            meta = json.loads(side.read_text(encoding="utf-8"))
+        except (OSError, ValueError):
+            continue
+        if isinstance(meta, dict) and ("Site" in meta or "Scanner" in meta):
+            return (str(meta.get("Site", cfg["history"]["site"])),
+                    str(meta.get("Scanner", cfg["history"]["scanner"])))
+    return cfg["history"]["site"], cfg["history"]["scanner"]
+
+
+def plan(cfg: dict) -> Plan:
+    """Find the sessions of ``input_dir`` and the fit jobs of each (reads headers only)."""
+    import nibabel as nib
+    d = cfg["discovery"]
+    root = Path(cfg["input_dir"])
+    only = set(d.get("sessions") or [])
+    sessions = []
+    for sub_dir in sorted(p for p in root.glob(d["subject_glob"]) if p.is_dir()):
+        for ses_dir in sorted(p for p in sub_dir.glob(d["session_glob"]) if p.is_dir()):
+            if only and ses_dir.name not in only:
+                continue
+            folder = ses_dir / d["datatype"]
+            if not folder.is_dir():
+                continue
+            names = sorted(p for p in folder.iterdir() if p.is_file())
+            labels = [p for p in names if fnmatch.fnmatch(p.name, cfg["phantom"]["labels"])]
+            if len(labels) > 1:
+                raise InputError(f"{folder}: {len(labels)} files match the label pattern "
+                                 f"phantom.labels = '{cfg['phantom']['labels']}'; make it "
+                                 "match one.")
+            site, scanner = _site_scanner(folder, cfg)
+            s = Session(sub_dir.name, ses_dir.name, folder, site, scanner,
+                        str(labels[0]) if labels else None)
+            for model, m in cfg["models"].items():
+                files = [p for p in names if fnmatch.fnmatch(p.name, m["pattern"])
+                         and p not in labels and re.search(r"\.nii(\.gz)?$", p.name)]
+                for stem, group in _series_groups(files).items():
+                    try:
+                        shape = tuple(int(v) for v in nib.load(str(group[0])).shape[:3])
+                    except Exception as exc:
+                        raise InputError(f"{group[0]}: cannot be read as NIfTI ({exc}).") \
+                            from None
+                    shape = (shape + (1, 1, 1))[:3]
+                    n = shape[0] * shape[1] * shape[2]
+                    slabs = slab_bounds(shape[2], shape[0] * shape[1], cfg["fit"]["chunk_voxels"]) \
+                        if n > cfg["fit"]["chunk_voxels"] else [(0, shape[2])]
+                    s.series.append(SeriesJob(s.sub, s.ses, model, stem,
+                                              [str(p) for p in group], shape, slabs))
+            if s.series:
+                sessions.append(s)
+    return Plan(sessions)
+
+
+# ---- steps run by the rules -------------------------------------------------------------
+
+def b1_map_path(maps_manifest: str | Path) -> str:
+    """The TB1map listed in a dam fit's manifest."""
+    m = json.loads(Path(maps_manifest).read_text(encoding="utf-8"))
+    hits = [p for p in m["files"] if p.endswith("_TB1map.nii.gz") and "_desc-" not in p]
+    if len(hits) != 1:
+        raise InputError(f"{maps_manifest}: expected one TB1map in the dam outputs, found "
+                         f"{len(hits)}.")
+    return str(Path(maps_manifest).parent / hits[0])
+
+
+def write_manifest(path: str | Path, files: Sequence[Path], inputs: Sequence[str],
+                   model: str) -> None:
+    from pipeline.outputs import atomic_write_json
+    from pipeline.series import sha256_file
+    atomic_write_json(path, {"model": model, "inputs": list(inputs),
+                             "files": sorted(Path(f).name for f in files),
+                             "sha256": {Path(f).name: sha256_file(f) for f in files}})
+
+
+def step_fit(model: str, inputs: Sequence[str], out_dir: str, manifest: str,
+             b1_manifest: str | None, engine: str, threads: int, time_unit: str,
+             chunks: Sequence[str] = ()) -> None:
+    """Fit one series (or gather its chunk results) and write the manifest last."""
+    from pipeline.fitjob import fit_command, prepare, write_fit_outputs
+    b1 = b1_map_path(b1_manifest) if b1_manifest else None
+    if not chunks:
+        files = fit_command(model, inputs, out_dir, b1=b1, engine=engine, jobs=threads,
+                            time_unit=time_unit, show_progress=False)
+    else:
+        _, series, _ = prepare(model, inputs, time_unit)
+        parts = [np.load(c) for c in chunks]
+        keys = parts[0]["__keys__"].tolist()
+        options = json.loads(str(parts[0]["__options__"]))
+        arrays = {k: np.concatenate([p[f"a{i}"] for p in parts], axis=2)
+                  for i, k in enumerate(keys)}
+        files = write_fit_outputs(arrays, series, out_dir, model, options["engine"], options)
+    write_manifest(manifest, files, inputs, model)
+
+
+def step_chunk(model: str, inputs: Sequence[str], z0: int, z1: int, out: str,
+               b1_manifest: str | None, engine: str, threads: int, time_unit: str) -> None:
+    """Fit slices z0:z1 of a series into an .npz (noise σ from the whole series)."""
+    from pipeline.fitjob import estimate_noise, fit_arrays, prepare
+    from pipeline.outputs import atomic_write_bytes
+    from pipeline.series import load_grid_map
+    import io
+    _, series, _ = prepare(model, inputs, time_unit)
+    b1 = b1_map_path(b1_manifest) if b1_manifest else None
+    b1_arr = load_grid_map(b1, series, what="B1 map") if b1 else None
+    options = {"engine": engine, "jobs": int(threads), "time_unit": time_unit, "mask": None,
+               "b1_map": str(b1) if b1 else None, "noise_sigma": estimate_noise(series)}
+    arrays = fit_arrays(model, series, None, b1_arr, options, z=slice(z0, z1))
+    keys = list(arrays)
+    buf = io.BytesIO()
+    np.savez(buf, __keys__=np.array(keys), __options__=np.array(json.dumps(options)),
+             **{f"a{i}": arrays[k] for i, k in enumerate(keys)})
+    atomic_write_bytes(out, buf.getvalue())
+
+
+def qc_settings(cfg: dict, s: Session) -> dict:
+    """What the QC job of session ``s`` needs (passed as a rule parameter, so a change
+    reruns exactly the jobs it affects)."""
+    ph = cfg["phantom"]
+    return {"sub": s.sub, "ses": s.ses, "session": s.label, "site": s.site,
+            "scanner": s.scanner, "labels": s.labels, "labels_pattern": ph["labels"],
+            "folder": str(s.folder), "reference": ph.get("reference"),
+            "tolerances": ph.get("tolerances"), "erode_mm": ph.get("erode_mm", 0.0),
+            "figures": cfg["report"]["figures"]}
+
+
+def step_qc(settings: dict, manifests: Sequence[str], out: str) -> None:
+    """QC of every model's maps of one session; the summary JSON is written last.
+
+    Each model's maps folder gets the same treatment as ``relaxline qc MAPS --labels L
+    --reference R --out qc/<model>``; a vial failure is recorded, not raised, so the
+    other sessions and the trend still run (``relaxline run`` turns it into exit 1).
+    """
+    from pipeline.outputs import atomic_write_json
+    from pipeline.qcjob import labels_from_file, run_qc
+    s = settings
+    qc_root = Path(out).parent
+    summary: dict[str, Any] = {k: s[k] for k in ("sub", "ses", "session", "site", "scanner",
+                                                  "labels")}
+    summary["models"], summary["note"] = {}, ""
+    models = sorted({json.loads(Path(m).read_text())["model"] for m in manifests})
+    if not s["labels"]:  # e.g. a scan session without regions: maps only
+        summary["note"] = (f"no label map matches phantom.labels = '{s['labels_pattern']}' "
+                           f"in {s['folder']}; maps only, no ROI statistics")
+        models = []
+    for model in models:
+        maps_dir = Path(manifests[0]).parent.parent / model
+        res = run_qc(maps_dir, qc_root / model, labels_from_file(s["labels"]),
+                     reference_path=s["reference"], config=s["tolerances"],
+                     session=s["session"], erode_mm=s["erode_mm"], figures=s["figures"])
+        counts = res.table["status"].value_counts().to_dict()
+        summary["models"][model] = {"roi_stats": str(qc_root / model / "roi_stats.tsv"),
+                                    "counts": {k: int(v) for k, v in counts.items()},
+                                    "warnings": res.warnings, "exit_status": res.exit_code}
+    summary["fail"] = any(m["counts"].get("fail", 0) for m in summary["models"].values())
+    atomic_write_json(out, summary)
+
+
+def history_series(model: str, stem: str, ses: str) -> str:
+    """Series key in the history: stable across sessions (``ses-`` entity removed) and
+    distinct per model (mese and mese-mono fit the same series)."""
+    return f"{model}:{re.sub(rf'_?{re.escape(ses)}(?=_|$)', '', stem)}"
+
+
+def session_table(summary: dict) -> "pd.DataFrame":
+    """All models' ROI statistics of a session with the history's series key."""
+    import pandas as pd
+    parts = []
+    for model, m in summary["models"].items():
+        t = pd.read_csv(m["roi_stats"], sep="\t")
+        t.insert(0, "model", model)
+        t["series"] = [history_series(model, str(st_), summary["ses"]) for st_ in t["series"]]
+        parts.append(t)
+    return pd.concat(parts, ignore_index=True) if parts else pd.DataFrame()
+
+
+def step_record(database: str, summary_path: str, out: str) -> None:
+    """Replace the session's rows in the history database (one transaction)."""
+    from pipeline.outputs import atomic_write_json
+    from qc.history import record_session
+    summary = json.loads(Path(summary_path).read_text(encoding="utf-8"))
+    table = session_table(summary)
+    temps = table["temperature"].dropna() if "temperature" in table else []
+    n = record_session(database, table, site=summary["site"],
+                       scanner=summary["scanner"], session=summary["session"],
+                       subject=summary["sub"],
+                       temperature=float(temps.iloc[0]) if len(temps) else None,
+                       source=str(Path(summary_path).resolve()))
+    atomic_write_json(out, {"database": database, "rows": n,
+                            "site": summary["site"], "scanner": summary["scanner"],
+                            "session": summary["session"]})
+
+
+def report_settings(cfg: dict) -> dict:
+    """What the report job needs (a rule parameter)."""
+    return {"database": cfg["history"]["database"], "drift": cfg["drift"],
+            "title": cfg["report"]["title"]}
+
+
+def drift_settings(d: dict):
+    """:class:`qc.drift.DriftSettings` from the config's ``drift`` section."""
+    from qc.drift import DriftSettings
+    return DriftSettings(baseline_sessions=d["baseline_sessions"],
+                         baseline=tuple(d["baseline"]) or None, rules=tuple(d["rules"]),
+                         warning_trigger=d["warning_trigger"], min_sd_pct=d["min_sd_pct"],
+                         reference_pct=d["reference_pct"],
+                         reference_consecutive=d["reference_consecutive"], value=d["value"])
+
+
+def step_report(cfg: dict, summaries: Sequence[str], report: str, status: str,
+                drift_tsv: str) -> None:
+    """Drift rules over the whole history, trend figures, the report and status.json."""
+    import pandas as pd
+    from pipeline.outputs import atomic_write_bytes, atomic_write_json, atomic_write_text, \
+        atomic_write_tsv
+    from qc import drift, trend
+    from qc.history import load_history
+    from qc.report import build_report
+    settings = drift_settings(cfg["drift"])
+    hist = load_history(cfg["database"])
+    scored, violations = drift.evaluate(hist, settings)
+    trend_dir = Path(drift_tsv).parent
+    atomic_write_tsv(trend_dir / "scored.tsv", scored)
+    figures = trend.trend_figures(scored, violations, settings.value) if not hist.empty else {}
+    for key, png in figures.items():
+        name = re.sub(r"[^0-9A-Za-z._-]+", "-", "_".join(str(k) for k in key))
+        atomic_write_bytes(trend_dir / f"{name}.png", png)
+    current = drift.current_rejections(violations, hist)
+    base = drift.baseline_sessions(hist, settings)
+    note = "; ".join(f"{site}/{scanner}: baseline " +
+                     (f"{len(b)} session(s) {b[0]} to {b[-1]}" if b else
+                      f"not yet established (needs {settings.baseline_sessions} sessions "
+                      "or the configured baseline list); drift rules other than ref-pct "
+                      "wait for it")
+                     for (site, scanner), b in base.items()) or "no history yet"
+    sess = [json.loads(Path(p).read_text(encoding="utf-8")) for p in summaries]
+    qc_fail_latest = _latest_fails(sess)
+    rows = []
+    for s in sess:
+        for model, m in s["models"].items():
+            c = m["counts"]
+            rows.append({"site": s["site"], "scanner": s["scanner"], "session": s["session"],
+                         "subject": s["sub"], "model": model, "pass": c.get("pass", 0),
+                         "warn": c.get("warn", 0), "fail": c.get("fail", 0),
+                         "n/a": c.get("n/a", 0),
+                         "qc report": str(Path(m["roi_stats"]).with_name("report.html"))})
+    sessions_df = pd.DataFrame(rows)
+    exit_status = EXIT_QC_FAIL if (len(current) or qc_fail_latest) else EXIT_OK
+    atomic_write_tsv(drift_tsv, violations)
+    newest = [s for s in sess if not s["models"] or f"{s['sub']}/{s['ses']}" in
+              _latest(sess)]
+    table = pd.concat([pd.read_csv(m["roi_stats"], sep="\t") for s in newest
+                       for m in s["models"].values()] or [pd.DataFrame(columns=["status"])],
+                      ignore_index=True)
+    warnings = [f"QC failure in the newest session {x}" for x in qc_fail_latest]
+    warnings += [f"drift rule {r.rule} rejects {r.site}/{r.scanner} session {r.session}, "
+                 f"{r.series} {r.map} label {r.label}: {r.detail}" for r in current.itertuples()]
+    warnings += [f"{s['sub']}/{s['ses']}: {s['note']}" for s in sess if s.get("note")]
+    sections = [("Sessions", trend.html_table(sessions_df, list(sessions_df.columns))
+                 if not sessions_df.empty else "<p>No session.</p>"),
+                ("History and drift", trend.history_section_html(scored, violations, figures,
+                                                                 note))]
+    page = build_report(table, title=cfg["title"], summary={
+        "sessions": len(sess), "newest": ", ".join(sorted(_latest(sess))),
+        "history database": cfg["database"], "drift rules": ", ".join(settings.rules)},
+        warnings=warnings, extra_sections=sections)
+    atomic_write_text(report, page)
+    atomic_write_json(status, {
+        "exit_status": exit_status, "sessions": len(sess),
+        "qc_fail_latest": qc_fail_latest,
+        "drift_rejections_latest": current[["site", "scanner", "session", "series", "map",
+                                            "label", "rule"]].to_dict("records")
+        if len(current) else [],
+        "drift_rejections_total": int((violations["severity"] == "reject").sum())
+        if len(violations) else 0,
+        "report": str(Path(report).resolve()), "database": cfg["database"]})
+
+
+def _latest(summaries: list[dict]) -> set[str]:
+    """``sub/ses`` of the newest session of each site/scanner."""
+    latest: dict[tuple[str, str], dict] = {}
+    for s in summaries:
+        k = (s["site"], s["scanner"])
+        if k not in latest or s["session"] > latest[k]["session"]:
+            latest[k] = s
+    return {f"{s['sub']}/{s['ses']}" for s in latest.values()}
+
+
+def _latest_fails(summaries: list[dict]) -> list[str]:
+    """Newest sessions (of their site/scanner) with a QC fail."""
+    newest = _latest(summaries)
+    return sorted(f"{s['sub']}/{s['ses']}" for s in summaries
+                  if s["fail"] and f"{s['sub']}/{s['ses']}" in newest)
+
+
+def run_status(output_dir: str | Path) -> tuple[int, str]:
+    """Exit status and a one-line summary from a finished run's ``status.json``."""
+    p = Path(output_dir) / STATUS
+    if not p.is_file():
+        return EXIT_OK, ""
+    st_ = json.loads(p.read_text(encoding="utf-8"))
+    parts = []
+    if st_.get("qc_fail_latest"):
+        parts.append("QC failure in " + ", ".join(st_["qc_fail_latest"]))
+    if st_.get("drift_rejections_latest"):
+        parts.append(f"{len(st_['drift_rejections_latest'])} drift-rule rejection(s) in the "
+                     "newest session(s)")
+    return int(st_.get("exit_status", 0)), "; ".join(parts)
+
+
+# ---- `python -m pipeline.workflow STEP` ------------------------------------------------
+
+def main(argv: Sequence[str] | None = None) -> int:
+    ap = argparse.ArgumentParser(prog="python -m pipeline.workflow",
+                                 description="One step of the relaxline workflow (called by "
+                                             "the Snakemake rules).")
+    sub = ap.add_subparsers(dest="step", required=True)
+    for name in ("fit", "chunk"):
+        p = sub.add_parser(name)
+        p.add_argument("--model", required=True)
+        p.add_argument("--inputs", nargs="+", required=True)
+        p.add_argument("--b1-manifest")
+        p.add_argument("--engine", default="fast")
+        p.add_argument("--threads", type=int, default=1)
+        p.add_argument("--time-unit", default="s")
+        p.add_argument("--out", required=True)
+        if name == "fit":
+            p.add_argument("--manifest", required=True)
+            p.add_argument("--chunks", nargs="*", default=[])
+        else:
+            p.add_argument("--z", type=int, nargs=2, required=True)
+    for name in ("qc", "record", "report"):
+        p = sub.add_parser(name)
+        p.add_argument("--settings", required=True, help="JSON object")
+        p.add_argument("--inputs", nargs="*", default=[])
+        p.add_argument("--out", nargs="+", required=True)
+    a = ap.parse_args(argv)
+    try:
+        if a.step == "fit":
+            step_fit(a.model, a.inputs, a.out, a.manifest, a.b1_manifest, a.engine, a.threads,
+                     a.time_unit, a.chunks)
+        elif a.step == "chunk":
+            step_chunk(a.model, a.inputs, a.z[0], a.z[1], a.out, a.b1_manifest, a.engine,
+                       a.threads, a.time_unit)
+        else:
+            settings = json.loads(a.settings)
+            if a.step == "qc":
+                step_qc(settings, a.inputs, a.out[0])
+            elif a.step == "record":
+                step_record(settings["database"], a.inputs[0], a.out[0])
+            else:
+                step_report(settings, a.inputs, *a.out)
+    except InputError as exc:
+        print(f"relaxline workflow {a.step}: error: {exc}", file=sys.stderr)
+        return 2
+    return 0
+
+
+if __name__ == "__main__":  # pragma: no cover
+    sys.exit(main())

@@ -1,0 +1,142 @@
+"""Trend figures per vial across sessions and the history section of the report.
+
+One figure per (site, scanner, series, map): a panel per vial with the measured value
+(mean ± SD of the ROI) in session order, the reference corrected to each session's
+temperature, its tolerance band, the baseline mean with ±2 SD and ±3 SD control limits
+(Westgard et al. 1981, Clin Chem 27:493) and the sessions where a drift rule fired.
+Violations are marked by shape and labelled, so the figures read in grey.
+"""
+from __future__ import annotations
+
+import base64
+import html
+import math
+
+import numpy as np
+import pandas as pd
+
+from qc.figures import QUANTITY_LABEL, _plt, to_png
+
+PANEL_GROUP = ("site", "scanner", "series", "map")
+
+
+def trend_figure(scored: pd.DataFrame, violations: pd.DataFrame | None = None,
+                 value: str = "mean", title: str = "") -> bytes:
+    """PNG of one (site, scanner, series, map): a panel per vial over sessions.
+
+    Parameters
+    ----------
+    scored : rows of one group as returned by :func:`qc.drift.evaluate` (``session``,
+        ``label``, ``name``, ``value``, ``sd``, ``reference_at_temperature``,
+        ``tolerance_pct``, ``baseline_mean``, ``baseline_sd``).
+    violations : drift violations of the group (rule per session and label).
+    """
+    plt = _plt()
+    sessions = sorted(scored["session"].astype(str).unique())
+    xpos = {s: i for i, s in enumerate(sessions)}
+    labels = sorted(scored["label"].astype(int).unique())
+    ncol = min(4, len(labels))
+    nrow = math.ceil(len(labels) / ncol)
+    fig, axes = plt.subplots(nrow, ncol, figsize=(3.2 * ncol, 2.4 * nrow + 0.6),
+                             squeeze=False, sharex=True)
+    mapname = str(scored["map"].iloc[0])
+    for ax in axes.flat[len(labels):]:
+        ax.set_visible(False)
+    for ax, lab in zip(axes.flat, labels):
+        g = scored[scored["label"].astype(int) == lab].sort_values("session")
+        x = np.array([xpos[s] for s in g["session"].astype(str)])
+        y = g[value].astype(float).to_numpy()
+        sd = g["sd"].astype(float).to_numpy() if "sd" in g else np.zeros_like(y)
+        ax.errorbar(x, y, yerr=sd, fmt="o-", color="#2166ac", ms=4, lw=1, capsize=2,
+                    label="measured")
+        ref = g["reference_at_temperature"].astype(float).to_numpy() \
+            if "reference_at_temperature" in g else np.full_like(y, np.nan)
+        if np.isfinite(ref).any():
+            ax.plot(x, ref, "k--", lw=1, label="reference")
+            tol = g["tolerance_pct"].astype(float).to_numpy() \
+                if "tolerance_pct" in g else np.full_like(y, np.nan)
+            ok = np.isfinite(tol) & np.isfinite(ref)
+            if ok.any():
+                ax.fill_between(x[ok], (ref * (1 - tol / 100))[ok], (ref * (1 + tol / 100))[ok],
+                                color="0.85", label="tolerance", zorder=0)
+        bm = g["baseline_mean"].astype(float).to_numpy() if "baseline_mean" in g else []
+        if len(bm) and np.isfinite(bm).any():
+            m, s = float(np.nanmax(bm)), float(np.nanmax(g["baseline_sd"].astype(float)))
+            ax.axhline(m, color="#1b7837", lw=0.8, label="baseline mean, ±2/3 SD")
+            for k, ls in ((2, ":"), (3, "-.")):
+                ax.axhline(m + k * s, color="#1b7837", lw=0.7, ls=ls)
+                ax.axhline(m - k * s, color="#1b7837", lw=0.7, ls=ls)
+        if violations is not None and not violations.empty:
+            vv = violations[(violations["label"].astype(int) == lab)]
+            for sev, marker, colour in (("warning", "s", "#b35806"), ("reject", "X", "#b2182b")):
+                hit = vv[vv["severity"] == sev]
+                for ses, rules in hit.groupby("session")["rule"]:
+                    if ses not in xpos:
+                        continue
+                    yv = float(g.loc[g["session"].astype(str) == ses, value].iloc[0])
+                    ax.plot(xpos[ses], yv, marker, color=colour, ms=9, mfc="none", mew=1.5)
+                    ax.annotate(",".join(sorted(set(rules))), (xpos[ses], yv), fontsize=6,
+                                xytext=(3, 5), textcoords="offset points", color=colour)
+        name = str(g["name"].iloc[0]) if "name" in g and g["name"].notna().any() else ""
+        ax.set_title(f"{lab} {name}".strip(), fontsize=8)
+        ax.tick_params(labelsize=6)
+        ax.set_xticks(range(len(sessions)))
+        ax.set_xticklabels(sessions, rotation=60, ha="right", fontsize=6)
+    q = QUANTITY_LABEL.get(mapname, mapname)
+    fig.supylabel(f"{q} ({value})", fontsize=8)
+    fig.suptitle(title or mapname, fontsize=9)
+    handles, names = axes.flat[0].get_legend_handles_labels()
+    if handles:
+        fig.legend(handles, names, loc="lower center", ncol=len(handles), fontsize=7,
+                   frameon=False)
+    fig.tight_layout(rect=(0, 0.05, 1, 0.97))
+    return to_png(fig)
+
+
+def trend_figures(scored: pd.DataFrame, violations: pd.DataFrame, value: str = "mean"
+                  ) -> dict[tuple[str, str, str, str], bytes]:
+    """:func:`trend_figure` for every (site, scanner, series, map) of ``scored``."""
+    out = {}
+    for key, g in scored.groupby(list(PANEL_GROUP), sort=True):
+        v = violations.merge(pd.DataFrame([key], columns=list(PANEL_GROUP)), how="inner") \
+            if not violations.empty else violations
+        out[key] = trend_figure(g, v, value, title=" / ".join(str(k) for k in key))
+    return out
+
+
+def html_table(df: pd.DataFrame, columns: list[str]) -> str:
+    """A plain HTML table of ``columns`` (floats to 4 significant digits, text escaped)."""
+    head = "".join(f"<th>{html.escape(c)}</th>" for c in columns)
+    body = []
+    for r in df[columns].itertuples(index=False):
+        cells = []
+        for v in r:
+            if isinstance(v, float):
+                v = "" if math.isnan(v) else f"{v:.4g}"
+            cells.append(f"<td>{html.escape(str(v))}</td>")
+        body.append("<tr>" + "".join(cells) + "</tr>")
+    return f"<table><thead><tr>{head}</tr></thead><tbody>{''.join(body)}</tbody></table>"
+
+
+def history_section_html(scored: pd.DataFrame, violations: pd.DataFrame,
+                         figures: dict[tuple, bytes], baseline_note: str) -> str:
+    """HTML fragment: drift-rule violations, baseline note and embedded trend figures."""
+    parts = [f"<p>{html.escape(baseline_note)}</p>"]
+    n_sessions = scored[["site", "scanner", "session"]].drop_duplicates().shape[0] \
+        if not scored.empty else 0
+    parts.append(f"<p>{n_sessions} session(s) in the history database.</p>")
+    if violations.empty:
+        parts.append("<p><strong>No drift rule fired.</strong></p>")
+    else:
+        rej = violations[violations["severity"] == "reject"]
+        parts.append(f"<p><strong>{len(rej)} rejection(s), "
+                     f"{len(violations) - len(rej)} warning(s).</strong></p>")
+        parts.append(html_table(violations, ["site", "scanner", "session", "series", "map",
+                                         "label", "name", "rule", "severity", "value", "z",
+                                         "detail"]))
+    for key, png in figures.items():
+        alt = " / ".join(str(k) for k in key)
+        parts.append(f'<figure><img alt="trend {html.escape(alt)}" src="data:image/png;base64,'
+                     f'{base64.b64encode(png).decode()}"><figcaption>{html.escape(alt)}'
+                     "</figcaption></figure>")
+    return "\n".join(parts)
