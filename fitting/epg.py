@@ -128,8 +128,8 @@ def _recursion(n: int, esp: float, t2, t1, b1, m0, a_ref: float, a_exc: float, o
     ca1, hsa1 = ca * e1, hsa * e1
 
     nj = (n + 1) // 2 + 1                      # active states min(p, N − p + 1) ≤ ⌈N/2⌉
-    pos = np.zeros((n + nj + 1, nv))
-    neg = np.zeros((n + nj + 1, nv))
+    pos = np.zeros((n + 1, nv))                # slots pp + j ≤ n
+    neg = np.zeros((n + 1, nv))                # slots qq + j ≤ n − 1; never-used slots stay 0
     zz = np.zeros((nj, nv))
     tu = np.empty((nj, nv))
     td = np.empty((nj, nv))
@@ -192,10 +192,8 @@ def _recursion(n: int, esp: float, t2, t1, b1, m0, a_ref: float, a_exc: float, o
         # Orders move by +2: the old F_−1 becomes F_+1, every other state keeps its slot.
         pp -= 1
         pos[pp] = b[0]
-        neg[qq] = 0.0
         if derivs:
             gpos[:, pp] = gb[:, 0]
-            gneg[:, qq] = 0.0
         qq += 1
 
 
