@@ -39,6 +39,20 @@ def test_sign_change_of_late_echoes_matches_isochromats():
     np.testing.assert_allclose(cpmg_echoes(*args, **kw), np.abs(ref), rtol=0, atol=1e-12)
 
 
+def test_epg_matches_isochromats_random_protocols():
+    # Same independent reference (Hennig 1988 model sampled by isochromats) over random
+    # echo counts, spacings, relaxation times (T1 = ∞ included), B1 and both pulse angles.
+    rng = np.random.default_rng(5)
+    for _ in range(15):
+        n = int(rng.integers(1, 20))
+        esp, t2 = rng.uniform(0.003, 0.02), rng.uniform(0.005, 0.5)
+        t1 = np.inf if rng.random() < 0.3 else rng.uniform(0.1, 3.0)
+        b1, ref, exc = rng.uniform(0.3, 1.7), rng.uniform(60.0, 180.0), rng.uniform(30.0, 150.0)
+        expected = isochromat_cpmg(n, esp, t2, t1, b1, ref, exc, m0=1.3, n_iso=4 * n + 3)
+        got = cpmg_echoes(n, esp, t2, t1, b1, ref, exc, m0=1.3, signed=True)
+        np.testing.assert_allclose(got, expected, rtol=0, atol=1e-9)
+
+
 def test_isochromat_count_converged():
     # Uniform dephasing over N isochromats averages harmonics below N exactly, so more
     # isochromats must not change the answer (guards the reference itself).
