@@ -101,7 +101,7 @@ def _protocol_dict(model: str, ev, unit: str) -> dict:
     return d
 
 
-def _figure(result, compared_values, sim, path: str) -> bytes:
+def _figure(result, compared_values, sim) -> bytes:
     import matplotlib
     matplotlib.use("Agg")
     import matplotlib.pyplot as plt
@@ -163,7 +163,7 @@ def run(args: argparse.Namespace) -> int:
         sim = simulate_cv(problem, result.proposed.values, vgrid, trials=args.trials,
                           seed=args.seed)
     if args.plot:
-        atomic_write_bytes(args.plot, _figure(result, compare, sim, args.plot))
+        atomic_write_bytes(args.plot, _figure(result, compare, sim))
 
     out = {
         "model": model,
