@@ -224,6 +224,29 @@ def write_fit_outputs(arrays: Mapping[str, np.ndarray], series: Series, out_dir:
     return paths
 
 
+def load_b1(spec: ModelSpec, series: Series, b1: str | Path | None, stream: TextIO,
+            command: str = "fit") -> np.ndarray | None:
+    """The ``--b1`` map of ``spec`` (configured for it) on the series grid, or None.
+
+    Errors when the model uses no B1 map or the map looks like percent; warns on
+    ``stream`` when the model uses one and none is given. Shared by ``fit`` and ``refit``.
+    """
+    if b1 and "b1" not in spec.voxel_fixed:
+        raise InputError(f"--b1 {b1}: the {spec.name} model does not use a B1 map "
+                         f"(it applies to: vfa, mese).")
+    b1_arr = load_grid_map(b1, series, what="B1 map") if b1 else None
+    if b1_arr is not None:
+        finite = b1_arr[np.isfinite(b1_arr)]
+        if finite.size and np.nanmedian(finite) > 10:
+            raise InputError(f"{b1}: B1 map median {np.nanmedian(finite):g} looks like a percent "
+                             f"map; --b1 expects the ratio actual/nominal flip angle (about 1).")
+    if "b1" in spec.voxel_fixed and b1_arr is None:
+        print(f"relaxline {command}: warning: no --b1 map given; fitting {spec.name} with "
+              f"B1 = 1. T1 is biased wherever the actual flip angle differs from the nominal "
+              f"one (B1 != 1); pass a B1 map (e.g. from `relaxline fit dam`).", file=stream)
+    return b1_arr
+
+
 def fit_command(model: str, inputs: Sequence[str | Path], out: str | Path,
                 mask: str | Path | None = None, b1: str | Path | None = None,
                 engine: str = "fast", jobs: int = 1, time_unit: str = "s",
@@ -238,19 +261,7 @@ def fit_command(model: str, inputs: Sequence[str | Path], out: str | Path,
     spec, series, fixed = prepare(model, inputs, time_unit)
     spec = configure_model(spec, {"b1_map": str(b1) if b1 else None})
     mask_arr = load_grid_map(mask, series, what="mask") if mask else None
-    if b1 and "b1" not in spec.voxel_fixed:
-        raise InputError(f"--b1 {b1}: the {spec.name} model does not use a B1 map "
-                         f"(it applies to: vfa, mese).")
-    b1_arr = load_grid_map(b1, series, what="B1 map") if b1 else None
-    if b1_arr is not None:
-        finite = b1_arr[np.isfinite(b1_arr)]
-        if finite.size and np.nanmedian(finite) > 10:
-            raise InputError(f"{b1}: B1 map median {np.nanmedian(finite):g} looks like a percent "
-                             f"map; --b1 expects the ratio actual/nominal flip angle (about 1).")
-    if "b1" in spec.voxel_fixed and b1_arr is None:
-        print(f"relaxline fit: warning: no --b1 map given; fitting {spec.name} with B1 = 1. "
-              f"T1 is biased wherever the actual flip angle differs from the nominal one "
-              f"(B1 != 1); pass a B1 map (e.g. from `relaxline fit dam`).", file=stream)
+    b1_arr = load_b1(spec, series, b1, stream)
     sigma = estimate_noise(series)
     options = {"engine": engine, "jobs": int(jobs), "time_unit": time_unit,
                "mask": str(mask) if mask else None, "b1_map": str(b1) if b1 else None,

@@ -21,20 +21,25 @@ image background) are marked outside.
 A QA and research tool, not a medical device."""
 
 
-def add_arguments(p: argparse.ArgumentParser) -> None:
+def add_series_arguments(p: argparse.ArgumentParser) -> None:
+    """MODEL, INPUT..., --b1 and --time-unit (shared with ``relaxline refit``)."""
     p.add_argument("model", metavar="MODEL", help="ir, vfa, dam (or a registered T2 model)")
     p.add_argument("inputs", metavar="INPUT", nargs="+",
                    help="one 4D NIfTI or several 3D NIfTIs, each with a JSON sidecar")
-    p.add_argument("--out", required=True, metavar="DIR", help="output folder")
-    p.add_argument("--mask", metavar="F", help="fit only where this mask is non-zero")
     p.add_argument("--b1", metavar="F",
                    help="B1 map (actual/nominal flip-angle ratio) on the series grid (vfa)")
+    p.add_argument("--time-unit", choices=("s", "ms"), default="s",
+                   help="unit of the times in the sidecars (BIDS: s)")
+
+
+def add_arguments(p: argparse.ArgumentParser) -> None:
+    add_series_arguments(p)
+    p.add_argument("--out", required=True, metavar="DIR", help="output folder")
+    p.add_argument("--mask", metavar="F", help="fit only where this mask is non-zero")
     p.add_argument("--engine", choices=("fast", "lmfit"), default="fast",
                    help="fast: batched numpy engine (default); lmfit: one lmfit fit per voxel")
     p.add_argument("--jobs", type=int, default=1, metavar="N",
                    help="processes for per-voxel lmfit fits (default 1)")
-    p.add_argument("--time-unit", choices=("s", "ms"), default="s",
-                   help="unit of the times in the sidecars (BIDS: s)")
 
 
 def run(args: argparse.Namespace) -> int:
