@@ -15,7 +15,7 @@ import math
 import re
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any, Callable
+from typing import Any, Callable, Sequence
 
 import numpy as np
 import pandas as pd
@@ -121,6 +121,7 @@ def discover_maps(maps_dir: str | Path) -> list[MapFile]:
         stderr = next((q for q in (d / f"{stem}_desc-stderr_{suffix}.nii.gz",
                                    d / f"{stem}_desc-stderr_{suffix}.nii") if q.is_file()), None)
         found.append(MapFile(stem, suffix, p, sidecar, status, stderr))
+    found.sort(key=lambda f: (f.stem, ALL_MAPS.index(f.suffix)))
     if not any(f.suffix in QC_MAPS for f in found):
         raise InputError(f"{d}: no parameter maps found; expected files named "
                          f"<stem>_{{{','.join(QC_MAPS)}}}.nii.gz as written by `relaxline fit`.")
@@ -154,11 +155,25 @@ def labels_from_file(path: str | Path) -> LabelSource:
     return source
 
 
-def source_sidecars(mf: MapFile) -> list[dict[str, Any]]:
-    """JSON sidecars of the series a map was fitted from (those that still exist)."""
+def source_paths(mf: MapFile) -> list[Path]:
+    """Paths in the map sidecar's ``Sources``, resolved: as written (absolute or relative to
+    the working folder), else relative to the maps folder or its parent."""
     out = []
     for src in mf.sidecar.get("Sources") or []:
         p = Path(src.get("path", "")) if isinstance(src, dict) else Path(str(src))
+        if not p.is_absolute() and not p.exists():
+            for base in (mf.path.parent, mf.path.parent.parent):
+                if (base / p).exists():
+                    p = base / p
+                    break
+        out.append(p)
+    return out
+
+
+def source_sidecars(mf: MapFile) -> list[dict[str, Any]]:
+    """JSON sidecars of the series a map was fitted from (those that still exist)."""
+    out = []
+    for p in source_paths(mf):
         if p.suffix == ".json" and p.is_file():
             try:
                 out.append(_read_json(p))
@@ -177,10 +192,15 @@ def resolve_temperature(option: float | None, maps: list[MapFile],
         if isinstance(t, (int, float)) and not isinstance(t, bool) and math.isfinite(t):
             return float(t), f"sidecar {mf.path.name}"
     for mf in maps:
-        for sc in source_sidecars(mf):
-            t = sc.get("PhantomTemperature")
+        for p in source_paths(mf):
+            if p.suffix != ".json" or not p.is_file():
+                continue
+            try:
+                t = _read_json(p).get("PhantomTemperature")
+            except InputError:
+                continue
             if isinstance(t, (int, float)) and not isinstance(t, bool) and math.isfinite(t):
-                return float(t), "source series sidecar"
+                return float(t), f"sidecar {p.name}"
     if fallback is not None:
         return float(fallback), "config"
     return None, "none"
@@ -319,11 +339,7 @@ def open_source_series(mf: MapFile):
     from pipeline.series import read_series
 
     key = mf.sidecar.get("VaryingKey")
-    paths = []
-    for src in mf.sidecar.get("Sources") or []:
-        p = Path(src.get("path", "")) if isinstance(src, dict) else Path(str(src))
-        if p.name.endswith((".nii", ".nii.gz")):
-            paths.append(p)
+    paths = [p for p in source_paths(mf) if p.name.endswith((".nii", ".nii.gz"))]
     if not paths or not key:
         return None, "the map's sidecar lists no source series"
     missing = [str(p) for p in paths if not p.is_file()]
@@ -387,7 +403,8 @@ def fitted_curves(mf: MapFile, series, labels: np.ndarray, keep: np.ndarray,
         fixed = dict(spec.fixed_from_meta(series.meta, options))
     except RelaxlineError as exc:
         return {}, f"fitted curves omitted ({exc})"
-    per_voxel = [k for k in spec.voxel_fixed if isinstance(options.get(k), str)]
+    per_voxel = [k for k in spec.voxel_fixed
+                 if isinstance(options.get(k) or options.get(f"{k}_map"), str)]
     if per_voxel:
         return {}, (f"the fit used a per-voxel {per_voxel[0]} map; fitted curves omitted")
     medians = vial_medians(params, labels, keep)
@@ -412,7 +429,9 @@ XLABEL = {"InversionTime": ("inversion time", 1000.0, "ms"), "EchoTime": ("echo 
 
 
 def render(result: QCResult, reference, tol, out_figures: bool, erode_mm: float,
-           maps_dir: Path, labels_desc: str, reference_desc: str) -> tuple[str, dict[str, bytes]]:
+           maps_dir: Path, labels_desc: str, reference_desc: str,
+           extra_sections: Sequence[tuple[str, str]] = (),
+           extra_warnings: Sequence[str] = ()) -> tuple[str, dict[str, bytes]]:
     """Figures and the report page. Returns (html, {figure file name: png})."""
     from fitting.status import USABLE
     from pipeline.outputs import package_version
@@ -424,10 +443,11 @@ def render(result: QCResult, reference, tol, out_figures: bool, erode_mm: float,
     disp = F.for_display(table) if len(table) else table
     figs: list[Figure] = []
     files: dict[str, bytes] = {}
-    warnings = list(result.warnings)
+    warnings = list(result.warnings) + list(extra_warnings)
     agreement = None
     names = reference.names() if reference is not None else {}
-    noise_parts = []
+    noise_parts: list[str] = []
+    noise_ests: list[tuple[str, Any, Any]] = []
 
     def add(fname: str, fig: Figure) -> None:
         figs.append(fig)
@@ -448,8 +468,9 @@ def render(result: QCResult, reference, tol, out_figures: bool, erode_mm: float,
                 "Bland–Altman plot", png,
                 "Percent difference from the reference against the mean of measured and "
                 "reference; solid blue: bias, dashed: 95 % limits of agreement "
-                "(bias ± 1.96·SD; Bland & Altman 1986, Lancet 1:307). With few vials the "
-                "limits are themselves uncertain.", AGREEMENT))
+                "(bias ± 1.96·SD; Bland & Altman 1986, Lancet 1:307); dotted grey: the map's "
+                "fail limit. With few vials the limits of agreement are themselves "
+                "uncertain.", AGREEMENT))
     by_stem: dict[str, list[MapFile]] = {}
     for mf in result.maps:
         by_stem.setdefault(mf.stem, []).append(mf)
@@ -472,8 +493,9 @@ def render(result: QCResult, reference, tol, out_figures: bool, erode_mm: float,
                     f"{F.QUANTITY_LABEL.get(mf.suffix, mf.suffix)} map, {stem}", png,
                     "Evenly spaced slices; vial outlines (white) with their labels"
                     + (f" after {erode_mm:g} mm erosion" if erode_mm > 0 else "")
-                    + "; grey: no value (outside the mask or fit failed). Colour range: 1st–"
-                      "99th percentile inside the vials.", "Maps"))
+                    + "; grey: no value (outside the mask or fit not usable). Colour range: "
+                      "1st–99th percentile inside the vials, on a log scale when they span "
+                      "more than a decade.", "Maps"))
         # one series per model: curves and noise from each distinct source series
         seen_sources: set[str] = set()
         for mf in qc_maps:
@@ -487,8 +509,7 @@ def render(result: QCResult, reference, tol, out_figures: bool, erode_mm: float,
                                    f"no noise estimate or signal curves — {esc_(why)}.</p>")
                 continue
             data = series.read()
-            est = estimate_noise(data, labels, names)
-            noise_parts.append(_noise_html(stem, series, est))
+            noise_ests.append((stem, series, estimate_noise(data, labels, names)))
             if not out_figures:
                 continue
             curves = vial_curves(data, labels, keep)
@@ -527,8 +548,9 @@ def render(result: QCResult, reference, tol, out_figures: bool, erode_mm: float,
     footer = (f"relaxline {package_version()}, report generated "
               f"{datetime.datetime.now(datetime.timezone.utc):%Y-%m-%d %H:%M} UTC.")
     page = build_report(table, summary=summary, figures=figs, agreement=agreement,
-                        noise_html="\n".join(noise_parts), provenance=provenance,
-                        warnings=warnings, footer=footer)
+                        noise_html=_noise_html(noise_ests) + "\n".join(noise_parts),
+                        provenance=provenance,
+                        warnings=warnings, extra_sections=extra_sections, footer=footer)
     return page, files
 
 
@@ -537,29 +559,57 @@ def esc_(x: Any) -> str:
     return html.escape(str(x))
 
 
-def _noise_html(stem: str, series, est) -> str:
-    head = f"<h3>{esc_(stem)} — {esc_(series.key)} series</h3>"
-    if est.sigma is None:
-        return head + f"<p>{esc_(est.note)}.</p>"
-    rows = "".join(f"<tr><td>{r.label}</td><td class=\"t\">{esc_(r.name)}</td>"
-                   f"<td>{r.signal:.4g}</td><td>{r.snr:.1f}</td></tr>"
-                   for r in est.table.itertuples())
-    vol = series.values[est.volume_index]
-    return (head + f"<p>Background noise σ = {est.sigma:.4g} (signal units), from "
-            f"{est.n_background} air voxels (Rayleigh estimator, magnitude data). SNR = vial "
-            f"mean of the brightest volume ({esc_(series.key)} = {vol:g}) / σ.</p>"
-            "<table><thead><tr><th>vial</th><th class=\"t\">name</th><th>signal</th>"
-            f"<th>SNR</th></tr></thead><tbody>{rows}</tbody></table>")
+def _noise_html(ests: list[tuple[str, Any, Any]]) -> str:
+    """One table of σ per series and one of SNR per vial (a column per series)."""
+    if not ests:
+        return ""
+    head = ("<table><thead><tr><th class=\"t\">series</th><th>σ (signal units)</th>"
+            "<th>air voxels</th><th class=\"t\">brightest volume (used for SNR)</th></tr>"
+            "</thead><tbody>")
+    rows, cols = [], []
+    for stem, series, est in ests:
+        if est.sigma is None:
+            rows.append(f"<tr><td class=\"t\">{esc_(stem)}</td><td colspan=\"3\" class=\"t\">"
+                        f"{esc_(est.note)}</td></tr>")
+            continue
+        what, k, unit = XLABEL.get(series.key, (series.key, 1.0, ""))
+        vol = series.values[est.volume_index] * k
+        rows.append(f"<tr><td class=\"t\">{esc_(stem)}</td><td>{est.sigma:.4g}</td>"
+                    f"<td>{est.n_background}</td><td class=\"t\">{esc_(what)} {vol:g} "
+                    f"{esc_(unit)}</td></tr>")
+        cols.append((stem, est.table.set_index("label")))
+    out = ("<p>σ from the air around the phantom (Rayleigh estimator for magnitude data; "
+           "assumes single-channel-like noise). SNR = vial mean signal of the series' "
+           "brightest volume / σ.</p>" + head + "".join(rows) + "</tbody></table>")
+    if cols:
+        labels = sorted(set().union(*[set(t.index) for _, t in cols]))
+        names = {}
+        for _, t in cols:
+            names.update(t["name"].to_dict())
+        short = [stem.rsplit("_", 1)[-1] for stem, _ in cols]
+        ths = "".join(f"<th>SNR {esc_(sh)}</th>" for sh in short)
+        body = "".join(
+            f"<tr><td>{lab}</td><td class=\"t\">{esc_(names.get(lab, ''))}</td>"
+            + "".join(f"<td>{t.loc[lab, 'snr']:.1f}</td>" if lab in t.index else "<td>–</td>"
+                      for _, t in cols) + "</tr>" for lab in labels)
+        out += (f"<table><thead><tr><th>vial</th><th class=\"t\">name</th>{ths}</tr></thead>"
+                f"<tbody>{body}</tbody></table>")
+    return out
 
 
 def run_qc(maps_dir: str | Path, out_dir: str | Path, label_source: LabelSource,
            reference_path: str | Path | None = None, config: Any = None,
            temperature: float | None = None, session: str | None = None,
            erode_mm: float = 0.0, figures: bool = True,
-           labels_desc: str = "label map") -> QCResult:
+           labels_desc: str = "label map",
+           extra_sections: Sequence[tuple[str, str]] = (),
+           extra_warnings: Sequence[str] = ()) -> QCResult:
     """Full QC of one maps folder: compute, then write roi_stats.tsv, figures and report.
 
     Everything is computed before anything is written, so bad input leaves no output.
+    ``label_source`` gives the label map per map grid (:func:`labels_from_file`, or a
+    function placing vials from a layout); ``extra_sections`` (title, HTML) and
+    ``extra_warnings`` are passed to the report (history, drift).
     """
     from pipeline.outputs import atomic_write_bytes, atomic_write_text, atomic_write_tsv
     from qc.reference import Reference
@@ -571,7 +621,7 @@ def run_qc(maps_dir: str | Path, out_dir: str | Path, label_source: LabelSource,
     result = compute(maps, label_source, reference, tol, temperature, session, erode_mm)
     page, files = render(result, reference, tol, figures, erode_mm, Path(maps_dir),
                          labels_desc, str(reference_path) if reference_path else
-                         "none (scan session: statistics only)")
+                         "none (scan session: statistics only)", extra_sections, extra_warnings)
     out = Path(out_dir)
     atomic_write_tsv(out / "roi_stats.tsv", result.table)
     for name, png in files.items():

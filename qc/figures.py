@@ -75,8 +75,10 @@ def _axis_label(map_name: str, units: str) -> str:
     return f"{q} ({units})"
 
 
-def colour_range(data: np.ndarray, labels: np.ndarray | None = None) -> tuple[float, float]:
-    """1st–99th percentile of the finite values inside the labels (else everywhere)."""
+def colour_range(data: np.ndarray, labels: np.ndarray | None = None,
+                 log: bool = False) -> tuple[float, float]:
+    """1st–99th percentile of the finite values inside the labels (else everywhere),
+    widened a little (by 10 % of the span, or by a factor 1.2 on a log scale)."""
     d = np.asarray(data, float)
     sel = np.isfinite(d)
     if labels is not None and np.any(sel & (np.asarray(labels) > 0)):
@@ -84,6 +86,8 @@ def colour_range(data: np.ndarray, labels: np.ndarray | None = None) -> tuple[fl
     if not sel.any():
         return 0.0, 1.0
     lo, hi = np.percentile(d[sel], [1, 99])
+    if log and lo > 0 and hi > lo:
+        return float(lo / 1.2), float(hi * 1.2)
     if hi <= lo:
         lo, hi = lo - 0.5 * abs(lo or 1), hi + 0.5 * abs(hi or 1)
     pad = 0.1 * (hi - lo)
@@ -93,9 +97,15 @@ def colour_range(data: np.ndarray, labels: np.ndarray | None = None) -> tuple[fl
 def map_montage(data: np.ndarray, title: str, map_name: str, units: str,
                 labels: np.ndarray | None = None, max_slices: int = 12,
                 vrange: tuple[float, float] | None = None) -> bytes:
-    """Montage of up to ``max_slices`` evenly spaced slices with a colour bar in ``units``."""
+    """Montage of up to ``max_slices`` evenly spaced slices with a colour bar in ``units``.
+
+    Relaxation-time maps whose vials span more than a decade get a logarithmic colour
+    scale, so short and long vials are both distinguishable; values beyond the range are
+    shown in the end colours (arrows on the colour bar).
+    """
     plt = _plt()
     import matplotlib as mpl
+    import matplotlib.patheffects as pe
     d = np.asarray(data, float)
     if d.ndim == 2:
         d = d[..., None]
@@ -103,34 +113,46 @@ def map_montage(data: np.ndarray, title: str, map_name: str, units: str,
     zs = np.unique(np.linspace(0, nz - 1, min(nz, max_slices)).round().astype(int))
     ncol = min(len(zs), 4)
     nrow = int(np.ceil(len(zs) / ncol))
-    vmin, vmax = vrange or colour_range(d, labels)
+    lo, hi = colour_range(d, labels, log=True) if vrange is None else vrange
+    if map_name in TIME_MAPS and lo > 0 and hi / lo > 10:
+        norm = mpl.colors.LogNorm(lo, hi)
+    else:
+        norm = mpl.colors.Normalize(*(vrange or colour_range(d, labels)))
     cmap = mpl.colormaps["viridis"].with_extremes(bad="#d9d9d9")
     aspect = d.shape[1] / max(d.shape[0], 1)
-    fig, axes = plt.subplots(nrow, ncol, figsize=(2.6 * ncol + 1.2, 2.6 * nrow * aspect + 0.6),
+    panel = 3.6
+    fig, axes = plt.subplots(nrow, ncol, figsize=(panel * ncol + 1.4, panel * nrow * aspect + 0.7),
                              squeeze=False)
     im = None
     for ax in axes.ravel():
         ax.axis("off")
+    halo = [pe.withStroke(linewidth=2.5, foreground="black")]
     for ax, z in zip(axes.ravel(), zs):
-        # radiological convention is not assumed: show array rows as image columns
-        im = ax.imshow(d[:, :, z].T, origin="lower", cmap=cmap, vmin=vmin, vmax=vmax,
+        # array index i runs left to right, j bottom to top (no radiological flip assumed)
+        im = ax.imshow(d[:, :, z].T, origin="lower", cmap=cmap, norm=norm,
                        interpolation="nearest")
         if labels is not None:
             lab = np.asarray(labels)[:, :, z].T
             present = [v for v in np.unique(lab) if v > 0]
             if present:
-                ax.contour(lab > 0, levels=[0.5], colors="white", linewidths=0.8)
+                ax.contour(lab > 0, levels=[0.5], colors="white", linewidths=0.9)
                 for v in present:
                     yy, xx = np.nonzero(lab == v)
-                    ax.text(xx.mean(), yy.mean(), str(int(v)), color="white", fontsize=8,
-                            ha="center", va="center", fontweight="bold",
-                            bbox={"boxstyle": "round,pad=0.1", "fc": "black", "alpha": 0.5,
-                                  "lw": 0})
-        ax.set_title(f"slice {z}", fontsize=8)
+                    # number just above the vial, so it does not hide the vial's values
+                    ax.text(xx.mean(), yy.max() + 1.0, str(int(v)), color="white",
+                            fontsize=8, ha="center", va="bottom", fontweight="bold",
+                            path_effects=halo)
+        ax.set_title(f"slice {z}", fontsize=9)
     fig.suptitle(title, fontsize=10)
     if im is not None:
-        cb = fig.colorbar(im, ax=axes.ravel().tolist(), shrink=0.85, pad=0.02)
-        cb.set_label(_axis_label(map_name, units))
+        cb = fig.colorbar(im, ax=axes.ravel().tolist(), shrink=0.85, pad=0.02, extend="both")
+        cb.set_label(_axis_label(map_name, units) + (", log scale" if isinstance(
+            norm, mpl.colors.LogNorm) else ""))
+        if isinstance(norm, mpl.colors.LogNorm):
+            from matplotlib.ticker import FuncFormatter, LogLocator
+            cb.ax.yaxis.set_major_locator(LogLocator(base=10, subs=(1.0, 2.0, 5.0)))
+            cb.ax.yaxis.set_major_formatter(FuncFormatter(lambda v, _: f"{v:g}"))
+            cb.ax.yaxis.set_minor_formatter(FuncFormatter(lambda v, _: ""))
     return to_png(fig)
 
 
@@ -243,6 +265,12 @@ def bland_altman(df: pd.DataFrame) -> tuple[bytes | None, pd.DataFrame]:
         for a, d, lab in zip(avg, diff, s["label"]):
             ax.annotate(str(lab), (a, d), fontsize=8, xytext=(5, 3), textcoords="offset points")
         ax.axhline(0, color="black", lw=0.8)
+        fail = np.nanmedian(s["tolerance_pct"].astype(float))
+        if np.isfinite(fail):
+            for sign in (-1, 1):
+                ax.axhline(sign * fail, color="#777777", lw=1, ls=":")
+            ax.text(0.01, fail, f"fail limit ±{fail:g} %", fontsize=7, color="#555555",
+                    va="bottom", transform=ax.get_yaxis_transform())
         if np.isfinite(st["bias"]):
             ax.axhline(st["bias"], color="#2166ac", lw=1.2, label=f"bias {st['bias']:+.2f} %")
         if np.isfinite(st["sd"]):

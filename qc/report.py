@@ -167,9 +167,11 @@ def provenance_html(provenance: Sequence[Mapping[str, Any]]) -> str:
     rows = []
     for p in provenance:
         src = p.get("Sources") or []
+        # file name shown, full path on hover: the folder is usually the same for all
         src_html = "<br>".join(
-            f'<span class="mono">{esc(s.get("path", ""))}</span> sha256 '
-            f'<span class="mono">{esc(str(s.get("sha256", ""))[:12])}…</span>'
+            f'<span class="mono" title="{esc(s.get("path", ""))}">'
+            f'{esc(str(s.get("path", "")).replace(chr(92), "/").rsplit("/", 1)[-1])}</span> '
+            f'<span class="mono">sha256:{esc(str(s.get("sha256", ""))[:12])}…</span>'
             if isinstance(s, Mapping) else esc(s) for s in src) or "–"
         opts = p.get("Options")
         rows.append("<tr>" + "".join([

@@ -220,4 +220,4 @@ def test_report_self_contained_with_figures(case, tmp_path):
     assert "bland_altman.png" in figs and "measured_vs_reference.png" in figs
     assert any(f.endswith("_curves.png") for f in figs)
     assert "fitted curves omitted" not in html_text
-    assert "Background noise" in html_text
+    assert "Rayleigh estimator" in html_text and "SNR IR" in html_text
