@@ -32,7 +32,7 @@ from fitting.spec import Fixed, ModelSpec, Params, register
 T1_LOWER, T1_UPPER = 0.005, 20.0   # s; wide enough for phantoms and tissue at any field
 EFF_LOWER, EFF_UPPER = 0.0, 1.5    # above 1 is unphysical, but a margin keeps noisy ideal
                                     # inversions off the bound
-IR_GRID_POINTS = 128               # log-spaced T1 values of the reduced-dimension search
+IR_GRID_POINTS = 64                # log-spaced T1 values of the reduced-dimension search
 
 
 # --------------------------------------------------------------------------- ir
@@ -104,19 +104,23 @@ def _ir_init(x: np.ndarray, data: np.ndarray, fixed: Fixed) -> Params:
     grid, qflat, rinv = _ir_grid(tuple(np.asarray(x, float).tolist()))
     n, m = data.shape
     g = grid.size
+    rows = np.arange(n)
     if fixed.get("signed"):
-        patterns = [data]
+        y = data
     else:
-        imin = np.argmin(data, axis=1)[:, None]
-        idx = np.arange(m)[None, :]
-        patterns = [np.where(idx < imin, -data, data), np.where(idx <= imin, -data, data)]
+        imin = np.argmin(data, axis=1)
+        y = np.where(np.arange(m)[None, :] < imin[:, None], -data, data)
+    # einsum (not BLAS) keeps each voxel's arithmetic independent of the batch size.
+    proj_a = np.einsum("nm,mk->nk", y, qflat)
+    projections = [proj_a]
+    if not fixed.get("signed"):
+        # second pattern: the minimum negated too, a rank-one change of the first
+        projections.append(proj_a - (2.0 * y[rows, imin])[:, None] * qflat[imin])
     best = np.full(n, -np.inf)
     best_g = np.zeros(n, dtype=int)
     coef = np.zeros((n, 2))
-    rows = np.arange(n)
-    for y in patterns:
-        # einsum (not BLAS) keeps each voxel's arithmetic independent of the batch size.
-        proj = np.einsum("nm,mk->nk", y, qflat).reshape(n, g, 2)
+    for proj in projections:
+        proj = proj.reshape(n, g, 2)
         score = np.einsum("ngj,ngj->ng", proj, proj)
         gi = np.argmax(score, axis=1)
         s = score[rows, gi]

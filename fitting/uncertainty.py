@@ -15,7 +15,7 @@ from typing import Iterable, Mapping
 
 import numpy as np
 
-from fitting.lm import jacobian
+from fitting.lm import jacobian, normal_matrix
 from fitting.spec import Fixed, ModelSpec
 
 # Rayleigh background of a magnitude image: E[m²] = 2σ² (Henkelman 1985, Med Phys 12:232).
@@ -26,7 +26,7 @@ MIN_BACKGROUND_SAMPLES = 1000
 
 def covariance(jac: np.ndarray, sigma: np.ndarray | float) -> np.ndarray:
     """σ²·(JᵀJ)⁻¹ per voxel, (N, P, P); NaN where JᵀJ is singular."""
-    jtj = np.einsum("nmi,nmj->nij", jac, jac)
+    jtj = normal_matrix(jac)
     out = np.full_like(jtj, np.nan)
     det_ok = np.isfinite(jtj).all(axis=(1, 2))
     if det_ok.any():

@@ -171,7 +171,7 @@ def test_lmfit_model_is_built_from_spec(ir):
     assert pars["eff"].max == spec.upper[2] and pars["T1"].min == spec.lower[0]
     y = np.abs(ir_signal(TI, 0.9, 3.0, 0.95, TR, 90.0))
     g = model.guess(y, x=TI)
-    assert abs(g["T1"].value / 0.9 - 1) < 0.06   # grid step of the reduced-dimension search
+    assert abs(g["T1"].value / 0.9 - 1) < 0.08   # half a step of the reduced-dimension grid
 
 
 def test_crlb_closed_form_two_parameter_case():
