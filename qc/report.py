@@ -86,25 +86,25 @@ def img_tag(png: bytes, alt: str) -> str:
             f'{base64.b64encode(png).decode("ascii")}">')
 
 
-def _num(v: Any, digits: int = 4) -> str:
+def _fmt(v: Any, spec: str) -> str:
+    """Format a number with ``spec`` ("–" for missing/non-finite; text passes escaped)."""
     try:
         f = float(v)
     except (TypeError, ValueError):
         return esc(v)
     if not math.isfinite(f):
         return "–"
-    return f"{f:.{digits}g}"
+    if spec.endswith("f"):
+        f = round(f, int(spec.rstrip("f").lstrip("+.") or 0)) + 0.0   # no "-0.0"
+    return format(f, spec)
+
+
+def _num(v: Any, digits: int = 4) -> str:
+    return _fmt(v, f".{digits}g")
 
 
 def _fixed(v: Any, decimals: int, signed: bool = False) -> str:
-    try:
-        f = float(v)
-    except (TypeError, ValueError):
-        return esc(v)
-    if not math.isfinite(f):
-        return "–"
-    f = round(f, decimals) + 0.0   # no "-0.0"
-    return f"{f:+.{decimals}f}" if signed else f"{f:.{decimals}f}"
+    return _fmt(v, f"{'+' if signed else ''}.{decimals}f")
 
 
 def status_cell(status: str) -> str:

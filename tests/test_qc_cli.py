@@ -221,3 +221,35 @@ def test_report_self_contained_with_figures(case, tmp_path):
     assert any(f.endswith("_curves.png") for f in figs)
     assert "fitted curves omitted" not in html_text
     assert "Rayleigh estimator" in html_text and "SNR IR" in html_text
+
+
+def test_config_temperature_tolerances_and_erosion(case, tmp_path):
+    maps, lab, ref, out, info = case(temperature=None, scale={2: 1.09})
+    cfg = tmp_path / "qc.yaml"
+    cfg.write_text("maps:\n  T1map: {warn_pct: 2, fail_pct: 5}\n"
+                   "vials:\n  '2': {T1map: {warn_pct: 5, fail_pct: 8}}\ntemperature: 24\n")
+    assert _qc(maps, lab, ref, out, "--config", str(cfg), "--erode", "1") == 0
+    df = pd.read_csv(out / "roi_stats.tsv", sep="\t", dtype={"session": str})
+    t1 = df[df["map"] == "T1map"].set_index("label")
+    assert set(t1["temperature_source"]) == {"config"} and (t1["temperature"] == 24).all()
+    # 1.2 s · (1 + 0.01 · (24 − 22))
+    assert t1.loc[1, "reference_at_temperature"] == pytest.approx(1.2 * 1.02)
+    # vial 2: 1.09/1.02 − 1 = +6.9 %: beyond its own warn limit (5), inside its fail limit (8)
+    assert t1.loc[2, "status"] == "warn" and t1.loc[2, "tolerance_pct"] == 8
+    # erosion by 1 mm on a 1×1×3 mm grid removes the in-plane rim: a 4×4 square keeps 2×2
+    lab_arr = info["labels"]
+    assert t1.loc[1, "n_voxels"] + t1.loc[1, "n_excluded"] == 2 * 2 * SHAPE[2]
+    assert (lab_arr == 1).sum() == 4 * 4 * SHAPE[2]
+
+
+def test_vial_without_usable_voxels_fails(case, tmp_path):
+    maps, lab, ref, out, info = case()
+    st_path = maps / "sub-phantom_ses-20260101_IR_desc-fitstatus_mask.nii.gz"
+    st = info["status"].copy()
+    st[info["labels"] == 3] = status.FAILED
+    _write(st_path, st)
+    assert _qc(maps, lab, ref, out) == 1
+    df = pd.read_csv(out / "roi_stats.tsv", sep="\t", dtype={"session": str})
+    r = df[(df["map"] == "T1map") & (df["label"] == 3)].iloc[0]
+    assert r.status == "fail" and r.n_voxels == 0 and r.n_excluded == (info["labels"] == 3).sum()
+    assert "no usable voxel" in r.note

@@ -186,3 +186,9 @@ def test_sample_tolerance_file_loads():
     from pathlib import Path
     tol = load_tolerances(Path(__file__).parents[1] / "sample_config" / "tolerances.yaml")
     assert set(DEFAULT_TOLERANCES) <= set(tol.maps)
+
+
+def test_field_mismatch_is_reported():
+    ref = Reference(parse_reference(REF), "ref.tsv")
+    assert ref.field_warning(3.0) is None and ref.field_warning(None) is None
+    assert "1.5 T" in ref.field_warning(1.5) and "ref.tsv" in ref.field_warning(1.5)
