@@ -115,6 +115,8 @@ def status_cell(status: str) -> str:
 
 def results_table(table: pd.DataFrame) -> str:
     """One HTML table per series and map, values in display units."""
+    if table.empty or not {"series", "map", "label"} <= set(table.columns):
+        return "<p>No ROI statistics.</p>"
     parts = []
     for (series, m), g in table.groupby(["series", "map"], sort=False):
         units = str(g["units"].iloc[0]) if "units" in g else "s"
