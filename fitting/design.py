@@ -62,6 +62,9 @@ SOFTMAX_SHARPNESS = 40.0  # of the log-sum-exp surrogate of max log CV ...
 SOFTMAX_POLISH = 400.0    # ... and of the continuation run from the best point
 MIN_TI = 0.01             # s; shortest TI and shortest gap TR − TI (readout, spoiling)
 MIN_ANGLE = 1.0           # degrees
+# Proposed TIs/angles are distinct (a series with a repeated value is rejected on input):
+# neighbours differ by at least max(abs, rel·value).
+MIN_GAP = {"ir": (0.005, 0.02), "vfa": (1.0, 0.0)}
 MAX_ANGLE = 90.0
 MIN_ESP = 0.005           # s; default shortest echo spacing
 MAX_POINTS = 32           # TIs/angles derived from a budget are capped here
@@ -283,6 +286,8 @@ def check_protocol(problem: DesignProblem, values: Sequence[float]) -> str:
             return f"ESP {esp:g} s is below the minimum {problem.min_esp:g} s"
         if problem.max_train is not None and v[-1] > problem.max_train * (1 + 1e-9):
             return f"train {v[-1]:g} s exceeds the allowed {problem.max_train:g} s"
+    if problem.model in MIN_GAP and v.size > 1 and np.any(np.diff(v) <= 0):
+        return "values repeat; each TI or angle must be distinct"
     if problem.points is not None and v.size != problem.points:
         return f"{v.size} points where the design has {problem.points}"
     if problem.model == "mese" and v.size < max(problem.spec.n_params, problem.spec.min_volumes):
@@ -341,6 +346,26 @@ def start_protocol(problem: DesignProblem) -> np.ndarray:
     return echo_times(n, esp)
 
 
+def spread(problem: DesignProblem, values: Sequence[float]) -> np.ndarray:
+    """Sorted values pushed apart to the minimum gap (:data:`MIN_GAP`) inside the bounds.
+
+    The bound favours clustered points (several TIs near one optimum); a protocol must
+    still list distinct values, so clusters are opened up to the smallest gap a scanner
+    protocol would use. Values already far enough apart are unchanged.
+    """
+    v = np.sort(np.asarray(values, float)).copy()
+    if problem.model not in MIN_GAP or v.size < 2:
+        return v
+    a, r = MIN_GAP[problem.model]
+    lo, hi = _value_bounds(problem)
+    for i in range(1, v.size):  # forward: open clusters upwards
+        v[i] = max(v[i], v[i - 1] + max(a, r * v[i - 1]))
+    v[-1] = min(v[-1], hi)
+    for i in range(v.size - 2, -1, -1):  # backward: respect the upper bound
+        v[i] = min(v[i], v[i + 1] - max(a, r * v[i]))
+    return v if v[0] >= lo - 1e-12 else np.sort(np.asarray(values, float))
+
+
 def _optimise_points(problem: DesignProblem) -> list[Evaluated]:
     """Multi-start L-BFGS-B on the soft maximum, for N values (ir, vfa)."""
     to_v, to_c, lo, hi = _box(problem)
@@ -348,7 +373,7 @@ def _optimise_points(problem: DesignProblem) -> list[Evaluated]:
     rng = np.random.default_rng(problem.seed)
 
     def f(c: np.ndarray, k: float = SOFTMAX_SHARPNESS) -> float:
-        return _soft_max_log(predicted_cv(problem, to_v(c)), k)
+        return _soft_max_log(predicted_cv(problem, spread(problem, to_v(c))), k)
 
     starts = [to_c(start_protocol(problem)),
               np.linspace(lo, hi, n + 2)[1:-1],
@@ -359,12 +384,12 @@ def _optimise_points(problem: DesignProblem) -> list[Evaluated]:
     for c0 in starts:
         res = minimize(f, np.clip(c0, lo, hi), method="L-BFGS-B", bounds=[(lo, hi)] * n,
                        options={"maxiter": 300, "eps": 1e-5})
-        out.append(evaluate(problem, to_v(np.clip(res.x, lo, hi)), "optimised"))
+        out.append(evaluate(problem, spread(problem, to_v(np.clip(res.x, lo, hi))), "optimised"))
     # Continuation: a sharper surrogate from the best point approaches the true minimax.
     best = min(out, key=lambda e: e.worst)
     res = minimize(f, np.clip(to_c(best.values), lo, hi), args=(SOFTMAX_POLISH,),
                    method="L-BFGS-B", bounds=[(lo, hi)] * n, options={"maxiter": 300, "eps": 1e-5})
-    out.append(evaluate(problem, to_v(np.clip(res.x, lo, hi)), "optimised"))
+    out.append(evaluate(problem, spread(problem, to_v(np.clip(res.x, lo, hi))), "optimised"))
     return out
 
 
@@ -448,7 +473,8 @@ def design(problem: DesignProblem, compare: Sequence[float] | None = None) -> De
     if compare is not None and len(compare):
         comp = evaluate(problem, compare, "compared")
         if problem.model != "mese" and comp.values.size < (problem.points or 0):
-            padded = np.clip(pad_protocol(problem, comp.values), *_value_bounds(problem))
+            padded = spread(problem, np.clip(pad_protocol(problem, comp.values),
+                                             *_value_bounds(problem)))
             pe = evaluate(problem, padded, "compared, repeated to N points")
             if pe.feasible:
                 cands.append(pe)
