@@ -28,7 +28,8 @@ Honest standard errors
     With a known σ the profile-likelihood intervals use Δχ² ~ χ²(1) (Wilks' theorem;
     Δχ² = 1 and 4 for 1σ and 2σ: Press et al., Numerical Recipes, 3rd ed., §15.6);
     with σ from the residuals lmfit's F-test is kept, whose one-parameter form is
-    Student's t on M − P degrees of freedom.
+    Student's t on M − P degrees of freedom. AIC and BIC likewise take the known-σ form
+    (χ² + 2k, χ² + k·ln M; :func:`information_criteria`), lmfit's otherwise.
 
 Model comparison
     :func:`alternatives` names the competing model on the same data: ``ir`` against
@@ -183,17 +184,30 @@ def fit_mean(spec: ModelSpec, ms: MeanSignal, fix: Mapping[str, float] | None = 
                 for b in free} for a in free}
     intervals: dict[str, dict[str, tuple[float, float]]] = {}
     if ci:
-        intervals = _profile_intervals(res, free, stderr, known)
+        intervals = profile_intervals(res, free, stderr, known)
     chi2_p = float(chi2.sf(res.chisqr, res.nfree)) if known and res.nfree > 0 else float("nan")
+    aic, bic = information_criteria(res.chisqr, res.ndata, res.nvarys, known,
+                                    (res.aic, res.bic))
     return RegionFit(label=label or spec.name, spec=spec, values=values, stderr=stderr,
                      vary={k: k in free for k in names}, ci=intervals, correlation=corr,
-                     chisqr=float(res.chisqr), redchi=float(res.redchi), aic=float(res.aic),
-                     bic=float(res.bic), ndata=int(res.ndata), nvarys=int(res.nvarys),
+                     chisqr=float(res.chisqr), redchi=float(res.redchi), aic=aic, bic=bic, ndata=int(res.ndata), nvarys=int(res.nvarys),
                      nfree=int(res.nfree), chi2_p=chi2_p,
                      best_fit=np.asarray(res.best_fit, float), result=res)
 
 
-def _profile_intervals(res, free: Sequence[str], stderr: Mapping[str, float], known: bool
+def information_criteria(chisqr: float, ndata: int, nvarys: int, known: bool,
+                         lmfit_values: tuple[float, float]) -> tuple[float, float]:
+    """(AIC, BIC). With a known σ the Gaussian log-likelihood is −χ²/2 + const, so
+    AIC = χ² + 2k and BIC = χ² + k·ln n (Akaike 1974, IEEE Trans Autom Control 19:716;
+    Schwarz 1978, Ann Stat 6:461; the constant is common to all models on the same data).
+    lmfit's n·ln(χ²/n) + 2k profiles out an unknown σ and is kept for that case only: with
+    a known σ it overstates differences when χ² is small."""
+    if known:
+        return float(chisqr + 2 * nvarys), float(chisqr + nvarys * np.log(ndata))
+    return float(lmfit_values[0]), float(lmfit_values[1])
+
+
+def profile_intervals(res, free: Sequence[str], stderr: Mapping[str, float], known: bool
                        ) -> dict[str, dict[str, tuple[float, float]]]:
     """``lmfit.conf_interval`` per parameter; (NaN, NaN) where the profile cannot be
     traced (no stderr, or the interval runs into a bound); a bound reached is returned as
