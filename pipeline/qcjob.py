@@ -528,8 +528,13 @@ def render(result: QCResult, reference, tol, out_figures: bool, erode_mm: float,
                 "Vial mean ± SD of the (magnitude) signal over the usable voxels; lines: the "
                 "model at the vial's median fitted parameters" + (f" ({note})" if note else "")
                 + ".", "Signal curves"))
-    temps = {f"{t:g} °C ({src})" if t is not None else "not known — reference uncorrected"
-             for t, src in result.temperatures.values()}
+    by_value: dict[str, list[str]] = {}
+    for t, src in result.temperatures.values():
+        key = f"{t:g} °C" if t is not None else "not known: reference values uncorrected"
+        by_value.setdefault(key, [])
+        if src != "none" and src not in by_value[key]:
+            by_value[key].append(src)
+    temps = [f"{k} (from {', '.join(v)})" if v else k for k, v in by_value.items()]
     tol_src = ("built-in defaults, ILLUSTRATIVE only: set tolerances from your local QA "
                "procedure (--config)" if tol.source.startswith("built-in") else tol.source)
     summary = {
@@ -539,7 +544,7 @@ def render(result: QCResult, reference, tol, out_figures: bool, erode_mm: float,
         "vial labels": labels_desc + (f" (eroded by {erode_mm:g} mm)" if erode_mm > 0 else ""),
         "reference": reference_desc,
         "phantom temperature": "; ".join(sorted(temps)),
-        "tolerances": tol_src,
+        "tolerances": tol_src if reference is not None else "not used (no reference)",
     }
     provenance = [{"file": mf.path.name, **{k: mf.sidecar.get(k) for k in
                   ("Model", "Engine", "Options", "RelaxlineVersion", "Sources")}}
@@ -547,7 +552,8 @@ def render(result: QCResult, reference, tol, out_figures: bool, erode_mm: float,
     import datetime
     footer = (f"relaxline {package_version()}, report generated "
               f"{datetime.datetime.now(datetime.timezone.utc):%Y-%m-%d %H:%M} UTC.")
-    page = build_report(table, summary=summary, figures=figs, agreement=agreement,
+    title = "relaxline phantom QC" if reference is not None else "relaxline ROI statistics"
+    page = build_report(table, title=title, summary=summary, figures=figs, agreement=agreement,
                         noise_html=_noise_html(noise_ests) + "\n".join(noise_parts),
                         provenance=provenance,
                         warnings=warnings, extra_sections=extra_sections, footer=footer)
