@@ -27,9 +27,13 @@ Method
    more than its own radius away) are refined by Nelder–Mead on the normalised
    correlation (Pearson r between the contrast image and the template over the phantom).
    Matching the whole pattern tolerates vials that do not stand out in a given image.
-4. **Accept or reject**: ``score`` (the refined correlation) must reach ``min_score`` and
-   ``ambiguity`` (runner-up score / best score) must stay below ``max_ambiguity``;
-   otherwise :class:`PoorMatchError` (a QC failure, never a silent misplacement).
+4. **Accept or reject**: ``score`` (the refined correlation) must reach ``min_score``.
+   ``ambiguity`` compares the runner-up with the winner where they differ: each vial's
+   evidence is the mean of ``F`` over its disc minus over its ring; over the vial
+   positions of the winner not shared by the runner-up (and vice versa) the runner-up's
+   mean evidence divided by the winner's must stay below ``max_ambiguity``. A layout
+   that a rotation or flip maps onto itself has no differing positions: ambiguity 1.
+   Failing either is :class:`PoorMatchError` (a QC failure, never a silent misplacement).
 5. **Regions**: a disc of radius ``radius_mm − margin_mm`` around each placed centre (a
    voxel belongs to it when its centre lies inside), on every phantom slice (or, for rows
    with ``z_mm``, on the slice nearest that plane).
@@ -54,7 +58,7 @@ from fitting.errors import RelaxlineError
 from qc.layout import check_layout
 
 MIN_SCORE = 0.35        # refined Pearson r below this: no convincing vial pattern
-MAX_AMBIGUITY = 0.92    # runner-up / best above this: cannot tell which vial is which
+MAX_AMBIGUITY = 0.7     # runner-up evidence / best evidence above this: identities unclear
 GAP = 2.5                # gap between a vial and its template ring, in blur widths
 MIN_CONTRAST = 0.03     # log-contrast that counts as fully visible even in noiseless data
 
@@ -95,7 +99,8 @@ class Placement:
     centre_world_mm : phantom centre in world (scanner) millimetres via the affine.
     shift_mm : placed centre minus the phantom's centroid (mm, in-plane).
     score : normalised correlation of the contrast image with the layout template.
-    ambiguity : score of the best distinct placement divided by ``score``.
+    ambiguity : vial evidence of the runner-up placement divided by that of this one,
+        both over the vial positions where the two differ (0 = clear, 1 = a toss-up).
     """
 
     labels: np.ndarray
@@ -506,16 +511,42 @@ def localise(images: np.ndarray | Sequence[np.ndarray], affine: np.ndarray,
         ref = refine(cand)
         if distinct(ref, top) and ref[0] > rival_score:
             rival, rival_score = ref, ref[0]
-    ambiguity = rival_score / score if score > 0 else 1.0
     angle = float((angle + 180.0) % 360.0 - 180.0)
 
-    # ---- regions
+    def evidence(pts: np.ndarray) -> np.ndarray:
+        """Per-vial contrast (disc mean minus ring mean of F) at placed centres."""
+        out = np.full(len(pts), np.nan)
+        for n, (cu, cv) in enumerate(pts):
+            g = next((g for g in groups if n in g.rows), None)
+            if g is None:
+                continue
+            dist = np.hypot(ii - cu, jj - cv)
+            r_in = radii[n] + GAP * sigma_t
+            disc = (dist <= max(radii[n] - GAP * sigma_t / 2, radii[n] / 2)) & g.mask
+            ring = (dist > r_in) & (dist <= np.sqrt(r_in ** 2 + radii[n] ** 2)) & g.mask
+            if disc.any() and ring.any():
+                out[n] = float(g.feature[disc].mean() - g.feature[ring].mean())
+        return out
+
+    # ambiguity: compare the vial evidence only where the two placements differ (vial
+    # positions of one not shared by the other); shared positions say nothing
     pts = _place(p_mm, angle, mirrored, centre)
+    ev = evidence(pts)
+    ambiguity = 0.0
+    if rival is not None:
+        rpts = _place(p_mm, rival[1], rival[2], rival[3])
+        gap = np.hypot(pts[:, None, 0] - rpts[None, :, 0], pts[:, None, 1] - rpts[None, :, 1])
+        own = gap.min(axis=1) >= 0.5 * radii
+        theirs = gap.min(axis=0) >= 0.5 * radii
+        e_best = float(np.nanmean(ev[own])) if own.any() else 0.0
+        e_rival = float(np.nanmean(evidence(rpts)[theirs])) if theirs.any() else e_best
+        ambiguity = float(np.clip(max(e_rival, 0.0) / e_best, 0, 9.99)) if e_best > 0 else 1.0
+
+    # ---- regions
     labels = np.zeros(shape, np.int16)
     n_vox = np.zeros(len(lay), int)
     n_sl = np.zeros(len(lay), int)
     inside_frac = np.ones(len(lay))
-    contrast = np.full(len(lay), np.nan)
     outside_fov = []
     for n in range(len(lay)):
         cu, cv = pts[n]
@@ -533,14 +564,6 @@ def localise(images: np.ndarray | Sequence[np.ndarray], affine: np.ndarray,
             inside_frac[n] = float(np.mean(fr))
         n_vox[n] = int(disc_n.sum()) * len(slices)
         n_sl[n] = len(slices)
-        g = next((g for g in groups if n in g.rows), None)
-        if g is not None:
-            r_in = radii[n] + GAP * sigma_t
-            dist = np.hypot(ii - cu, jj - cv)
-            ring = (dist > r_in) & (dist <= np.sqrt(r_in ** 2 + radii[n] ** 2)) & g.mask
-            inner = disc_n & g.mask
-            if inner.any() and ring.any():
-                contrast[n] = float(g.feature[inner].mean() - g.feature[ring].mean())
 
     world = np.asarray(affine, float) @ np.array([centre[0] / dx, centre[1] / dy, centre_k, 1.0])
     vials = lay.copy()
@@ -553,7 +576,7 @@ def localise(images: np.ndarray | Sequence[np.ndarray], affine: np.ndarray,
     vials["region_radius_mm"] = region_r
     vials["n_voxels"] = n_vox
     vials["n_slices"] = n_sl
-    vials["contrast"] = contrast
+    vials["contrast"] = ev
     overlay_k = int(min(phantom_slices, key=lambda k: abs(k - centre_k)))
     placement = Placement(labels=labels, vials=vials, angle_deg=angle, mirrored=bool(mirrored),
                           centre_ij=(float(centre[0] / dx), float(centre[1] / dy)),

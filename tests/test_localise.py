@@ -222,3 +222,113 @@ def test_layout_file_validation(tmp_path):
     two = pd.DataFrame({"label": [1, 2], "x_mm": [0, 0], "y_mm": [0, 0], "radius_mm": [5, 5],
                         "z_mm": [-10, 10]})
     assert len(check_layout(two)) == 2
+
+
+# ----------------------------------------------------------------------------------------
+# The demo simulator's phantom, and `relaxline qc --layout`
+
+
+def _demo_session(tmp_path, matrix=80, noise_only=False):
+    """A maps folder (M0map, T1map) built from the demo simulator's truth of one session."""
+    import nibabel as nib
+
+    from pipeline import phantom as ph
+    from pipeline import simulate as sim
+
+    opts = sim.SimOptions(sessions=1, matrix=matrix, slices=2, seed=11)
+    st = sim.session_state(0, opts)
+    _, affine, (x, y, _) = sim.grid(opts)
+    rng = np.random.default_rng(1)
+    maps = tmp_path / "maps"
+    maps.mkdir(parents=True)
+    stem = f"sub-demo_ses-{st.label}_IRT1"
+    m0 = np.abs(st.pd * st.b1 + rng.normal(0, 0.01, st.pd.shape))
+    if noise_only:
+        m0 = np.abs(rng.normal(0, 0.01, st.pd.shape))
+    t1 = np.where(st.inside, st.t1 * (1 + rng.normal(0, 0.01, st.t1.shape)),
+                  rng.uniform(0, 5, st.t1.shape))
+    for suffix, arr in (("M0map", m0), ("T1map", t1)):
+        nib.save(nib.Nifti1Image(arr.astype(np.float32), affine),
+                 str(maps / f"{stem}_{suffix}.nii.gz"))
+    layout = tmp_path / "layout.tsv"
+    ph.layout_table().to_csv(layout, sep="\t", index=False)
+    reference = tmp_path / "reference.tsv"
+    ph.reference_table().to_csv(reference, sep="\t", index=False)
+    px, py = ph.world_to_phantom(x, y, st.shift_mm, st.rotation_deg)
+    return st, maps, layout, reference, affine, (px, py)
+
+
+def test_demo_simulator_series_mean():
+    """The demo phantom's inversion-recovery series mean (Rician noise, B1 shading)."""
+    from pipeline import phantom as ph
+    from pipeline import simulate as sim
+
+    opts = sim.SimOptions(sessions=2, matrix=80, slices=2, seed=4)
+    st = sim.session_state(1, opts)
+    _, affine, (x, y, _) = sim.grid(opts)
+    sig = sim.clean_signals(st)["IRT1"]
+    mag = sim.rician_magnitude(sig, float(np.abs(sig).max()) / opts.snr,
+                               np.random.default_rng(0))
+    mean = mag.mean(axis=-1)
+    layout = ph.layout_table()
+    pl = localise(mean, affine, layout, margin_mm=MARGIN)
+    assert abs(pl.angle_deg - st.rotation_deg) < 1.0 and not pl.mirrored
+    px, py = ph.world_to_phantom(x, y, st.shift_mm, st.rotation_deg)
+    for row in layout.itertuples():
+        tru = (px - row.x_mm) ** 2 + (py - row.y_mm) ** 2 <= (row.radius_mm - MARGIN) ** 2
+        est = pl.labels == row.label
+        assert dice(est, tru) >= 0.9, (row.label, dice(est, tru))
+        assert abs(np.median(mean[est]) / np.median(mean[tru]) - 1) < 0.005
+
+
+def test_qc_command_with_layout(tmp_path):
+    import nibabel as nib
+
+    from pipeline.cli import main
+
+    st, maps, layout, reference, affine, (px, py) = _demo_session(tmp_path)
+    out = tmp_path / "qc"
+    code = main(["qc", str(maps), "--layout", str(layout), "--reference", str(reference),
+                 "--out", str(out), "--temperature", str(st.temperature), "--margin-mm", "2",
+                 "--no-figures"])
+    assert code == 0
+    lab_file = out / f"ses-{st.label}_desc-vials_dseg.nii.gz"
+    img = nib.load(str(lab_file))
+    assert np.allclose(img.affine, affine)
+    labels = np.asarray(img.dataobj)
+    assert (out / "vials_overlay.png").read_bytes()[:4] == b"\x89PNG"
+    stats = pd.read_csv(out / "roi_stats.tsv", sep="\t")
+    from pipeline import phantom as ph
+    for row in ph.layout_table().itertuples():
+        tru = (px - row.x_mm) ** 2 + (py - row.y_mm) ** 2 <= (row.radius_mm - 2.0) ** 2
+        assert dice(labels == row.label, tru) >= 0.9
+        med = stats.loc[(stats["label"] == row.label) & (stats["map"] == "T1map"), "median"]
+        truth_t1 = st.t1[(st.labels == row.label) & st.inside].mean()
+        assert abs(float(med.iloc[0]) / truth_t1 - 1) < 0.005
+    assert "Vial localisation" in (out / "report.html").read_text()
+
+
+def test_qc_command_layout_failures(tmp_path, capsys):
+    from pipeline.cli import main
+
+    # noise only: bad input, exit 2, nothing written
+    st, maps, layout, reference, *_ = _demo_session(tmp_path / "a", noise_only=True)
+    out = tmp_path / "a" / "qc"
+    assert main(["qc", str(maps), "--layout", str(layout), "--out", str(out)]) == 2
+    assert "no phantom found" in capsys.readouterr().err
+    assert not (out / "roi_stats.tsv").exists()
+    # a layout that is not this phantom's: a QC failure (exit 1) with the overlay to look at
+    st, maps, layout, reference, *_ = _demo_session(tmp_path / "b")
+    wrong = tmp_path / "b" / "wrong.tsv"
+    other = pd.DataFrame({"label": range(1, 13), "x_mm": [40.0 * np.cos(a) for a in
+                                                          np.linspace(0, 2 * np.pi, 13)[:-1]],
+                          "y_mm": [40.0 * np.sin(a) for a in np.linspace(0, 2 * np.pi, 13)[:-1]],
+                          "radius_mm": 9.0})
+    other.to_csv(wrong, sep="\t", index=False)
+    out = tmp_path / "b" / "qc"
+    assert main(["qc", str(maps), "--layout", str(wrong), "--out", str(out)]) == 1
+    err = capsys.readouterr().err
+    assert "QC failure" in err and "vials_overlay.png" in err
+    assert (out / "vials_overlay.png").is_file() and not (out / "roi_stats.tsv").exists()
+    # neither --labels nor --layout
+    assert main(["qc", str(maps), "--out", str(out)]) == 2

@@ -16,9 +16,13 @@ Temperature: --temperature, else PhantomTemperature in the map or source-series
 sidecars, else `temperature` in --config; without one, temperature-dependent reference
 values are used uncorrected and the report says so.
 
+Vials come from --labels, or (without --labels) are placed automatically from the phantom
+--layout on the M0 map (or the source series' mean) plus the relaxation maps; a placement
+that does not match the layout convincingly is a QC failure (exit 1, overlay written).
+
 Without --reference (scan sessions) only statistics are written; status is n/a.
-Exit status: 0 all pass/warn/n-a, 1 any vial fails, 2 bad input (e.g. label map on
-another grid).
+Exit status: 0 all pass/warn/n-a, 1 any vial fails or the vial placement is poor, 2 bad
+input (e.g. label map on another grid, no phantom in the images).
 
 For quality assurance and research; not a medical device. Local codes, QA procedures
 and the responsible licensed physicist take precedence."""
@@ -26,8 +30,16 @@ and the responsible licensed physicist take precedence."""
 
 def add_arguments(p: argparse.ArgumentParser) -> None:
     p.add_argument("maps_dir", metavar="MAPS_DIR", help="folder of maps written by `relaxline fit`")
-    p.add_argument("--labels", metavar="F", required=True,
+    p.add_argument("--labels", metavar="F",
                    help="label map (NIfTI, same grid as the maps; 0 = background)")
+    # --layout/--margin-mm: automatic vial localisation (pipeline/vialjob.py, issue 9)
+    p.add_argument("--layout", metavar="F.tsv",
+                   help="phantom layout (TSV: label, x_mm, y_mm, radius_mm[, z_mm]) to place "
+                        "the vials automatically when no --labels map is given; writes "
+                        "OUT/<session>_desc-vials_dseg.nii.gz and OUT/vials_overlay.png")
+    p.add_argument("--margin-mm", metavar="MM", type=float, default=2.0,
+                   help="with --layout: each vial region is the vial disc shrunk by this "
+                        "margin (partial volume at the walls); default 2")
     p.add_argument("--reference", metavar="F.tsv",
                    help="reference table (TSV: label, name, T1, T2, T1_sd, T2_sd, temperature, "
                         "field, T1_coef, T2_coef); omit for scan sessions")
@@ -56,11 +68,41 @@ def run(args: argparse.Namespace) -> int:
         raise InputError(f"--temperature must be a finite number in °C, got {args.temperature}.")
     if not math.isfinite(args.erode) or args.erode < 0:
         raise InputError(f"--erode must be a non-negative margin in mm, got {args.erode}.")
-    result = run_qc(args.maps_dir, args.out, labels_from_file(args.labels),
+    grids, sections = [], []
+    if args.labels is not None:
+        source, labels_desc = labels_from_file(args.labels), str(args.labels)
+    elif args.layout is not None:
+        import sys
+
+        from pipeline import vialjob
+        from pipeline.errors import EXIT_QC_FAIL
+        from qc.localise import PoorMatchError
+        if not math.isfinite(args.margin_mm) or args.margin_mm < 0:
+            raise InputError(f"--margin-mm must be a non-negative margin in mm, "
+                             f"got {args.margin_mm}.")
+        try:
+            grids = vialjob.place_vials(args.maps_dir, args.layout, args.margin_mm, args.session)
+        except PoorMatchError as exc:
+            where = ""
+            if getattr(exc, "grid", None) is not None:
+                png = vialjob.write_rejected(args.out, exc.grid)
+                where = f" The rejected placement is drawn in {png}."
+            print(f"relaxline qc: QC failure: {exc}{where}", file=sys.stderr)
+            return EXIT_QC_FAIL
+        source = vialjob.label_source(grids)
+        labels_desc = (f"placed from the layout {args.layout} (regions shrunk by "
+                       f"{args.margin_mm:g} mm)")
+        sections = [vialjob.report_section(grids, args.layout)]
+    else:
+        raise InputError("give the vial regions: --labels F (a label map on the maps' grid) "
+                         "or --layout F.tsv (the phantom layout, vials placed automatically).")
+    result = run_qc(args.maps_dir, args.out, source,
                     reference_path=args.reference, config=args.config,
                     temperature=args.temperature, session=args.session,
                     erode_mm=args.erode, figures=not args.no_figures,
-                    labels_desc=str(args.labels))
+                    labels_desc=labels_desc, extra_sections=sections)
+    if grids:
+        vialjob.write_placements(args.out, grids)
     t = result.table
     counts = t["status"].value_counts().to_dict()
     summary = ", ".join(f"{counts.get(k, 0)} {k}" for k in ("pass", "warn", "fail", "n/a")
