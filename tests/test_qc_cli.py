@@ -123,6 +123,8 @@ def test_missing_temperature_warns(case, capsys):
     maps, lab, ref, out, _ = case(temperature=None)
     assert _qc(maps, lab, ref, out) == 0
     assert "no phantom temperature" in capsys.readouterr().out
+    report = (out / "report.html").read_text()
+    assert 'class="warnings"' in report and "no phantom temperature" in report
     df = pd.read_csv(out / "roi_stats.tsv", sep="\t", dtype={"session": str})
     t1 = df[df["map"] == "T1map"]
     assert t1["note"].str.contains("no phantom temperature").all()
