@@ -159,7 +159,6 @@ def fit_mean(spec: ModelSpec, ms: MeanSignal, fix: Mapping[str, float] | None = 
              label: str | None = None, ci: bool = True) -> RegionFit:
     """lmfit fit of the mean signal ``ms`` with ``spec``; parameters in ``fix`` are held at
     the given value (lmfit ``vary=False``). ``ci``: profile intervals at :data:`SIGMAS`."""
-    import lmfit
     from scipy.stats import chi2
 
     fix = dict(fix or {})

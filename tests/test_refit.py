@@ -268,3 +268,18 @@ def test_label_map_needs_label(session, capsys):
     code, out, err = _refit(capsys, "ir", anat / f"{stem}_IRT1.nii.gz", "--label-map",
                             anat / f"{stem}_dseg.nii.gz")
     assert code == 2 and "--label N" in err
+
+
+def test_vfa_with_b1_map_and_rician_noise(session, capsys):
+    # The simulator's true B1 map removes the flip-angle bias (shared --b1 handling of fit).
+    anat, stem, truth = session
+    b1 = next(anat.parent.parent.parent.glob("phantom/truth_*_TB1map.nii.gz"))
+    vial = ("--label-map", anat / f"{stem}_dseg.nii.gz", "--label", 7)
+    code, out, err = _refit(capsys, "vfa", anat / f"{stem}_VFA.nii.gz", *vial, "--b1", b1,
+                            "--noise", "rician", "--json")
+    assert code == 0, err
+    t1 = json.loads(out)["parameters"]["T1"]
+    true_t1 = float(truth.loc[truth.label == 7, "T1"].iloc[0])
+    assert abs(t1["value"] - true_t1) < 3 * t1["stderr"]
+    code, out, err = _refit(capsys, "vfa", anat / f"{stem}_VFA.nii.gz", *vial, "--json")
+    assert code == 0 and "no --b1 map given" in err

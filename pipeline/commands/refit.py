@@ -241,12 +241,11 @@ def _clean(o: Any) -> Any:
 # --------------------------------------------------------------------------- plot
 def plot_png(rep, title: str) -> bytes:
     """Data (± σ of the mean), fitted curve(s) and residuals as PNG bytes."""
-    import io
-
     import matplotlib
     matplotlib.use("Agg", force=False)
     import matplotlib.pyplot as plt
-    import numpy as np
+
+    from qc.figures import to_png
 
     ms, fit = rep.mean, rep.fit
     fig, (ax, axr) = plt.subplots(2, 1, figsize=(6.4, 5.6), sharex=True,
@@ -265,10 +264,7 @@ def plot_png(rep, title: str) -> bytes:
     axr.plot(ms.x, res / scale, "o", color="k", ms=4)
     axr.set_ylabel("residual / σ" if err is not None else "residual")
     axr.set_xlabel(f"{fit.spec.xkey}")
-    buf = io.BytesIO()
-    fig.savefig(buf, format="png", dpi=110, bbox_inches="tight", metadata={"Software": None})
-    plt.close(fig)
-    return buf.getvalue()
+    return to_png(fig)
 
 
 def _curve(f, ms):
