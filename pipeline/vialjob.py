@@ -170,3 +170,38 @@ def report_section(placements: list[GridPlacement], layout_path: str | Path) -> 
             f"src=\"data:image/png;base64,{png}\">")
     return "Vial localisation", "\n".join(parts)
 
+
+
+def run_qc_with_layout(maps_dir: str | Path, out_dir: str | Path, layout_path: str | Path,
+                       margin_mm: float, session: str | None = None, **run_qc_options):
+    """:func:`pipeline.qcjob.run_qc` with the vials placed from a layout (workflow and CLI).
+
+    Writes the label map and overlay after the QC outputs. A poor placement raises
+    :class:`qc.localise.PoorMatchError` — a QC failure for the caller to report (exit 1) —
+    after writing the rejected placement's overlay, whose path the message names.
+    ``run_qc_options`` are passed on (reference_path, config, temperature, erode_mm, ...).
+    """
+    import math
+
+    from pipeline.qcjob import run_qc
+    from qc.localise import PoorMatchError
+
+    if not math.isfinite(margin_mm) or margin_mm < 0:
+        raise InputError(f"--margin-mm must be a non-negative margin in mm, got {margin_mm}.")
+    try:
+        grids = place_vials(maps_dir, layout_path, margin_mm, session)
+    except PoorMatchError as exc:
+        grid = getattr(exc, "grid", None)
+        if grid is None:
+            raise
+        png = write_rejected(out_dir, grid)
+        raise PoorMatchError(f"{exc} The rejected placement is drawn in {png}.",
+                             exc.placement) from None
+    extra = list(run_qc_options.pop("extra_sections", ()))
+    result = run_qc(maps_dir, out_dir, label_source(grids), session=session,
+                    labels_desc=f"placed from the layout {layout_path} (regions shrunk by "
+                                f"{margin_mm:g} mm)",
+                    extra_sections=[report_section(grids, layout_path), *extra],
+                    **run_qc_options)
+    write_placements(out_dir, grids)
+    return result

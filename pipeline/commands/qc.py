@@ -68,41 +68,27 @@ def run(args: argparse.Namespace) -> int:
         raise InputError(f"--temperature must be a finite number in °C, got {args.temperature}.")
     if not math.isfinite(args.erode) or args.erode < 0:
         raise InputError(f"--erode must be a non-negative margin in mm, got {args.erode}.")
-    grids, sections = [], []
+    options = dict(reference_path=args.reference, config=args.config,
+                   temperature=args.temperature, session=args.session, erode_mm=args.erode,
+                   figures=not args.no_figures)
     if args.labels is not None:
-        source, labels_desc = labels_from_file(args.labels), str(args.labels)
-    elif args.layout is not None:
+        result = run_qc(args.maps_dir, args.out, labels_from_file(args.labels),
+                        labels_desc=str(args.labels), **options)
+    elif args.layout is not None:   # vials placed automatically (issue 9)
         import sys
 
-        from pipeline import vialjob
         from pipeline.errors import EXIT_QC_FAIL
+        from pipeline.vialjob import run_qc_with_layout
         from qc.localise import PoorMatchError
-        if not math.isfinite(args.margin_mm) or args.margin_mm < 0:
-            raise InputError(f"--margin-mm must be a non-negative margin in mm, "
-                             f"got {args.margin_mm}.")
         try:
-            grids = vialjob.place_vials(args.maps_dir, args.layout, args.margin_mm, args.session)
+            result = run_qc_with_layout(args.maps_dir, args.out, args.layout, args.margin_mm,
+                                        **options)
         except PoorMatchError as exc:
-            where = ""
-            if getattr(exc, "grid", None) is not None:
-                png = vialjob.write_rejected(args.out, exc.grid)
-                where = f" The rejected placement is drawn in {png}."
-            print(f"relaxline qc: QC failure: {exc}{where}", file=sys.stderr)
+            print(f"relaxline qc: QC failure: {exc}", file=sys.stderr)
             return EXIT_QC_FAIL
-        source = vialjob.label_source(grids)
-        labels_desc = (f"placed from the layout {args.layout} (regions shrunk by "
-                       f"{args.margin_mm:g} mm)")
-        sections = [vialjob.report_section(grids, args.layout)]
     else:
         raise InputError("give the vial regions: --labels F (a label map on the maps' grid) "
                          "or --layout F.tsv (the phantom layout, vials placed automatically).")
-    result = run_qc(args.maps_dir, args.out, source,
-                    reference_path=args.reference, config=args.config,
-                    temperature=args.temperature, session=args.session,
-                    erode_mm=args.erode, figures=not args.no_figures,
-                    labels_desc=labels_desc, extra_sections=sections)
-    if grids:
-        vialjob.write_placements(args.out, grids)
     t = result.table
     counts = t["status"].value_counts().to_dict()
     summary = ", ".join(f"{counts.get(k, 0)} {k}" for k in ("pass", "warn", "fail", "n/a")
