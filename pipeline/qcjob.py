@@ -469,7 +469,7 @@ def render(result: QCResult, reference, tol, out_figures: bool, erode_mm: float,
                 "Percent difference from the reference against the mean of measured and "
                 "reference; solid blue: bias, dashed: 95 % limits of agreement "
                 "(bias ± 1.96·SD; Bland & Altman 1986, Lancet 1:307); dotted grey: the map's "
-                "fail limit. With few vials the limits of agreement are themselves "
+                "fail limit (stated instead when far beyond the differences). With few vials the limits of agreement are themselves "
                 "uncertain.", AGREEMENT))
     by_stem: dict[str, list[MapFile]] = {}
     for mf in result.maps:

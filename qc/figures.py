@@ -265,12 +265,6 @@ def bland_altman(df: pd.DataFrame) -> tuple[bytes | None, pd.DataFrame]:
         for a, d, lab in zip(avg, diff, s["label"]):
             ax.annotate(str(lab), (a, d), fontsize=8, xytext=(5, 3), textcoords="offset points")
         ax.axhline(0, color="black", lw=0.8)
-        fail = np.nanmedian(s["tolerance_pct"].astype(float))
-        if np.isfinite(fail):
-            for sign in (-1, 1):
-                ax.axhline(sign * fail, color="#777777", lw=1, ls=":")
-            ax.text(0.01, fail, f"fail limit ±{fail:g} %", fontsize=7, color="#555555",
-                    va="bottom", transform=ax.get_yaxis_transform())
         if np.isfinite(st["bias"]):
             ax.axhline(st["bias"], color="#2166ac", lw=1.2, label=f"bias {st['bias']:+.2f} %")
         if np.isfinite(st["sd"]):
@@ -280,6 +274,18 @@ def bland_altman(df: pd.DataFrame) -> tuple[bytes | None, pd.DataFrame]:
                     va="center", transform=ax.get_yaxis_transform())
             ax.text(1.0, st["lower"], f" −1.96 SD\n {st['lower']:+.2f} %", fontsize=7,
                     va="center", transform=ax.get_yaxis_transform())
+        # the fail limit is drawn when it is within reach of the data; otherwise it would
+        # squash small differences into a line, so it is stated instead
+        fail = np.nanmedian(s["tolerance_pct"].astype(float))
+        extent = np.nanmax(np.abs(np.r_[diff, st["lower"], st["upper"]]))
+        if np.isfinite(fail) and np.isfinite(extent) and fail <= 2 * extent:
+            for sign in (-1, 1):
+                ax.axhline(sign * fail, color="#777777", lw=1, ls=":")
+            ax.text(0.01, fail, f"fail limit ±{fail:g} %", fontsize=7, color="#555555",
+                    va="bottom", transform=ax.get_yaxis_transform())
+        elif np.isfinite(fail):
+            ax.text(0.01, 0.98, f"fail limit ±{fail:g} % is beyond the plotted range",
+                    fontsize=7, color="#555555", va="top", transform=ax.transAxes)
         ax.set_xscale("log")
         _plain_log_ticks(ax, "x")
         units = str(s["units"].iloc[0]) if "units" in s else "s"
