@@ -38,7 +38,7 @@ T2_RANGE_S = (1e-3, 4.0)
 N_T2 = 200
 B1_RANGE = (0.3, 0.99)
 N_B1 = 36
-BLOCK_ELEMENTS = 1 << 22     # voxels × atoms per matrix product (32 MiB of float64)
+BLOCK_ELEMENTS = 1 << 22     # voxels × atoms per matrix product (16 MiB of float32)
 
 
 @dataclass(frozen=True)
@@ -82,6 +82,7 @@ class EpgDictionary:
         self.b1 = np.tile(b1_grid, t2_grid.size)
         self.norms = np.linalg.norm(trains, axis=1)
         self.atoms = trains / self.norms[:, None]
+        self._atoms_t32 = np.ascontiguousarray(self.atoms.T, dtype=np.float32)
 
     def match(self, data: np.ndarray, b1: np.ndarray | None = None,
               block_elements: int = BLOCK_ELEMENTS,
@@ -121,18 +122,21 @@ class EpgDictionary:
         return MatchResult(t2=t2, b1=b1_out, m0=m0, score=np.where(ok, score, np.nan))
 
     def _match_rows(self, data, rows, atom_idx, best, score, block_elements, progress) -> None:
-        """Argmax of the normalised inner product for ``rows`` over atoms ``atom_idx``."""
-        atoms_t = np.ascontiguousarray(self.atoms[atom_idx].T)
+        """Argmax of the normalised inner product for ``rows`` over atoms ``atom_idx``.
+
+        The search runs in float32 (half the memory traffic, and a faster argmax); the
+        winner's inner product is then recomputed in float64.
+        """
+        atoms_t = self._atoms_t32 if atom_idx.size == self.t2.size \
+            else np.ascontiguousarray(self._atoms_t32[:, atom_idx])
         step = max(1, int(block_elements) // max(1, atom_idx.size))
         for start in range(0, rows.size, step):
             r = rows[start:start + step]
             d = data[r]
-            nrm = np.linalg.norm(d, axis=1)
-            ip = d @ atoms_t
-            k = ip.argmax(axis=1)
+            k = atom_idx[(d.astype(np.float32) @ atoms_t).argmax(axis=1)]
             with np.errstate(invalid="ignore", divide="ignore"):
-                score[r] = ip[np.arange(r.size), k] / nrm
-            best[r] = atom_idx[k]
+                score[r] = np.einsum("nm,nm->n", d, self.atoms[k]) / np.linalg.norm(d, axis=1)
+            best[r] = k
             if progress is not None:
                 progress(r.size)
 
