@@ -208,15 +208,17 @@ def information_criteria(chisqr: float, ndata: int, nvarys: int, known: bool,
 
 def profile_intervals(res, free: Sequence[str], stderr: Mapping[str, float], known: bool
                        ) -> dict[str, dict[str, tuple[float, float]]]:
-    """``lmfit.conf_interval`` per parameter; (NaN, NaN) where the profile cannot be
-    traced (no stderr, or the interval runs into a bound); a bound reached is returned as
-    that bound's value only when lmfit reports it as a finite limit."""
+    """Profile-likelihood intervals by ``lmfit.conf_interval`` at :data:`SIGMAS` per
+    parameter: ``{name: {"1sigma": (lo, hi), "2sigma": (lo, hi)}}``. ``known``: σ is known
+    (Δχ² test, :func:`_chi2_prob`), else lmfit's F-test. (NaN, NaN) where the profile
+    cannot be traced (no standard error, no degrees of freedom, or lmfit gives up)."""
     import warnings
 
     import lmfit
     nan = (float("nan"), float("nan"))
     out = {k: {f"{s}sigma": nan for s in SIGMAS} for k in free}
-    ok = [k for k in free if np.isfinite(stderr[k]) and stderr[k] > 0]
+    ok = [k for k in free if stderr.get(k) is not None and np.isfinite(stderr[k])
+          and stderr[k] > 0]
     if res.nfree <= 0:
         return out
     for k in ok:
