@@ -573,6 +573,52 @@ def run_status(output_dir: str | Path) -> tuple[int, str]:
     return int(st_.get("exit_status", 0)), "; ".join(parts)
 
 
+# ---- the commands the rules run ---------------------------------------------------------
+
+def _cmd(step: str, args: Sequence[str], log: Sequence[str]) -> str:
+    import shlex
+    cmd = (shlex.join([sys.executable, "-m", "pipeline.workflow", step, *map(str, args)])
+           + f" > {shlex.quote(str(log[0]))} 2>&1")
+    return cmd.replace("{", "{{").replace("}", "}}")  # Snakemake's shell() formats braces
+
+
+def fit_inputs(cfg: dict, plan_: Plan, wc, chunks: bool = True) -> dict[str, list[str]]:
+    """Inputs of a fit (or chunk) job: the series, its chunk files, the dam manifest."""
+    job = plan_.job(wc.sub, wc.ses, wc.model, wc.stem)
+    src = plan_.b1_source(cfg, job)
+    out = {"series": job.inputs, "b1": [src.manifest()] if src else []}
+    if chunks:
+        out["chunks"] = job.chunk_files()
+    return out
+
+
+def fit_command(cfg: dict, plan_: Plan, step: str, wc, input, output, threads: int,
+                log) -> str:
+    """Shell command of a ``fit`` or ``chunk`` job (a separate process per job)."""
+    job = plan_.job(wc.sub, wc.ses, wc.model, wc.stem)
+    m = cfg["models"][job.model]
+    args = ["--model", job.model, "--inputs", *input.series,
+            "--engine", m.get("engine", cfg["fit"]["engine"]), "--threads", threads,
+            "--time-unit", m.get("time_unit", "s")]
+    if input.b1:
+        args += ["--b1-manifest", input.b1[0]]
+    if step == "chunk":
+        z0, z1 = job.slabs[int(wc.chunk)]
+        args += ["--z", z0, z1, "--out", output[0]]
+    else:
+        args += ["--out", str(Path(output[0]).parent), "--manifest", output[0]]
+        if input.chunks:
+            args += ["--chunks", *input.chunks]
+    return _cmd(step, args, log)
+
+
+def step_command(step: str, settings: dict, inputs: Sequence[str], outputs: Sequence[str],
+                 log) -> str:
+    """Shell command of a ``qc``, ``record`` or ``report`` job."""
+    return _cmd(step, ["--settings", json.dumps(settings, sort_keys=True), "--inputs",
+                       *inputs, "--out", *outputs], log)
+
+
 # ---- `python -m pipeline.workflow STEP` ------------------------------------------------
 
 def main(argv: Sequence[str] | None = None) -> int:

@@ -2,26 +2,20 @@
 # into the history database (one transaction; a rerun replaces them).
 
 
-def session_manifests(wc):
-    return [j.manifest() for j in PLAN.session(wc.sub, wc.ses).series]
-
-
 rule qc:
     input:
-        session_manifests,
+        lambda wc: [j.manifest() for j in PLAN.session(wc.sub, wc.ses).series],
     output:
         W.QC_SUMMARY,
     log:
         "logs/{sub}/{ses}/qc.log",
     params:
-        py=sys.executable,
-        settings=lambda wc: json.dumps(W.qc_settings(CFG, PLAN.session(wc.sub, wc.ses))),
+        settings=lambda wc: W.qc_settings(CFG, PLAN.session(wc.sub, wc.ses)),
     resources:
         mem_mb=2000,
         runtime=30,
-    shell:
-        "{params.py:q} -m pipeline.workflow qc --settings {params.settings:q} "
-        "--inputs {input:q} --out {output:q} > {log:q} 2>&1"
+    run:
+        shell(W.step_command("qc", params.settings, input, output, log))
 
 
 rule record:
@@ -32,11 +26,9 @@ rule record:
     log:
         "logs/{sub}/{ses}/record.log",
     params:
-        py=sys.executable,
-        settings=json.dumps({"database": CFG["history"]["database"]}),
+        settings={"database": CFG["history"]["database"]},
     resources:
         mem_mb=500,
         runtime=10,
-    shell:
-        "{params.py:q} -m pipeline.workflow record --settings {params.settings:q} "
-        "--inputs {input:q} --out {output:q} > {log:q} 2>&1"
+    run:
+        shell(W.step_command("record", params.settings, input, output, log))

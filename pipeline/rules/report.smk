@@ -2,13 +2,11 @@
 # (from which `relaxline run` takes its exit status). Reruns when a session is added
 # or re-recorded.
 
-SESSIONS = [(s.sub, s.ses) for s in PLAN.sessions]
-
 
 rule report:
     input:
-        summaries=[W.QC_SUMMARY.format(sub=a, ses=b) for a, b in SESSIONS],
-        recorded=[W.RECORDED.format(sub=a, ses=b) for a, b in SESSIONS],
+        summaries=[W.QC_SUMMARY.format(sub=s.sub, ses=s.ses) for s in PLAN.sessions],
+        recorded=[W.RECORDED.format(sub=s.sub, ses=s.ses) for s in PLAN.sessions],
     output:
         report=W.REPORT,
         status=W.STATUS,
@@ -16,12 +14,9 @@ rule report:
     log:
         "logs/report.log",
     params:
-        py=sys.executable,
-        settings=json.dumps(W.report_settings(CFG)),
+        settings=W.report_settings(CFG),
     resources:
         mem_mb=2000,
         runtime=30,
-    shell:
-        "{params.py:q} -m pipeline.workflow report --settings {params.settings:q} "
-        "--inputs {input.summaries:q} "
-        "--out {output.report:q} {output.status:q} {output.drift:q} > {log:q} 2>&1"
+    run:
+        shell(W.step_command("report", params.settings, input.summaries, output, log))
