@@ -29,7 +29,8 @@ variants (:func:`configure`).
   the worst case being the longest T2 (0.4 s, approaching T1) at the lowest B1 (0.75).
   Set ``t1_fixed`` near the expected T1 when long T2 and poor refocusing meet.
 
-* ``mese-mono`` — S = M0·e^(−TE/T2) (+ offset, option ``offset``), optionally without the
+* ``mese-mono`` — S = M0·e^(−TE/T2) (+ offset, option ``offset``; map suffix ``Offsetmap``,
+  relaxline's name, signal units), optionally without the
   first echo (option ``drop_first_echo``), which carries no stimulated-echo contribution
   and so breaks the train's pattern under imperfect refocusing (Milford et al. 2015,
   PLoS ONE 10:e0145255). It overestimates T2 when B1 < 1 (Lebel & Wilman 2010);
@@ -289,6 +290,7 @@ MESE_MONO = register(ModelSpec(
 MESE_MONO_OFFSET = dataclasses.replace(
     MESE_MONO, params=("T2", "M0", "offset"), units=("s", "arbitrary", "arbitrary"),
     lower=(T2_LOWER, 0.0, -np.inf), upper=(T2_UPPER, np.inf, np.inf), min_volumes=4,
+    outputs={"T2": "T2map", "M0": "M0map", "offset": "Offsetmap"},
     init=lambda x, data, fixed: _mono_init(x, data, fixed, offset=True),
     validate=lambda x, fixed: _mono_validate(x, fixed, 3, "mese-mono"),
     scale_param=None)

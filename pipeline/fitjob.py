@@ -250,8 +250,13 @@ def load_b1(spec: ModelSpec, series: Series, b1: str | Path | None, stream: Text
 def fit_command(model: str, inputs: Sequence[str | Path], out: str | Path,
                 mask: str | Path | None = None, b1: str | Path | None = None,
                 engine: str = "fast", jobs: int = 1, time_unit: str = "s",
-                stream: TextIO | None = None, show_progress: bool = True) -> list[Path]:
-    """``relaxline fit``: validate everything, fit, then write all maps."""
+                stream: TextIO | None = None, show_progress: bool = True,
+                model_options: Mapping[str, Any] | None = None) -> list[Path]:
+    """``relaxline fit``: validate everything, fit, then write all maps.
+
+    ``model_options``: model variants and noise model (``t1_fixed``, ``offset``,
+    ``drop_first_echo``, ``noise``; :func:`fitting.spec.configure_model`).
+    """
     from pipeline.progress import Progress
     stream = stream or sys.stderr
     if engine not in ENGINES:
@@ -259,13 +264,15 @@ def fit_command(model: str, inputs: Sequence[str | Path], out: str | Path,
     if int(jobs) < 1:
         raise InputError(f"--jobs must be at least 1, got {jobs}.")
     spec, series, fixed = prepare(model, inputs, time_unit)
-    spec = configure_model(spec, {"b1_map": str(b1) if b1 else None})
+    extra = dict(model_options or {})
+    spec = configure_model(spec, {**extra, "b1_map": str(b1) if b1 else None})
+    acquisition(spec, series, extra)          # validate the options before any reading
     mask_arr = load_grid_map(mask, series, what="mask") if mask else None
     b1_arr = load_b1(spec, series, b1, stream)
     sigma = estimate_noise(series)
     options = {"engine": engine, "jobs": int(jobs), "time_unit": time_unit,
                "mask": str(mask) if mask else None, "b1_map": str(b1) if b1 else None,
-               "noise_sigma": sigma}
+               "noise_sigma": sigma, **extra}
     prog = Progress(series.n_voxels, f"fit {spec.name}", stream=stream, enabled=show_progress)
     arrays = fit_arrays(model, series, mask_arr, b1_arr, options, progress=prog)
     counts = np.bincount(arrays[STATUS_KEY].ravel(), minlength=max(st.NAMES) + 1)

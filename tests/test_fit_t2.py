@@ -292,3 +292,108 @@ def test_options_for_the_wrong_model_and_bad_t1():
     spec, fixed = model("mese", t1_fixed=-1.0)
     with pytest.raises(RelaxlineError, match="t1-fixed"):
         spec.validate(TE, fixed)
+
+
+# ----------------------------------------------------------------------------- command line
+CLI_SHAPE = (16, 16, 2)
+CLI_SIGMA = 2.0
+
+
+def _cli_phantom(rng, te=TE, refocus=180.0):
+    """Disk of four T2/B1 quadrants in air; magnitude CPMG data, SNR 500 at M0."""
+    xx, yy = np.mgrid[: CLI_SHAPE[0], : CLI_SHAPE[1]]
+    disk = ((xx - 7.5) ** 2 + (yy - 7.5) ** 2 < 6.5 ** 2)[:, :, None].repeat(CLI_SHAPE[2], 2)
+    quad = (xx >= 8)[:, :, None] * 2 + (yy >= 8)[:, :, None]
+    t2 = np.choose(quad.repeat(CLI_SHAPE[2], 2), [0.04, 0.08, 0.15, 0.3])
+    b1 = np.choose(quad.repeat(CLI_SHAPE[2], 2), [0.8, 0.9, 1.0, 0.85])
+    m0 = np.where(disk, 1000.0, 0.0)
+    s = cpmg_echoes(te.size, te[0], t2, 1.0, b1=b1, refocus_deg=refocus, m0=m0)
+    return disk, t2, b1, magnitude(s, CLI_SIGMA, rng).astype(np.float32)
+
+
+@pytest.fixture(scope="module")
+def mese_series(tmp_path_factory):
+    from seriesio import write_4d
+    d = tmp_path_factory.mktemp("mese")
+    disk, t2, b1, y = _cli_phantom(np.random.default_rng(5))
+    path = write_4d(d, "sub-01_MESE", y, "EchoTime", TE, {"RefocusingFlipAngle": 180.0})
+    return d, path, disk, t2, b1
+
+
+def _fit_cli(capsys, *argv):
+    from pipeline.cli import main
+    code = main(["fit", *map(str, argv)])
+    out = capsys.readouterr()
+    return code, out.err
+
+
+def _load(folder, name):
+    import nibabel as nib
+    return np.asarray(nib.load(folder / name).get_fdata())
+
+
+def test_cli_mese_writes_maps(mese_series, tmp_path, capsys):
+    import json
+    _, path, disk, t2, b1 = mese_series
+    out = tmp_path / "maps"
+    code, err = _fit_cli(capsys, "mese", path, "--out", out)
+    assert code == 0, err
+    stem = "sub-01_MESE"
+    for key in ("T2map", "M0map", "TB1map", "desc-stderr_T2map", "desc-stderr_TB1map",
+                "desc-rmse_T2map", "desc-fitstatus_mask"):
+        assert (out / f"{stem}_{key}.nii.gz").is_file(), key
+        assert (out / f"{stem}_{key}.json").is_file(), key
+    status = _load(out, f"{stem}_desc-fitstatus_mask.nii.gz")
+    assert np.all(np.isin(status[disk], st.USABLE)) and np.all(status[~disk] == st.OUTSIDE)
+    t2map = _load(out, f"{stem}_T2map.nii.gz")
+    # design §6 units; accuracy as in test_mese_accuracy_at_snr_300 (Lebel & Wilman 2010)
+    assert abs(np.median(t2map[disk] / t2[disk] - 1)) < 0.02
+    tb1 = _load(out, f"{stem}_TB1map.nii.gz")
+    assert np.all(tb1[disk] <= 1.0) and abs(np.median(tb1[disk & (b1 == 0.8)]) - 0.8) < 0.02
+    side = json.loads((out / f"{stem}_T2map.json").read_text())
+    assert side["Units"] == "s"
+
+
+def test_cli_mese_with_b1_map_and_options(mese_series, tmp_path, capsys):
+    from seriesio import write_nifti
+    d, path, disk, t2, b1 = mese_series
+    b1_path = write_nifti(tmp_path / "b1.nii.gz", b1.astype(np.float32))
+    out = tmp_path / "b1fixed"
+    code, err = _fit_cli(capsys, "mese", path, "--out", out, "--b1", b1_path, "--t1-fixed", "0.8")
+    assert code == 0, err
+    assert not (out / "sub-01_MESE_TB1map.nii.gz").exists()   # B1 is an input here
+    t2map = _load(out, "sub-01_MESE_T2map.nii.gz")
+    assert abs(np.median(t2map[disk] / t2[disk] - 1)) < 0.02
+    out = tmp_path / "mono"
+    code, err = _fit_cli(capsys, "mese-mono", path, "--out", out, "--offset", "--drop-first-echo")
+    assert code == 0, err
+    mono = _load(out, "sub-01_MESE_T2map.nii.gz")
+    # Lebel & Wilman 2010: mono-exponential T2 too long where B1 = 0.8
+    assert np.median(mono[disk & (b1 == 0.8)] / t2[disk & (b1 == 0.8)]) > 1.0
+    out = tmp_path / "rician"
+    code, err = _fit_cli(capsys, "megre", path, "--out", out, "--noise", "rician")
+    assert code == 0, err
+    assert (out / "sub-01_MESE_T2starmap.nii.gz").is_file()
+
+
+def test_cli_bad_input(tmp_path, capsys):
+    from seriesio import write_4d
+    _, _, _, y = _cli_phantom(np.random.default_rng(6))
+
+    def expect(argv, match):
+        out = tmp_path / f"o{len(list(tmp_path.iterdir()))}"
+        code, err = _fit_cli(capsys, *argv, "--out", out)
+        assert code == 2, err
+        assert match in err and "Traceback" not in err
+        assert not out.exists() or not any(out.iterdir())
+
+    te = TE.copy()
+    te[10] += 0.003
+    p = write_4d(tmp_path / "a", "uneven", y, "EchoTime", te)
+    expect(["mese", p], "evenly spaced")
+    p = write_4d(tmp_path / "b", "angle", y, "EchoTime", TE, {"RefocusingFlipAngle": 190.0})
+    expect(["mese", p], "RefocusingFlipAngle")
+    p = write_4d(tmp_path / "c", "few", y[..., :3], "EchoTime", TE[:3])
+    expect(["mese", p], "at least")
+    p = write_4d(tmp_path / "d", "ok", y, "EchoTime", TE)
+    expect(["mese", p, "--offset"], "mese-mono")

@@ -8,7 +8,11 @@ DESCRIPTION = """Fit a relaxation model voxel by voxel and write BIDS-derivative
 
 Models: ir (inversion recovery: T1, M0, inversion efficiency; magnitude or complex),
 vfa (variable flip angle: T1, M0; --b1 scales the nominal angles), dam (double
-angle alpha/2alpha: TB1map), and the T2 models when installed.
+angle alpha/2alpha: TB1map), mese (CPMG multi-echo spin echo by extended phase graphs:
+T2, M0 and the refocusing scale TB1map, reported folded to <= 1; with --b1 the B1 scale
+comes from the map and only T2 and M0 are fitted; echoes must sit at TE = k*ESP),
+mese-mono (mono-exponential T2, optional --offset and --drop-first-echo) and megre
+(T2* from multi-echo gradient echo magnitudes).
 
 Outputs in --out, named from the input stem: <stem>_T1map.nii.gz (s), _M0map,
 _InvEffmap (ir inversion efficiency, -cos of the inversion angle), _TB1map (ratio),
@@ -27,7 +31,8 @@ def add_series_arguments(p: argparse.ArgumentParser) -> None:
     p.add_argument("inputs", metavar="INPUT", nargs="+",
                    help="one 4D NIfTI or several 3D NIfTIs, each with a JSON sidecar")
     p.add_argument("--b1", metavar="F",
-                   help="B1 map (actual/nominal flip-angle ratio) on the series grid (vfa)")
+                   help="B1 map (actual/nominal flip-angle ratio) on the series grid "
+                        "(vfa; mese: B1 then fixed from the map)")
     p.add_argument("--time-unit", choices=("s", "ms"), default="s",
                    help="unit of the times in the sidecars (BIDS: s)")
 
@@ -40,11 +45,37 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
                    help="fast: batched numpy engine (default); lmfit: one lmfit fit per voxel")
     p.add_argument("--jobs", type=int, default=1, metavar="N",
                    help="processes for per-voxel lmfit fits (default 1)")
+    add_model_arguments(p)
+
+
+def add_model_arguments(p: argparse.ArgumentParser) -> None:
+    """Model options: T2 model variants and the noise model."""
+    g = p.add_argument_group("model options")
+    g.add_argument("--t1-fixed", type=float, metavar="S",
+                   help="mese: T1 (s) of the echo-train model (default 1.0; it only weights "
+                        "the stimulated echoes)")
+    g.add_argument("--offset", action="store_true",
+                   help="mese-mono: fit a constant offset as well")
+    g.add_argument("--drop-first-echo", action="store_true",
+                   help="mese-mono: leave out the first echo")
+    g.add_argument("--noise", choices=("gaussian", "rician"), default="gaussian",
+                   help="rician: fit the Rician expectation of magnitude data given the "
+                        "background noise (removes the noise-floor bias at low SNR; needs "
+                        "air around the object)")
+
+
+def model_options(args: argparse.Namespace) -> dict:
+    """The model options given on the command line (only those set)."""
+    out = {"t1_fixed": args.t1_fixed, "offset": args.offset,
+           "drop_first_echo": args.drop_first_echo,
+           "noise": args.noise if args.noise != "gaussian" else None}
+    return {k: v for k, v in out.items() if v not in (None, False)}
 
 
 def run(args: argparse.Namespace) -> int:
     from pipeline.fitjob import fit_command
     paths = fit_command(args.model, args.inputs, args.out, mask=args.mask, b1=args.b1,
-                        engine=args.engine, jobs=args.jobs, time_unit=args.time_unit)
+                        engine=args.engine, jobs=args.jobs, time_unit=args.time_unit,
+                        model_options=model_options(args))
     print(f"relaxline fit: wrote {len(paths)} maps to {args.out}")
     return 0
