@@ -329,12 +329,14 @@ def _ncc(groups: list[_Group], spacing2: tuple[float, float], p_mm: np.ndarray,
     num = ff = tt = 0.0
     for g in groups:
         t = _render(g.mask.shape, spacing2, _place(p_mm[g.rows], angle, mirrored, centre),
-                    radii[g.rows], sigma_t)[g.mask]
-        t -= t.mean()
+                    radii[g.rows], sigma_t)
+        # feature is zero outside the mask and sums to zero inside, so
+        # sum_mask F (T - mean T) = sum F T and sum_mask (T - mean T)^2 = S2 - S1^2 / N
+        tm = t * g.mask
         w = len(g.slices)
-        num += w * float(g.fvals @ t)
+        num += w * float(np.vdot(g.feature, t))
         ff += w * float(g.fvals @ g.fvals)
-        tt += w * float(t @ t)
+        tt += w * float(np.vdot(tm, t) - tm.sum() ** 2 / len(g.fvals))
     return num / np.sqrt(ff * tt) if ff > 0 and tt > 0 else 0.0
 
 
