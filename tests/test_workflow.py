@@ -1,0 +1,334 @@
+"""Workflow: config validation, discovery, chunking, and `relaxline run` end to end.
+
+The end-to-end checks compare the workflow's outputs with the per-command results
+(`relaxline fit`, `relaxline qc`) on a small simulated dataset, and check Snakemake's
+incremental behaviour (nothing to do on a second run; a new session runs only its
+jobs), replace-on-rerun in the history database and recovery from a killed run.
+"""
+from __future__ import annotations
+
+import json
+import os
+import shutil
+import signal
+import sqlite3
+import subprocess
+import sys
+import time
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pytest
+import yaml
+
+from pipeline import workflow as W
+from pipeline.cli import main
+from pipeline.errors import InputError
+
+ROOT = Path(__file__).resolve().parents[1]
+SAMPLE = ROOT / "sample_config" / "config.yaml"
+
+
+# ---- config ----------------------------------------------------------------------------
+
+def _cfg(tmp_path: Path, **over) -> dict:
+    (tmp_path / "in").mkdir(exist_ok=True)
+    ref = tmp_path / "ref.tsv"
+    ref.write_text("label\tname\tT1\n1\ta\t1.0\n")
+    cfg = {"input_dir": "in", "output_dir": "out",
+           "models": {"ir": {"pattern": "*_IRT1.nii.gz"}},
+           "phantom": {"reference": "ref.tsv"}}
+    cfg.update(over)
+    return cfg
+
+
+def _write(tmp_path: Path, cfg: dict) -> Path:
+    p = tmp_path / "config.yaml"
+    p.write_text(yaml.safe_dump(cfg))
+    return p
+
+
+def test_sample_config_is_valid():
+    cfg = W.validate_config(W.read_config(SAMPLE), str(SAMPLE))
+    assert set(cfg["models"]) == {"ir", "dam", "vfa", "mese", "mese-mono", "megre"}
+    assert cfg["drift"]["rules"][0] == "1-2s"
+
+
+def test_defaults_filled_and_paths_resolved(tmp_path):
+    cfg = W.load(_write(tmp_path, _cfg(tmp_path)))
+    assert cfg["fit"]["engine"] == "fast" and cfg["drift"]["baseline_sessions"] == 5
+    assert cfg["input_dir"] == str((tmp_path / "in").resolve())
+    assert cfg["history"]["database"] == str((tmp_path / "out" / "history.sqlite").resolve())
+
+
+@pytest.mark.parametrize("change, key", [
+    (lambda c: c["models"].update({"t3": {"pattern": "x"}}), "models"),       # unknown model
+    (lambda c: c.update({"fit": {"chunk_voxels": "many"}}), "fit.chunk_voxels"),  # wrong type
+    (lambda c: c.update({"fit": {"threads": 0}}), "fit.threads"),
+    (lambda c: c.update({"input_dir": "nowhere"}), "input_dir"),              # missing path
+    (lambda c: c["phantom"].update({"reference": "none.tsv"}), "phantom.reference"),
+    (lambda c: c.pop("output_dir"), "output_dir"),                            # missing key
+    (lambda c: c.update({"outptu_dir": "x"}), "(top level)"),                 # misspelt key
+    (lambda c: c["models"].update({"vfa": {"pattern": "*_VFA.nii.gz", "b1": "dam"}}),
+     "models.vfa.b1"),                                                        # no dam model
+    (lambda c: c.update({"drift": {"rules": ["1-5s"]}}), "drift.rules.0"),
+])
+def test_bad_config_names_the_key(tmp_path, change, key):
+    cfg = _cfg(tmp_path)
+    change(cfg)
+    with pytest.raises(InputError) as exc:
+        W.load(_write(tmp_path, cfg))
+    assert f"`{key}`" in str(exc.value)
+
+
+def test_bad_config_fails_before_any_job(tmp_path, capsys):
+    cfg = _cfg(tmp_path)
+    cfg["models"]["t3"] = {"pattern": "x"}
+    rc = main(["run", "--config", str(_write(tmp_path, cfg))])
+    err = capsys.readouterr().err
+    assert rc == 2 and "`models`" in err and "'t3'" in err
+    assert not (tmp_path / "out").exists()  # nothing ran, nothing written
+
+
+def test_snakemake_validate_rejects_bad_config(tmp_path):
+    # the Snakefile's own `validate` (plain `snakemake` users) also names the key
+    cfg = _cfg(tmp_path)
+    cfg["fit"] = {"chunk_voxels": "many"}
+    r = subprocess.run([sys.executable, "-m", "snakemake", "-s", str(W.SNAKEFILE),
+                        "--configfile", str(_write(tmp_path, cfg)), "-d", str(tmp_path / "o"),
+                        "-n", "--cores", "1"], capture_output=True, text=True, timeout=120)
+    assert r.returncode != 0
+    assert "chunk_voxels" in r.stdout + r.stderr
+
+
+# ---- discovery and planning --------------------------------------------------------------
+
+@pytest.fixture(scope="module")
+def sim3(tmp_path_factory) -> Path:
+    """Three small simulated sessions (2 slices, 40x40)."""
+    d = tmp_path_factory.mktemp("sim")
+    assert main(["simulate", str(d), "--sessions", "3", "--slices", "2", "--matrix", "40",
+                 "--seed", "3"]) == 0
+    return d
+
+
+def test_plan_discovers_sessions_series_and_chunks(sim3, tmp_path):
+    cfg = _cfg(tmp_path, input_dir=str(sim3),
+               models={"ir": {"pattern": "*_IRT1.nii.gz"}, "dam": {"pattern": "*_TB1DAM.nii.gz"},
+                       "vfa": {"pattern": "*_VFA.nii.gz", "b1": "dam"}},
+               fit={"chunk_voxels": 1000},
+               discovery={"sessions": ["ses-20261101", "ses-20261102"]})
+    cfg = W.load(_write(tmp_path, cfg))
+    plan = W.plan(cfg)
+    assert [s.ses for s in plan.sessions] == ["ses-20261101", "ses-20261102"]
+    s = plan.sessions[0]
+    assert (s.site, s.scanner) == ("northfield-lab", "bay2")  # from the sidecars
+    assert s.labels.endswith("_dseg.nii.gz")
+    dam = [j for j in s.series if j.model == "dam"]
+    assert len(dam) == 1 and len(dam[0].inputs) == 2  # flip-1 + flip-2 form one series
+    assert dam[0].stem == "sub-relaxlinedemo_ses-20261101_TB1DAM"
+    ir = [j for j in s.series if j.model == "ir"][0]
+    # 40*40 = 1600 voxels per slice > 1000: one slice per chunk
+    assert ir.shape == (40, 40, 2) and ir.slabs == [(0, 1), (1, 2)] and ir.chunked
+    vfa = [j for j in s.series if j.model == "vfa"][0]
+    assert plan.b1_source(cfg, vfa) is dam[0]
+
+
+def test_slab_bounds():
+    assert W.slab_bounds(5, 100, 250) == [(0, 2), (2, 4), (4, 5)]
+    assert W.slab_bounds(3, 100, 50) == [(0, 1), (1, 2), (2, 3)]  # at least one slice
+
+
+def test_history_series_key_drops_session():
+    assert W.history_series("ir", "sub-p_ses-20261101_IRT1", "ses-20261101") == "ir:sub-p_IRT1"
+    assert W.history_series("mese-mono", "sub-p_ses-1_MESE", "ses-1") == "mese-mono:sub-p_MESE"
+
+
+def test_chunked_fit_identical_to_unsplit(sim3, tmp_path):
+    """z-slab chunk jobs + gather give the same bytes as one `relaxline fit`."""
+    anat = sim3 / "sub-relaxlinedemo" / "ses-20261101" / "anat"
+    series = [str(anat / "sub-relaxlinedemo_ses-20261101_IRT1.nii.gz")]
+    assert main(["fit", "ir", *series, "--out", str(tmp_path / "whole"), "--jobs", "1"]) == 0
+    chunks = []
+    for i, (z0, z1) in enumerate(W.slab_bounds(2, 1600, 1600)):
+        c = tmp_path / f"chunk-{i}.npz"
+        W.step_chunk("ir", series, z0, z1, str(c), None, "fast", 1, "s")
+        chunks.append(str(c))
+    assert len(chunks) == 2
+    W.step_fit("ir", series, str(tmp_path / "split"), str(tmp_path / "m.json"), None, "fast",
+               1, "s", chunks)
+    whole = sorted(p.name for p in (tmp_path / "whole").glob("*.nii.gz"))
+    assert whole and whole == sorted(p.name for p in (tmp_path / "split").glob("*.nii.gz"))
+    for name in whole:
+        assert (tmp_path / "whole" / name).read_bytes() == \
+            (tmp_path / "split" / name).read_bytes(), name
+    manifest = json.loads((tmp_path / "m.json").read_text())
+    assert sorted(f for f in manifest["files"] if f.endswith(".nii.gz")) == whole
+
+
+def test_profiles_name_real_rules():
+    slurm = yaml.safe_load((ROOT / "sample_config/profiles/slurm/config.yaml").read_text())
+    assert slurm["executor"] == "slurm" and slurm["slurm-no-account"] is True
+    rules = {"fit", "fit_chunk", "qc"}
+    assert set(slurm["set-resources"]) <= rules and set(slurm["set-threads"]) <= rules
+    smk = (ROOT / "pipeline/rules/fit.smk").read_text() + \
+        (ROOT / "pipeline/rules/qc.smk").read_text()
+    for r in rules:
+        assert f"rule {r}:" in smk
+    for r in slurm["set-resources"].values():
+        assert {"mem_mb", "runtime"} <= set(r)
+
+
+def test_lint_clean(sim3, tmp_path):
+    cfg = _write(tmp_path, _cfg(tmp_path, input_dir=str(sim3)))
+    r = subprocess.run([sys.executable, "-m", "snakemake", "-s", str(W.SNAKEFILE),
+                        "--configfile", str(cfg), "--config", f"config_dir={tmp_path}",
+                        "-d", str(tmp_path / "out"), "--lint"],
+                       capture_output=True, text=True, timeout=120)
+    assert r.returncode == 0, r.stdout + r.stderr
+    assert "Lints for" not in r.stdout + r.stderr
+
+
+# ---- end to end --------------------------------------------------------------------------
+
+E2E_MODELS = {"ir": {"pattern": "*_IRT1.nii.gz"}, "dam": {"pattern": "*_TB1DAM.nii.gz"},
+              "vfa": {"pattern": "*_VFA.nii.gz", "b1": "dam"}}
+
+
+def _e2e_config(root: Path, sim: Path, out: str) -> Path:
+    cfg = {"input_dir": "rawdata", "output_dir": out, "models": E2E_MODELS,
+           "phantom": {"reference": str(sim / "phantom" / "reference.tsv")},
+           "fit": {"chunk_voxels": 2000, "threads": 1},   # ir/vfa 40x40x2: 2 chunks each
+           "drift": {"baseline_sessions": 2}, "report": {"figures": False}}
+    p = root / f"{out}.yaml"
+    p.write_text(yaml.safe_dump(cfg))
+    return p
+
+
+def _run(config: Path, *extra: str) -> tuple[int, str]:
+    r = subprocess.run([sys.executable, "-m", "pipeline.cli", "run", "--config", str(config),
+                        "--cores", "2", *extra], capture_output=True, text=True, timeout=600,
+                       cwd="/")  # any directory
+    return r.returncode, r.stdout + r.stderr
+
+
+@pytest.fixture(scope="module")
+def e2e(sim3, tmp_path_factory):
+    root = tmp_path_factory.mktemp("e2e")
+    raw = root / "rawdata" / "sub-relaxlinedemo"
+    raw.mkdir(parents=True)
+    for ses in ("ses-20261101", "ses-20261102"):
+        shutil.copytree(sim3 / "sub-relaxlinedemo" / ses, raw / ses)
+    config = _e2e_config(root, sim3, "results")
+    t0 = time.monotonic()
+    rc, log = _run(config)
+    assert rc in (0, 1), log
+    return {"root": root, "config": config, "out": root / "results", "log": log,
+            "rc": rc, "seconds": time.monotonic() - t0}
+
+
+def _outputs(out: Path) -> dict[str, float]:
+    return {str(p.relative_to(out)): p.stat().st_mtime_ns for p in out.rglob("*")
+            if p.is_file() and ".snakemake" not in p.parts and "logs" not in p.parts}
+
+
+@pytest.mark.slow
+def test_e2e_outputs_agree_with_commands(e2e, sim3, tmp_path):
+    out = e2e["out"]
+    for rel in ("report.html", "status.json", "trend/drift.tsv", "history.sqlite"):
+        assert (out / rel).is_file(), rel
+    status = json.loads((out / "status.json").read_text())
+    assert status["sessions"] == 2 and status["exit_status"] == e2e["rc"]
+    ses = out / "sub-relaxlinedemo" / "ses-20261101"
+    anat = e2e["root"] / "rawdata" / "sub-relaxlinedemo" / "ses-20261101" / "anat"
+    # maps: the (chunked) workflow fit equals `relaxline fit` byte for byte
+    ir_in = str(anat / "sub-relaxlinedemo_ses-20261101_IRT1.nii.gz")
+    assert main(["fit", "ir", ir_in, "--out", str(tmp_path / "ir"), "--jobs", "1"]) == 0
+    for p in (tmp_path / "ir").glob("*.nii.gz"):
+        assert p.read_bytes() == (ses / "maps" / "ir" / p.name).read_bytes(), p.name
+    # vfa got the session's dam B1 map
+    side = json.loads((ses / "maps" / "vfa" / "sub-relaxlinedemo_ses-20261101_VFA_T1map.json")
+                      .read_text())
+    assert side["Options"]["b1_map"].endswith("maps/dam/sub-relaxlinedemo_ses-20261101_TB1DAM_"
+                                              "TB1map.nii.gz")
+    # tables: the workflow's QC equals `relaxline qc` on the same maps
+    rc = main(["qc", str(ses / "maps" / "ir"), "--labels",
+               str(anat / "sub-relaxlinedemo_ses-20261101_dseg.nii.gz"), "--reference",
+               str(sim3 / "phantom" / "reference.tsv"), "--out", str(tmp_path / "qc"),
+               "--no-figures"])
+    assert rc in (0, 1)
+    mine = pd.read_csv(ses / "qc" / "ir" / "roi_stats.tsv", sep="\t")
+    theirs = pd.read_csv(tmp_path / "qc" / "roi_stats.tsv", sep="\t")
+    pd.testing.assert_frame_equal(mine, theirs)
+    # database: one row per roi_stats row of every session and model, same numbers
+    con = sqlite3.connect(out / "history.sqlite")
+    db = pd.read_sql_query("SELECT * FROM roi_history", con)
+    con.close()
+    n = sum(len(pd.read_csv(p, sep="\t")) for p in out.glob("sub-*/ses-*/qc/*/roi_stats.tsv"))
+    assert len(db) == n and n > 0
+    row = db[(db["session"] == "20261101") & (db["series"] == "ir:sub-relaxlinedemo_IRT1")
+             & (db["map"] == "T1map")].sort_values("label")
+    assert np.allclose(row["mean"].to_numpy(), theirs.sort_values("label")["mean"].to_numpy(),
+                       rtol=1e-6, equal_nan=True)
+    assert (row["site"] == "northfield-lab").all()
+    assert "History and drift" in (out / "report.html").read_text()
+
+
+@pytest.mark.slow
+def test_e2e_second_run_nothing_to_do_then_new_session_only(e2e, sim3):
+    out = e2e["out"]
+    before = _outputs(out)
+    rc, log = _run(e2e["config"])
+    assert rc == e2e["rc"], log
+    assert "Nothing to be done" in log
+    assert _outputs(out) == before  # not a file touched
+    # a third session arrives: only its jobs and the trend update run
+    shutil.copytree(sim3 / "sub-relaxlinedemo" / "ses-20261103",
+                    e2e["root"] / "rawdata" / "sub-relaxlinedemo" / "ses-20261103")
+    rc, log = _run(e2e["config"])
+    assert rc in (0, 1), log
+    after = _outputs(out)
+    changed = {k for k in after if before.get(k) != after[k]}
+    old = {k for k in changed if "ses-20261101" in k or "ses-20261102" in k}
+    assert not old, sorted(old)[:5]
+    assert any("ses-20261103/maps/ir/" in k for k in changed)
+    assert {"report.html", "status.json", "trend/drift.tsv"} <= changed
+    # rerun every session's history record: rows are replaced, never duplicated
+    rc, log = _run(e2e["config"], "--forcerun", "record")
+    assert rc in (0, 1), log
+    con = sqlite3.connect(out / "history.sqlite")
+    dup = con.execute("SELECT COUNT(*) FROM (SELECT 1 FROM roi_history GROUP BY site, scanner,"
+                      " session, series, map, label HAVING COUNT(*) > 1)").fetchone()[0]
+    sessions = con.execute("SELECT COUNT(DISTINCT session) FROM roi_history").fetchone()[0]
+    con.close()
+    assert dup == 0 and sessions == 3
+    assert json.loads((out / "status.json").read_text())["sessions"] == 3
+
+
+@pytest.mark.slow
+def test_e2e_killed_run_restarts_cleanly(e2e, sim3):
+    """Kill a run mid-way (its whole process group), restart: complete, nothing partial."""
+    config = _e2e_config(e2e["root"], sim3, "killed")
+    out = e2e["root"] / "killed"
+    proc = subprocess.Popen([sys.executable, "-m", "pipeline.cli", "run", "--config",
+                             str(config), "--cores", "2"], stdout=subprocess.DEVNULL,
+                            stderr=subprocess.DEVNULL, start_new_session=True)
+    deadline = time.monotonic() + 300
+    while time.monotonic() < deadline and not list(out.glob("sub-*/ses-*/maps/*/*.fit.json")):
+        time.sleep(0.2)
+    os.killpg(proc.pid, signal.SIGKILL)
+    proc.wait()
+    assert not (out / "report.html").exists()  # it really was interrupted
+    rc, log = _run(config)
+    assert rc == e2e["rc"], log
+    import nibabel as nib
+    for p in out.rglob("*.nii.gz"):
+        np.asarray(nib.load(str(p)).dataobj)  # every final-name map reads completely
+    for p in out.rglob("*.json"):
+        if ".snakemake" not in p.parts:
+            json.loads(p.read_text())
+    # and the results equal the uninterrupted run's
+    ref = e2e["out"]
+    for p in ref.glob("sub-*/ses-2026110[12]/maps/*/*.nii.gz"):
+        assert p.read_bytes() == (out / p.relative_to(ref)).read_bytes(), p.name
