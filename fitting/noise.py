@@ -33,6 +33,7 @@ rule, dE/dp = dE/dν · dν/dp.
 from __future__ import annotations
 
 import dataclasses
+from functools import partial
 
 import numpy as np
 from numpy.typing import ArrayLike
@@ -101,26 +102,30 @@ def _sigma(fixed) -> np.ndarray:
     return s[:, None] if s.ndim == 1 else s
 
 
+def _rician_signal(base_signal, x, p, fixed):
+    return rician_mean(base_signal(x, p, fixed), _sigma(fixed))
+
+
+def _rician_jacobian(base_signal, base_jac, x, p, fixed):
+    return rician_wrap(base_signal(x, p, fixed), base_jac(x, p, fixed), _sigma(fixed))[1]
+
+
+def _rician_prepare(base_prepare, x, data, fixed):
+    return base_prepare(x, np.abs(data) if np.iscomplexobj(data) else data, fixed)
+
+
 def rician_spec(spec: ModelSpec) -> ModelSpec:
     """``spec`` fitted as a magnitude measurement: its signal ν becomes E|S| given σ.
 
     σ comes from ``fixed["sigma"]`` (scalar, or (N,) per voxel). The analytic Jacobian,
     if the model has one, is carried through by :func:`rician_wrap`; otherwise the
     engine differentiates the wrapped signal numerically. Complex data are fitted as
-    their magnitude (the Rice distribution describes the magnitude).
+    their magnitude (the Rice distribution describes the magnitude). The result is
+    picklable (partials of module functions) for the process-parallel lmfit engine.
     """
-    base_signal, base_jac, base_prepare = spec.signal, spec.jacobian, spec.prepare
-
-    def signal(x, p, fixed):
-        return rician_mean(base_signal(x, p, fixed), _sigma(fixed))
-
-    def jacobian(x, p, fixed):
-        return rician_wrap(base_signal(x, p, fixed), base_jac(x, p, fixed), _sigma(fixed))[1]
-
-    def prepare(x, data, fixed):
-        return base_prepare(x, np.abs(data) if np.iscomplexobj(data) else data, fixed)
-
+    jac = None if spec.jacobian is None else partial(_rician_jacobian, spec.signal, spec.jacobian)
     return dataclasses.replace(
-        spec, signal=signal, jacobian=None if base_jac is None else jacobian, prepare=prepare,
-        scale_param=None, voxel_fixed=tuple(spec.voxel_fixed) + ("sigma",),
+        spec, signal=partial(_rician_signal, spec.signal), jacobian=jac,
+        prepare=partial(_rician_prepare, spec.prepare), scale_param=None,
+        voxel_fixed=tuple(spec.voxel_fixed) + ("sigma",),
         description=spec.description + " (Rician noise floor modelled)")

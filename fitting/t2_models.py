@@ -45,6 +45,7 @@ Rician expectation (:mod:`fitting.noise`, Gudbjartsson & Patz 1995, Magn Reson M
 from __future__ import annotations
 
 import dataclasses
+from functools import partial
 from typing import Any, Mapping
 
 import numpy as np
@@ -216,8 +217,8 @@ MESE = register(ModelSpec(
 MESE_B1_FIXED = dataclasses.replace(
     MESE, params=("T2", "M0"), units=("s", "arbitrary"), lower=(T2_LOWER, 0.0),
     upper=(T2_UPPER, np.inf), outputs={"T2": "T2map", "M0": "M0map"}, min_volumes=3,
-    init=lambda x, data, fixed: _mese_init(x, data, fixed, b1_fixed=True),
-    validate=lambda x, fixed: _mese_validate(x, fixed, n_params=2), voxel_fixed=("b1",),
+    init=partial(_mese_init, b1_fixed=True),
+    validate=partial(_mese_validate, n_params=2), voxel_fixed=("b1",),
     description="multi-echo spin echo (CPMG) by extended phase graphs: T2, M0 (B1 from a map)",
     finalize=None, configure=None)
 
@@ -261,6 +262,10 @@ def _mono_init(x: np.ndarray, data: np.ndarray, fixed: Fixed, t2_name: str = "T2
         else {t2_name: t2, "M0": m0}
 
 
+def _megre_fixed(meta: Mapping[str, Any], options: Mapping[str, Any]) -> Fixed:
+    return {}
+
+
 def _mono_validate(x: np.ndarray, fixed: Fixed, n_params: int, name: str) -> None:
     _check_echo_times(x, name)
     _min_echoes(_used(x, fixed), n_params, name)
@@ -278,7 +283,7 @@ MESE_MONO = register(ModelSpec(
     outputs={"T2": "T2map", "M0": "M0map"},
     min_volumes=3,
     fixed_from_meta=_mono_fixed,
-    validate=lambda x, fixed: _mono_validate(x, fixed, 2, "mese-mono"),
+    validate=partial(_mono_validate, n_params=2, name="mese-mono"),
     prepare=_mono_prepare,
     jacobian=_mono_jacobian,
     scale_param="M0",
@@ -291,8 +296,8 @@ MESE_MONO_OFFSET = dataclasses.replace(
     MESE_MONO, params=("T2", "M0", "offset"), units=("s", "arbitrary", "arbitrary"),
     lower=(T2_LOWER, 0.0, -np.inf), upper=(T2_UPPER, np.inf, np.inf), min_volumes=4,
     outputs={"T2": "T2map", "M0": "M0map", "offset": "Offsetmap"},
-    init=lambda x, data, fixed: _mono_init(x, data, fixed, offset=True),
-    validate=lambda x, fixed: _mono_validate(x, fixed, 3, "mese-mono"),
+    init=partial(_mono_init, offset=True),
+    validate=partial(_mono_validate, n_params=3, name="mese-mono"),
     scale_param=None)
 
 MEGRE = register(ModelSpec(
@@ -303,11 +308,11 @@ MEGRE = register(ModelSpec(
     upper=(T2_UPPER, np.inf),
     xkey="EchoTime",
     signal=_mono_signal,
-    init=lambda x, data, fixed: _mono_init(x, data, fixed, t2_name="T2star"),
+    init=partial(_mono_init, t2_name="T2star"),
     outputs={"T2star": "T2starmap", "M0": "M0map"},
     min_volumes=3,
-    fixed_from_meta=lambda meta, options: {},
-    validate=lambda x, fixed: _mono_validate(x, fixed, 2, "megre"),
+    fixed_from_meta=_megre_fixed,
+    validate=partial(_mono_validate, n_params=2, name="megre"),
     jacobian=_mono_jacobian,
     scale_param="M0",
     primary="T2star",

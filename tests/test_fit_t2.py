@@ -294,6 +294,23 @@ def test_options_for_the_wrong_model_and_bad_t1():
         spec.validate(TE, fixed)
 
 
+def test_variants_are_picklable_for_the_process_parallel_lmfit_engine():
+    import pickle
+    for name, opts in [("mese", {"b1_map": True, "noise": "rician"}), ("megre", {}),
+                       ("mese-mono", {"offset": True, "noise": "rician"})]:
+        spec = configure_model(get_model(name), opts)
+        assert pickle.loads(pickle.dumps(spec)).params == spec.params
+    rng = np.random.default_rng(9)
+    te = np.array([0.003, 0.006, 0.01, 0.015, 0.02, 0.03])
+    t2s = rng.uniform(0.01, 0.05, 8)
+    y = magnitude(100.0 * np.exp(-te[None, :] / t2s[:, None]), 1.0, rng)
+    spec, fixed = model("megre", noise="rician")
+    fixed["sigma"] = 1.0
+    par = fit_voxels(spec, te, y, fixed, engine="lmfit", jobs=2)
+    one = fit_voxels(spec, te, y, fixed, engine="lmfit", jobs=1)
+    np.testing.assert_allclose(par.params["T2star"], one.params["T2star"], rtol=1e-12)
+
+
 # ----------------------------------------------------------------------------- command line
 CLI_SHAPE = (16, 16, 2)
 CLI_SIGMA = 2.0
