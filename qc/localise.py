@@ -47,7 +47,7 @@ and mirror are searched, the orientation convention of the scan does not matter.
 from __future__ import annotations
 
 import io
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from typing import Sequence
 
 import numpy as np
@@ -115,7 +115,7 @@ class Placement:
     ambiguity: float
     margin_mm: float
     overlay_slice: int = 0
-    notes: list[str] = field(default_factory=list)
+    voxel_mm: tuple[float, float, float] = (1.0, 1.0, 1.0)
 
     def summary(self) -> str:
         return (f"rotation {self.angle_deg:+.1f} deg{', mirrored' if self.mirrored else ''}, "
@@ -585,7 +585,8 @@ def localise(images: np.ndarray | Sequence[np.ndarray], affine: np.ndarray,
                           centre_k=centre_k, centre_world_mm=tuple(float(w) for w in world[:3]),
                           shift_mm=(float(centre[0] - centroid[0]), float(centre[1] - centroid[1])),
                           score=float(score), ambiguity=float(ambiguity),
-                          margin_mm=float(margin_mm), overlay_slice=overlay_k)
+                          margin_mm=float(margin_mm), overlay_slice=overlay_k,
+                          voxel_mm=(dx, dy, dz))
 
     if outside_fov:
         raise PhantomNotFoundError(
@@ -626,9 +627,8 @@ def overlay_png(image: np.ndarray, placement: Placement, title: str | None = Non
     Drawn from ``placement.labels`` (the regions actually used), each labelled with its
     vial label; the title states the pose and match score.
     """
-    import matplotlib
-    matplotlib.use("Agg", force=False)
     from matplotlib.figure import Figure
+    from matplotlib.patches import Ellipse
 
     img = _as_stack(image)[0]
     k = placement.overlay_slice
@@ -638,9 +638,14 @@ def overlay_png(image: np.ndarray, placement: Placement, title: str | None = Non
     ax = fig.add_subplot(1, 1, 1)
     vmax = np.percentile(sl, 99.5) if np.any(sl > 0) else 1.0
     ax.imshow(sl.T, origin="lower", cmap="gray", vmin=0, vmax=vmax, interpolation="nearest")
+    dx, dy, _ = placement.voxel_mm
     for _, v in placement.vials.iterrows():
         if v["n_voxels"] == 0 or not np.any(lab == v["label"]):
             continue
+        # the whole vial (dashed) around the region actually used (solid)
+        ax.add_patch(Ellipse((v["centre_i"], v["centre_j"]), 2 * v["radius_mm"] / dx,
+                             2 * v["radius_mm"] / dy, fill=False, ls="--", lw=0.8,
+                             ec="#ff9900"))
         ax.contour((lab == v["label"]).T.astype(float), levels=[0.5], colors=["#ffcc00"],
                    linewidths=1.2)
         ax.text(v["centre_i"], v["centre_j"], str(int(v["label"])), color="#00e5ff",
