@@ -80,15 +80,16 @@ def main() -> None:
     lm = np.array(fits)
     lm_b1 = 1 - np.abs(1 - lm[:, 2])
 
-    print(f"mese fit (EPG, B1 fitted), {args.voxels} voxels x {N_ECHO} echoes, ESP {ESP * 1e3:g} ms, "
-          f"SNR {args.snr:g}, T2 0.02-0.4 s, B1 0.75-1.1")
+    print(f"mese fit (EPG, B1 fitted), {args.voxels} voxels x {N_ECHO} echoes, "
+          f"ESP {ESP * 1e3:g} ms, SNR {args.snr:g}, T2 0.02-0.4 s, B1 0.75-1.1")
     print(f"  fast engine : {rate_fast:10.0f} voxels/s  ({t_fast:.2f} s for all voxels)")
     print(f"  lmfit loop  : {rate_lmfit:10.1f} voxels/s  ({t_lmfit:.2f} s for {sample.size} voxels)"
           f"  -> fast is {rate_fast / rate_lmfit:.0f}x"
           f"  (target >= 100x)")
     print(f"  fit status counts (0..5): {np.bincount(fast.status, minlength=6).tolist()}")
     print(f"  accuracy on the {sample.size}-voxel sample:")
-    print(f"    fast : {summary(t2[sample], b1[sample], fast.params['T2'][sample], fast.params['B1'][sample])}")
+    fs = {k: v[sample] for k, v in fast.params.items()}
+    print(f"    fast : {summary(t2[sample], b1[sample], fs['T2'], fs['B1'])}")
     print(f"    lmfit: {summary(t2[sample], b1[sample], lm[:, 0], lm_b1)}")
     print(f"    fast (all {args.voxels}): {summary(t2, b1, fast.params['T2'], fast.params['B1'])}")
     print(f"    fast vs lmfit: median |dT2|/T2 "

@@ -73,10 +73,12 @@ class EpgDictionary:
         t2_grid = np.geomspace(*T2_RANGE_S, N_T2) if t2_grid is None else np.asarray(t2_grid, float)
         b1_grid = np.linspace(*B1_RANGE, N_B1) if b1_grid is None else np.asarray(b1_grid, float)
         self.n_echoes, self.esp = int(n_echoes), float(esp)
-        self.refocus_deg, self.excite_deg, self.t1 = float(refocus_deg), float(excite_deg), float(t1)
+        self.refocus_deg, self.excite_deg = float(refocus_deg), float(excite_deg)
+        self.t1 = float(t1)
         self.t2_grid, self.b1_grid = t2_grid, b1_grid
-        trains = cpmg_echoes(self.n_echoes, self.esp, t2_grid[:, None], self.t1, b1=b1_grid[None, :],
-                             refocus_deg=self.refocus_deg, excite_deg=self.excite_deg)
+        trains = cpmg_echoes(self.n_echoes, self.esp, t2_grid[:, None], self.t1,
+                             b1=b1_grid[None, :], refocus_deg=self.refocus_deg,
+                             excite_deg=self.excite_deg)
         trains = trains.reshape(-1, self.n_echoes)
         self.t2 = np.repeat(t2_grid, b1_grid.size)
         self.b1 = np.tile(b1_grid, t2_grid.size)

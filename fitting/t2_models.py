@@ -1,4 +1,4 @@
-"""T2 models ``mese``, ``mese-mono`` and the T2* model ``megre`` as :class:`~fitting.spec.ModelSpec`.
+"""T2 models ``mese``, ``mese-mono`` and the T2* model ``megre`` (:class:`~fitting.spec.ModelSpec`).
 
 Signal formulas come from :mod:`fitting.epg` and :mod:`fitting.signals`; this module adds
 bounds, vectorised initialisation, sidecar handling, protocol validation and the option
@@ -18,9 +18,9 @@ variants (:func:`configure`).
   (the CPMG component is even in the pulses' deviation from 180°/90°; verified to
   rounding with :func:`fitting.epg.cpmg_echoes`). The fit therefore runs on the
   symmetric range [0.2, 1.8] (so B1 near 1 is not pinned on a bound) and reports the
-  fold B1 ≤ 1 (``ModelSpec.finalize``): the TB1map of ``mese`` is 1 − |1 − B1|, the refocusing
-  efficiency. T2 and M0 do not depend on the fold. A B1 map given with ``--b1`` may hold
-  values above 1; they enter the model unchanged.
+  fold B1 ≤ 1 (``ModelSpec.finalize``): the TB1map of ``mese`` is 1 − |1 − B1|, the
+  refocusing efficiency. T2 and M0 do not depend on the fold. A B1 map given with
+  ``--b1`` may hold values above 1; they enter the model unchanged.
 
   *T1 is fixed* (default :data:`T1_FIXED_DEFAULT` = 1 s, option ``t1_fixed``): it only
   weights the stimulated-echo pathways stored as Z between pulses. Measured on noiseless
@@ -29,12 +29,12 @@ variants (:func:`configure`).
   the worst case being the longest T2 (0.4 s, approaching T1) at the lowest B1 (0.75).
   Set ``t1_fixed`` near the expected T1 when long T2 and poor refocusing meet.
 
-* ``mese-mono`` — S = M0·e^(−TE/T2) (+ offset, option ``offset``; map suffix ``Offsetmap``,
-  relaxline's name, signal units), optionally without the
-  first echo (option ``drop_first_echo``), which carries no stimulated-echo contribution
-  and so breaks the train's pattern under imperfect refocusing (Milford et al. 2015,
-  PLoS ONE 10:e0145255). It overestimates T2 when B1 < 1 (Lebel & Wilman 2010);
-  provided for comparison and legacy protocols.
+* ``mese-mono`` — S = M0·e^(−TE/T2) (+ offset, option ``offset``; map suffix
+  ``Offsetmap``, relaxline's name, signal units), optionally without the first echo
+  (option ``drop_first_echo``), which carries no stimulated-echo contribution and so
+  breaks the train's pattern under imperfect refocusing (Milford et al. 2015, PLoS ONE
+  10:e0145255). It overestimates T2 when B1 < 1 (Lebel & Wilman 2010); provided for
+  comparison and for users who need it.
 
 * ``megre`` — T2* and M0 from multi-echo gradient-echo magnitudes, S = M0·e^(−TE/T2*).
 
