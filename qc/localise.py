@@ -35,8 +35,9 @@ Method
    that a rotation or flip maps onto itself has no differing positions: ambiguity 1.
    Failing either is :class:`PoorMatchError` (a QC failure, never a silent misplacement).
 5. **Regions**: a disc of radius ``radius_mm − margin_mm`` around each placed centre (a
-   voxel belongs to it when its centre lies inside), on every phantom slice (or, for rows
-   with ``z_mm``, on the slice nearest that plane).
+   voxel belongs to it when its centre lies inside), on every phantom slice (slices where
+   the phantom covers at least half its largest cross-section) or, for rows with
+   ``z_mm``, on the slice nearest that plane (none if the plane is not imaged).
 
 Geometry: in-plane millimetres are ``u = i·dx, v = j·dy`` with ``dx, dy`` the lengths of
 the affine's first two columns (orthogonal in-plane axes assumed, as in scanner images);
@@ -377,9 +378,9 @@ def localise(images: np.ndarray | Sequence[np.ndarray], affine: np.ndarray,
     p_mm = lay[["x_mm", "y_mm"]].to_numpy(float)
     radii = lay["radius_mm"].to_numpy(float)
     labels_arr = lay["label"].to_numpy(int)
-    region_r = radii - float(margin_mm)
     if not np.isfinite(margin_mm) or margin_mm < 0:
-        raise LocalisationError(f"--margin-mm must be a number >= 0, got {margin_mm}.")
+        raise LocalisationError(f"the vial margin must be a number >= 0 mm, got {margin_mm}.")
+    region_r = radii - float(margin_mm)
     if np.any(region_r < 0.5 * max(dx, dy)):
         bad = labels_arr[region_r < 0.5 * max(dx, dy)]
         raise LocalisationError(

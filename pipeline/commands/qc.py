@@ -72,6 +72,8 @@ def run(args: argparse.Namespace) -> int:
                    temperature=args.temperature, session=args.session, erode_mm=args.erode,
                    figures=not args.no_figures)
     if args.labels is not None:
+        if args.layout is not None:
+            print("relaxline qc: note: --labels given, so --layout is not used.")
         result = run_qc(args.maps_dir, args.out, labels_from_file(args.labels),
                         labels_desc=str(args.labels), **options)
     elif args.layout is not None:   # vials placed automatically (issue 9)
