@@ -69,10 +69,10 @@ def test_wrap_chain_rule_against_finite_differences():
         dp[:, i] = h
         fd = (spec.evaluate(x, p + dp, fixed) - spec.evaluate(x, p - dp, fixed)) / (2 * h)
         np.testing.assert_allclose(jac[..., i], fd, rtol=1e-5, atol=1e-7)
-    # explicit (B, P, M) layout of rician_wrap
-    s = spec.evaluate(x, p, fixed)
-    _, j2 = rician_wrap(np.ones((2, 16)), np.ones((2, 3, 16)), 1.0, param_axis=-2)
-    assert j2.shape == (2, 3, 16) and s.shape == (2, 16)
+    # the (B, P, M) layout: dE/dν broadcast along the parameter axis
+    e, j2 = rician_wrap(np.full((2, 16), 2.0), np.ones((2, 3, 16)), 1.0, param_axis=-2)
+    d = rician_mean_and_derivative(2.0, 1.0)[1]
+    assert j2.shape == (2, 3, 16) and np.allclose(j2, d) and np.allclose(e, rician_mean(2.0, 1.0))
 
 
 def test_wrapped_model_needs_sigma_and_known_noise_name():
