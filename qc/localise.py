@@ -497,7 +497,7 @@ def localise(images: np.ndarray | Sequence[np.ndarray], affine: np.ndarray,
         simplex = np.array([x0, x0 + [step / 2, 0, 0], x0 + [0, dx, 0], x0 + [0, 0, dy]])
         res = optimize.minimize(cost, x0, method="Nelder-Mead",
                                 options={"initial_simplex": simplex, "xatol": 0.01,
-                                         "fatol": 1e-6, "maxiter": 600})
+                                         "fatol": 1e-5, "maxiter": 400})
         return -float(res.fun), float(res.x[0]), mir, np.array(res.x[1:])
 
     top = refine(best)
@@ -506,7 +506,7 @@ def localise(images: np.ndarray | Sequence[np.ndarray], affine: np.ndarray,
     # the winning pose is the same placement, not a rival
     rival, rival_score, tried = None, 0.0, 0
     for cand in coarse[1:]:
-        if tried == 4:
+        if tried == 3:
             break
         if not distinct(cand, best) or (rival is not None and not distinct(cand, rival)):
             continue
