@@ -321,7 +321,8 @@ def test_e2e_killed_run_restarts_cleanly(e2e, sim3):
     proc.wait()
     assert not (out / "report.html").exists()  # it really was interrupted
     rc, log = _run(config)
-    assert rc == e2e["rc"], log
+    # same data as the main run (which by now has the third session too): same verdict
+    assert rc == json.loads((e2e["out"] / "status.json").read_text())["exit_status"], log
     import nibabel as nib
     for p in out.rglob("*.nii.gz"):
         np.asarray(nib.load(str(p)).dataobj)  # every final-name map reads completely
@@ -330,5 +331,5 @@ def test_e2e_killed_run_restarts_cleanly(e2e, sim3):
             json.loads(p.read_text())
     # and the results equal the uninterrupted run's
     ref = e2e["out"]
-    for p in ref.glob("sub-*/ses-2026110[12]/maps/*/*.nii.gz"):
+    for p in ref.glob("sub-*/ses-*/maps/*/*.nii.gz"):
         assert p.read_bytes() == (out / p.relative_to(ref)).read_bytes(), p.name

@@ -59,7 +59,10 @@ def snakemake_command(config: str | Path, cfg: dict, cores: int | None, profile:
     cmd = [sys.executable, "-m", "snakemake", "--snakefile", str(SNAKEFILE),
            "--configfile", str(Path(config).resolve()),
            "--config", f"config_dir={cfg['config_dir']}",
-           "--directory", cfg["output_dir"], "--rerun-incomplete", "--nolock"]
+           "--directory", cfg["output_dir"], "--rerun-incomplete", "--nolock",
+           # run-directive jobs in threads (each starts its step as its own process)
+           # instead of one fresh Snakemake interpreter per job
+           "--force-use-threads"]
     if profile:
         cmd += ["--profile", str(Path(profile).resolve())]
     if cores is not None or not profile:
@@ -95,7 +98,8 @@ def run_workflow(config: str | Path, cores: int | None = None, profile: str | No
     # One run per output folder at a time. The kernel drops this lock when the process
     # dies, even on SIGKILL, so a killed run never leaves a stale lock behind; this is
     # why Snakemake's own (file-based) lock is switched off with --nolock.
-    lock = open(out / ".relaxline-run.lock", "w")
+    (out / ".snakemake").mkdir(exist_ok=True)
+    lock = open(out / ".snakemake" / "relaxline-run.lock", "w")
     try:
         fcntl.flock(lock, fcntl.LOCK_EX | fcntl.LOCK_NB)
     except BlockingIOError:
