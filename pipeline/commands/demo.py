@@ -42,7 +42,10 @@ def demo_config(sessions: int) -> dict:
         "output_dir": "results",
         "models": DEMO_MODELS,
         "phantom": {"reference": "rawdata/phantom/reference.tsv", "labels": "*_dseg.nii.gz"},
-        "drift": {"baseline_sessions": max(2, min(3, sessions - 1))},
+        # the first sessions form the baseline; the mono-exponential mese-mono T2 of the
+        # long-T2 vials sits about 6 % above the reference (stimulated echoes), so the
+        # demo's ref-pct limit is 10 % rather than the sample config's 5 %
+        "drift": {"baseline_sessions": max(2, min(3, sessions - 1)), "reference_pct": 10},
         "report": {"title": "relaxline demo: invented phantom, simulated sessions"},
     }
 
