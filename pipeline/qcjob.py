@@ -416,10 +416,16 @@ def fitted_curves(mf: MapFile, series, labels: np.ndarray, keep: np.ndarray,
             continue
         p = {k: np.array([v]) for k, v in med.items()}
         try:
+            y_at_x = np.asarray(spec.signal(x, p, fixed))[0]
             y = np.asarray(spec.signal(xf, p, fixed))[0]
         except Exception as exc:  # an overlay must not stop the QC; the note says why
             return {}, f"fitted curves omitted ({type(exc).__name__}: {exc})"
-        out[lab] = (xf, np.abs(y) if magnitude else y)
+        # Some models are defined only at the acquired points (an echo train at k·ESP, a
+        # double-angle pair): a smooth curve is drawn only where it agrees with them.
+        smooth = y.shape == xf.shape and np.allclose(
+            np.interp(x, xf, y), y_at_x, rtol=1e-2, atol=1e-3 * np.nanmax(np.abs(y_at_x)))
+        xs, ys = (xf, y) if smooth else (x, y_at_x)
+        out[lab] = (xs, np.abs(ys) if magnitude else ys)
     return out, ""
 
 
