@@ -333,3 +333,21 @@ def test_e2e_killed_run_restarts_cleanly(e2e, sim3):
     ref = e2e["out"]
     for p in ref.glob("sub-*/ses-*/maps/*/*.nii.gz"):
         assert p.read_bytes() == (out / p.relative_to(ref)).read_bytes(), p.name
+
+
+@pytest.mark.slow
+@pytest.mark.slurm
+@pytest.mark.skipif(not os.environ.get("RELAXLINE_TEST_SLURM"),
+                    reason="needs a running SLURM cluster (.ci/slurm-up up; "
+                           "RELAXLINE_TEST_SLURM=1)")
+def test_e2e_slurm_profile_gives_the_same_maps(e2e, sim3):
+    """The documented SLURM profile: one option changed, same maps as the local run."""
+    config = _e2e_config(e2e["root"], sim3, "slurm")
+    rc, log = _run(config, "--profile", str(ROOT / "sample_config" / "profiles" / "slurm"))
+    assert rc == json.loads((e2e["out"] / "status.json").read_text())["exit_status"], log
+    assert "slurm" in log.lower()
+    out, ref = e2e["root"] / "slurm", e2e["out"]
+    maps = list(ref.glob("sub-*/ses-*/maps/*/*.nii.gz"))
+    assert maps
+    for p in maps:
+        assert p.read_bytes() == (out / p.relative_to(ref)).read_bytes(), p.name
