@@ -144,7 +144,7 @@ def resolve_paths(cfg: dict, base: str | Path | None = None) -> dict:
     out["input_dir"] = absolute(out["input_dir"], root)
     out["output_dir"] = absolute(out["output_dir"], root)
     ph = out.setdefault("phantom", {})
-    for k in ("reference", "tolerances"):
+    for k in ("reference", "tolerances", "layout"):
         if ph.get(k):
             ph[k] = absolute(ph[k], root)
     hist = out.setdefault("history", {})
@@ -157,7 +157,7 @@ def check_paths(cfg: dict, source: str = "config") -> None:
     if not Path(cfg["input_dir"]).is_dir():
         raise InputError(f"{source}: key `input_dir`: folder {cfg['input_dir']} not found; "
                          "point it at the tree holding the sub-*/ses-* folders.")
-    for k in ("reference", "tolerances"):
+    for k in ("reference", "tolerances", "layout"):
         p = cfg.get("phantom", {}).get(k)
         if p and not Path(p).is_file():
             raise InputError(f"{source}: key `phantom.{k}`: file {p} not found.")
@@ -386,6 +386,7 @@ def qc_settings(cfg: dict, s: Session) -> dict:
             "scanner": s.scanner, "labels": s.labels, "labels_pattern": ph["labels"],
             "folder": str(s.folder), "reference": ph.get("reference"),
             "tolerances": ph.get("tolerances"), "erode_mm": ph.get("erode_mm", 0.0),
+            "layout": ph.get("layout"), "margin_mm": ph.get("margin_mm", 2.0),
             "figures": cfg["report"]["figures"]}
 
 
@@ -393,26 +394,42 @@ def step_qc(settings: dict, manifests: Sequence[str], out: str) -> None:
     """QC of every model's maps of one session; the summary JSON is written last.
 
     Each model's maps folder gets the same treatment as ``relaxline qc MAPS --labels L
-    --reference R --out qc/<model>``; a vial failure is recorded, not raised, so the
-    other sessions and the trend still run (``relaxline run`` turns it into exit 1).
+    --reference R --out qc/<model>`` (or ``--layout`` when the session has no label map
+    and the config names a layout); a vial failure or a poor vial placement is
+    recorded, not raised, so the other sessions and the trend still run
+    (``relaxline run`` turns it into exit 1).
     """
     from pipeline.outputs import atomic_write_json
     from pipeline.qcjob import labels_from_file, run_qc
+    from pipeline.vialjob import run_qc_with_layout
+    from qc.localise import PoorMatchError
     s = settings
     qc_root = Path(out).parent
     summary: dict[str, Any] = {k: s[k] for k in ("sub", "ses", "session", "site", "scanner",
                                                   "labels")}
     summary["models"], summary["note"] = {}, ""
     models = sorted({json.loads(Path(m).read_text())["model"] for m in manifests})
-    if not s["labels"]:  # e.g. a scan session without regions: maps only
+    if not s["labels"] and not s["layout"]:  # e.g. a scan session without regions
         summary["note"] = (f"no label map matches phantom.labels = '{s['labels_pattern']}' "
-                           f"in {s['folder']}; maps only, no ROI statistics")
+                           f"in {s['folder']} and no phantom.layout; maps only, no ROI "
+                           "statistics")
         models = []
+    options = dict(reference_path=s["reference"], config=s["tolerances"],
+                   session=s["session"], erode_mm=s["erode_mm"], figures=s["figures"])
     for model in models:
         maps_dir = Path(manifests[0]).parent.parent / model
-        res = run_qc(maps_dir, qc_root / model, labels_from_file(s["labels"]),
-                     reference_path=s["reference"], config=s["tolerances"],
-                     session=s["session"], erode_mm=s["erode_mm"], figures=s["figures"])
+        if s["labels"]:
+            res = run_qc(maps_dir, qc_root / model, labels_from_file(s["labels"]),
+                         labels_desc=s["labels"], **options)
+        else:
+            try:
+                res = run_qc_with_layout(maps_dir, qc_root / model, s["layout"],
+                                         s["margin_mm"], **options)
+            except PoorMatchError as exc:
+                summary["models"][model] = {"roi_stats": None, "counts": {"fail": 1},
+                                            "warnings": [f"vial placement: {exc}"],
+                                            "exit_status": EXIT_QC_FAIL}
+                continue
         counts = res.table["status"].value_counts().to_dict()
         summary["models"][model] = {"roi_stats": str(qc_root / model / "roi_stats.tsv"),
                                     "counts": {k: int(v) for k, v in counts.items()},
@@ -432,6 +449,8 @@ def session_table(summary: dict) -> "pd.DataFrame":
     import pandas as pd
     parts = []
     for model, m in summary["models"].items():
+        if not m["roi_stats"]:  # vial placement failed: no statistics
+            continue
         t = pd.read_csv(m["roi_stats"], sep="\t")
         t.insert(0, "model", model)
         t["series"] = [history_series(model, str(st_), summary["ses"]) for st_ in t["series"]]
@@ -508,19 +527,25 @@ def step_report(cfg: dict, summaries: Sequence[str], report: str, status: str,
                          "subject": s["sub"], "model": model, "pass": c.get("pass", 0),
                          "warn": c.get("warn", 0), "fail": c.get("fail", 0),
                          "n/a": c.get("n/a", 0),
-                         "qc report": str(Path(m["roi_stats"]).with_name("report.html"))})
+                         "qc report": str(Path(m["roi_stats"]).with_name("report.html"))
+                         if m["roi_stats"] else "; ".join(m["warnings"])})
     sessions_df = pd.DataFrame(rows)
     exit_status = EXIT_QC_FAIL if (len(current) or qc_fail_latest) else EXIT_OK
     atomic_write_tsv(drift_tsv, violations)
     newest = [s for s in sess if not s["models"] or f"{s['sub']}/{s['ses']}" in
               _latest(sess)]
     table = pd.concat([pd.read_csv(m["roi_stats"], sep="\t") for s in newest
-                       for m in s["models"].values()] or [pd.DataFrame(columns=["status"])],
+                       for m in s["models"].values() if m["roi_stats"]]
+                      or [pd.DataFrame(columns=["status"])],
                       ignore_index=True)
     warnings = [f"QC failure in the newest session {x}" for x in qc_fail_latest]
     warnings += [f"drift rule {r.rule} rejects {r.site}/{r.scanner} session {r.session}, "
                  f"{r.series} {r.map} label {r.label}: {r.detail}" for r in current.itertuples()]
     warnings += [f"{s['sub']}/{s['ses']}: {s['note']}" for s in sess if s.get("note")]
+    warnings += [f"{s['sub']}/{s['ses']} {model}: {w}" for s in sess if
+                 f"{s['sub']}/{s['ses']}" in _latest(sess)
+                 for model, m in s["models"].items() if not m["roi_stats"]
+                 for w in m["warnings"]]
     sections = [("Sessions", trend.html_table(sessions_df, list(sessions_df.columns))
                  if not sessions_df.empty else "<p>No session.</p>"),
                 ("History and drift", trend.history_section_html(scored, violations, figures,

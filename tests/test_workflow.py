@@ -276,6 +276,26 @@ def test_e2e_outputs_agree_with_commands(e2e, sim3, tmp_path):
 
 
 @pytest.mark.slow
+def test_qc_step_places_vials_from_layout_without_label_map(e2e, sim3, tmp_path):
+    """A session without a label map is QC'd with the configured layout instead."""
+    ses = e2e["out"] / "sub-relaxlinedemo" / "ses-20261101"
+    manifest = next((ses / "maps" / "ir").glob("*.fit.json"))
+    settings = {"sub": "sub-relaxlinedemo", "ses": "ses-20261101", "session": "20261101",
+                "site": "s", "scanner": "x", "labels": None, "labels_pattern": "*_dseg.nii.gz",
+                "folder": "f", "reference": str(sim3 / "phantom" / "reference.tsv"),
+                "tolerances": None, "erode_mm": 0.0, "figures": False,
+                "layout": str(sim3 / "phantom" / "layout.tsv"), "margin_mm": 2.0}
+    W.step_qc(settings, [str(manifest)], str(tmp_path / "qc" / "session.json"))
+    summary = json.loads((tmp_path / "qc" / "session.json").read_text())
+    placed = pd.read_csv(summary["models"]["ir"]["roi_stats"], sep="\t")
+    given = pd.read_csv(ses / "qc" / "ir" / "roi_stats.tsv", sep="\t")
+    t1 = placed[placed["map"] == "T1map"].set_index("label")["mean"]
+    ref = given[given["map"] == "T1map"].set_index("label")["mean"]
+    assert len(t1) == len(ref) == 12
+    assert np.allclose(t1, ref.loc[t1.index], rtol=0.05)  # same vials, slightly other voxels
+
+
+@pytest.mark.slow
 def test_e2e_second_run_nothing_to_do_then_new_session_only(e2e, sim3):
     out = e2e["out"]
     before = _outputs(out)
