@@ -26,7 +26,6 @@ import argparse
 import copy
 import fnmatch
 import json
-import math
 import re
 import sys
 from dataclasses import dataclass, field
@@ -39,14 +38,13 @@ from pipeline.errors import EXIT_OK, EXIT_QC_FAIL, InputError
 
 SCHEMA = Path(__file__).with_name("schemas") / "config.schema.yaml"
 SNAKEFILE = Path(__file__).with_name("Snakefile")
-SESSION_DIR = "{sub}/{ses}"
 MANIFEST = "{sub}/{ses}/maps/{model}/{stem}.fit.json"
 CHUNK = "{sub}/{ses}/chunks/{model}/{stem}/chunk-{chunk}.npz"
 QC_SUMMARY = "{sub}/{ses}/qc/session.json"
 RECORDED = "{sub}/{ses}/qc/history.json"
 REPORT, STATUS, DRIFT = "report.html", "status.json", "trend/drift.tsv"
-# a config's model name -> which model provides its B1 map when b1 == "dam"
-B1_USERS = {"vfa": "none", "mese": "fitted"}  # value: the default when no B1 map is used
+# models that take a B1 map, with the setting that uses none (or fits it)
+B1_USERS = {"vfa": "none", "mese": "fitted"}
 
 
 # ---- config ---------------------------------------------------------------------------
