@@ -371,3 +371,77 @@ def test_e2e_slurm_profile_gives_the_same_maps(e2e, sim3):
     assert maps
     for p in maps:
         assert p.read_bytes() == (out / p.relative_to(ref)).read_bytes(), p.name
+
+
+# ---- report job and exit status (constructed history) -------------------------------------
+
+def _session(tmp_path: Path, ses: str, t1: list[float], status: str = "pass") -> str:
+    """A QC summary + roi_stats.tsv of one session (two vials, reference 1.0 s)."""
+    from pipeline.qcjob import TSV_COLUMNS
+    d = tmp_path / ses
+    d.mkdir()
+    rows = [{c: np.nan for c in TSV_COLUMNS} | {
+        "session": ses, "series": f"sub-p_ses-{ses}_IRT1", "map": "T1map", "label": i + 1,
+        "name": f"v{i + 1}", "n_voxels": 30, "n_excluded": 0, "mean": v, "sd": 0.01,
+        "median": v, "iqr": 0.01, "cv_pct": 1.0, "units": "s", "reference": 1.0,
+        "reference_at_temperature": 1.0, "bias_pct": 100 * (v - 1), "warn_pct": 5,
+        "tolerance_pct": 10, "status": status if i == 0 else "pass", "note": "",
+        "temperature": 20.0} for i, v in enumerate(t1)]
+    pd.DataFrame(rows)[TSV_COLUMNS].to_csv(d / "roi_stats.tsv", sep="\t", index=False)
+    summary = {"sub": "sub-p", "ses": f"ses-{ses}", "session": ses, "site": "A",
+               "scanner": "S", "labels": "l", "note": "", "fail": status == "fail",
+               "models": {"ir": {"roi_stats": str(d / "roi_stats.tsv"),
+                                 "counts": {status: 1, "pass": 1} if status != "pass"
+                                 else {"pass": 2}, "warnings": [], "exit_status": 0}}}
+    (d / "session.json").write_text(json.dumps(summary))
+    return str(d / "session.json")
+
+
+def _report(tmp_path: Path, sessions: list[str]) -> tuple[int, dict]:
+    db = tmp_path / "h.sqlite"
+    for s in sessions:
+        W.step_record(str(db), s, str(Path(s).with_name("history.json")))
+    settings = {"database": str(db), "title": "t", "drift": W.validate_config(
+        {"input_dir": "i", "output_dir": "o", "models": {"ir": {"pattern": "x"}},
+         "drift": {"baseline_sessions": 4, "min_sd_pct": 0.0}})["drift"]}
+    out = tmp_path / "out"
+    W.step_report(settings, sessions, str(out / "report.html"), str(out / "status.json"),
+                  str(out / "trend" / "drift.tsv"))
+    return W.run_status(out)[0], json.loads((out / "status.json").read_text())
+
+
+BASE_T1 = [0.99, 1.01, 0.99, 1.01]   # baseline mean 1.0, SD 0.011547
+
+
+def test_report_exit_1_on_drift_rejection_in_newest_session(tmp_path):
+    # newest value 1.05: z = 4.3 > 3 (1-3s, Westgard et al. 1981, Clin Chem 27:493)
+    sessions = [_session(tmp_path, f"2026110{i + 1}", [v, 1.0]) for i, v in
+                enumerate(BASE_T1 + [1.05])]
+    rc, status = _report(tmp_path, sessions)
+    assert rc == 1
+    assert {"rule": "1-3s", "label": 1, "session": "20261105"}.items() <= \
+        status["drift_rejections_latest"][0].items()
+    html = (tmp_path / "out" / "report.html").read_text()
+    assert "1-3s" in html and "History and drift" in html
+    drift = pd.read_csv(tmp_path / "out" / "trend" / "drift.tsv", sep="\t")
+    assert "1-3s" in set(drift["rule"])
+    assert list((tmp_path / "out" / "trend").glob("*.png"))
+
+
+def test_report_exit_0_when_only_an_old_session_was_off(tmp_path):
+    sessions = [_session(tmp_path, f"2026110{i + 1}", [v, 1.0]) for i, v in
+                enumerate(BASE_T1 + [1.05, 1.0])]
+    rc, status = _report(tmp_path, sessions)
+    assert rc == 0 and status["drift_rejections_total"] == 1
+    assert status["drift_rejections_latest"] == []
+
+
+def test_report_exit_1_on_qc_fail_in_newest_session_only(tmp_path):
+    old_fail = [_session(tmp_path, "20261101", [1.2, 1.0], "fail"),
+                _session(tmp_path, "20261102", [1.0, 1.0])]
+    assert _report(tmp_path, old_fail)[0] == 0
+    shutil.rmtree(tmp_path / "out")
+    (tmp_path / "h.sqlite").unlink()
+    new_fail = old_fail + [_session(tmp_path, "20261103", [1.2, 1.0], "fail")]
+    rc, status = _report(tmp_path, new_fail)
+    assert rc == 1 and status["qc_fail_latest"] == ["sub-p/ses-20261103"]
