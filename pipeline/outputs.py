@@ -46,6 +46,8 @@ def atomic_write_bytes(path: str | Path, data: bytes) -> Path:
     ensure_dir(path.parent)
     fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
     try:
+        # mkstemp creates 0600; give the file the permissions a plain open() would (umask)
+        os.fchmod(fd, 0o666 & ~_umask())
         with os.fdopen(fd, "wb") as fh:
             fh.write(data)
             fh.flush()
@@ -58,6 +60,12 @@ def atomic_write_bytes(path: str | Path, data: bytes) -> Path:
             pass
         raise
     return path
+
+
+def _umask() -> int:
+    mask = os.umask(0)
+    os.umask(mask)
+    return mask
 
 
 def atomic_write_text(path: str | Path, text: str) -> Path:

@@ -47,3 +47,12 @@ def test_interrupted_write_leaves_nothing(tmp_path, monkeypatch):
         atomic_write_bytes(target, b"new")
     assert target.read_bytes() == b"old complete file"
     assert os.listdir(tmp_path) == ["x.nii.gz"]  # no temporary file left behind
+
+
+def test_written_files_follow_umask(tmp_path):
+    old = os.umask(0o022)
+    try:
+        p = atomic_write_bytes(tmp_path / "r.html", b"x")
+    finally:
+        os.umask(old)
+    assert (p.stat().st_mode & 0o777) == 0o644  # readable by the group and others, as open() would
