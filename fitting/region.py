@@ -184,6 +184,8 @@ def fit_mean(spec: ModelSpec, ms: MeanSignal, fix: Mapping[str, float] | None = 
     intervals: dict[str, dict[str, tuple[float, float]]] = {}
     if ci:
         intervals = profile_intervals(res, free, stderr, known)
+    if spec.finalize is not None:
+        values, intervals = _finalized(spec, ms.fixed, values, intervals)
     chi2_p = float(chi2.sf(res.chisqr, res.nfree)) if known and res.nfree > 0 else float("nan")
     aic, bic = information_criteria(res.chisqr, res.ndata, res.nvarys, known,
                                     (res.aic, res.bic))
@@ -192,6 +194,29 @@ def fit_mean(spec: ModelSpec, ms: MeanSignal, fix: Mapping[str, float] | None = 
                      chisqr=float(res.chisqr), redchi=float(res.redchi), aic=aic, bic=bic, ndata=int(res.ndata), nvarys=int(res.nvarys),
                      nfree=int(res.nfree), chi2_p=chi2_p,
                      best_fit=np.asarray(res.best_fit, float), result=res)
+
+
+def _finalized(spec: ModelSpec, fixed: Fixed, values: dict[str, float],
+               intervals: dict[str, dict[str, tuple[float, float]]]):
+    """Values and intervals as the maps report them (``ModelSpec.finalize``, e.g. the
+    ``mese`` B1 folded to ≤ 1). An interval becomes the range of the reported quantity
+    over the fitted interval (sampled, so a fold inside the interval is honoured)."""
+    def fin(k: str, v: np.ndarray) -> np.ndarray:
+        p = {n: np.full(v.shape, values[n]) for n in values}
+        p[k] = v
+        return np.asarray(spec.finalize(p, fixed)[k], float)
+
+    new_values = {k: float(fin(k, np.array([v]))[0]) for k, v in values.items()}
+    new_ci = {}
+    for k, levels in intervals.items():
+        new_ci[k] = {}
+        for level, (lo, hi) in levels.items():
+            if np.isfinite(lo) and np.isfinite(hi):
+                f = fin(k, np.linspace(lo, hi, 201))
+                new_ci[k][level] = (float(f.min()), float(f.max()))
+            else:
+                new_ci[k][level] = (lo, hi)
+    return new_values, new_ci
 
 
 def information_criteria(chisqr: float, ndata: int, nvarys: int, known: bool,

@@ -283,3 +283,19 @@ def test_vfa_with_b1_map_and_rician_noise(session, capsys):
     assert abs(t1["value"] - true_t1) < 3 * t1["stderr"]
     code, out, err = _refit(capsys, "vfa", anat / f"{stem}_VFA.nii.gz", *vial, "--json")
     assert code == 0 and "no --b1 map given" in err
+
+
+def test_mese_b1_reported_folded_like_the_maps():
+    # The magnitude CPMG train is even in B1 − 1 (refocusing 180·B1 and 180·(2 − B1) give the
+    # same echoes; Hennig 1988, J Magn Reson 78:397), so a region fit reports B1 folded to ≤ 1,
+    # as the TB1map does, and its intervals too.
+    from fitting.epg import cpmg_echoes
+    spec = get_model("mese")
+    fixed = spec.fixed_from_meta({}, {})
+    clean = cpmg_echoes(TE.size, 0.01, 0.08, 1.0, b1=1.12, m0=1000.0)
+    data = clean[None, :] + np.random.default_rng(7).normal(0.0, 5.0, (16, TE.size))
+    f = R.fit_mean(spec, R.mean_signal(spec, TE, data, fixed, 5.0), ci=True)
+    assert f.values["B1"] <= 1.0 and abs(f.values["B1"] - 0.88) < 0.02
+    lo, hi = f.ci["B1"]["1sigma"]
+    assert lo <= f.values["B1"] <= hi <= 1.0
+    assert abs(f.values["T2"] - 0.08) / 0.08 < 0.02
