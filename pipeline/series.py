@@ -17,6 +17,7 @@ import hashlib
 import json
 import math
 import re
+import zlib
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Iterator, Sequence
@@ -136,13 +137,14 @@ class Series:
         z = z or slice(0, self.shape[2])
         dtype = np.complex64 if self.is_complex else np.float32
         if len(self._images) == 1 and len(self.paths) == 1 and self.n_volumes > 1:
-            raw = np.asarray(self._images[0].dataobj[:, :, z, :])
+            raw = _read_proxy(self._images[0], self.paths[0], (slice(None), slice(None), z,
+                                                               slice(None)))
             out = raw[..., self._order].astype(dtype, copy=False)
         else:
             nz = len(range(*z.indices(self.shape[2])))
             out = np.empty(self.shape[:2] + (nz, self.n_volumes), dtype)
             for j, i in enumerate(self._order):
-                vol = np.asarray(self._images[i].dataobj[:, :, z])
+                vol = _read_proxy(self._images[i], self.paths[i], (slice(None), slice(None), z))
                 out[..., j] = vol.reshape(self.shape[:2] + (nz,))
         return out
 
@@ -161,6 +163,20 @@ class Series:
             if sc.is_file():
                 out.append({"path": str(sc), "sha256": sha256_file(sc)})
         return out
+
+
+def _read_proxy(img, path: Path, index: tuple) -> np.ndarray:
+    """Read part of an image's data; a damaged file becomes an error naming it.
+
+    The header is read when the series is opened, the data only here, so a file cut
+    short (an interrupted copy) is first noticed at this point.
+    """
+    try:
+        return np.asarray(img.dataobj[index])
+    except (EOFError, OSError, ValueError, zlib.error) as exc:
+        raise InputError(f"{path}: the image data cannot be read ({type(exc).__name__}: "
+                         f"{exc}). The file is probably truncated or corrupt; copy it again "
+                         f"from the scanner or archive.") from None
 
 
 def _load_image(path: Path):

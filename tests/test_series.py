@@ -140,3 +140,13 @@ def test_sidecar_not_object(tmp_path, data):
     p = write_4d(tmp_path, "x", data, "InversionTime", TIS)
     (tmp_path / "x.json").write_text(json.dumps([1, 2, 3]))
     assert "JSON object" in _err(read_series, [p], "InversionTime")
+
+
+def test_truncated_data_is_an_error_naming_the_file(tmp_path):
+    big = np.random.default_rng(1).normal(size=(24, 24, 4, len(TIS))).astype(np.float32)
+    p = write_4d(tmp_path, "x", big, "InversionTime", TIS)
+    raw = p.read_bytes()
+    p.write_bytes(raw[: len(raw) // 2])  # header intact, data cut short
+    s = read_series([p], "InversionTime")  # opening reads the header only
+    msg = _err(s.read)
+    assert "x.nii.gz" in msg and "truncated or corrupt" in msg
