@@ -361,16 +361,45 @@ def test_e2e_killed_run_restarts_cleanly(e2e, sim3):
                     reason="needs a running SLURM cluster (.ci/slurm-up up; "
                            "RELAXLINE_TEST_SLURM=1)")
 def test_e2e_slurm_profile_gives_the_same_maps(e2e, sim3):
-    """The documented SLURM profile: one option changed, same maps as the local run."""
-    config = _e2e_config(e2e["root"], sim3, "slurm")
+    """The documented SLURM profile on a real (one-node) cluster: every fit and QC job is a
+    SLURM job; maps and tables equal the local run's; a job that fails on the cluster (a
+    series cut short) fails the run with its own error message shown, and the other
+    sessions' outputs are complete and unchanged."""
+    import re
+    root = e2e["root"]
+    raw = root / "rawdata-slurm" / "sub-relaxlinedemo"
+    for ses in ("ses-20261101", "ses-20261102"):
+        shutil.copytree(root / "rawdata" / "sub-relaxlinedemo" / ses, raw / ses)
+    bad = raw / "ses-20261103"
+    shutil.copytree(sim3 / "sub-relaxlinedemo" / "ses-20261103", bad)
+    cut = bad / "anat" / "sub-relaxlinedemo_ses-20261103_IRT1.nii.gz"
+    cut.write_bytes(cut.read_bytes()[: cut.stat().st_size // 2])   # header intact, data cut
+    config = _e2e_config(root, sim3, "slurm")
+    cfg = yaml.safe_load(config.read_text())
+    cfg["input_dir"] = "rawdata-slurm"
+    config.write_text(yaml.safe_dump(cfg))
     rc, log = _run(config, "--profile", str(ROOT / "sample_config" / "profiles" / "slurm"))
-    assert rc == json.loads((e2e["out"] / "status.json").read_text())["exit_status"], log
-    assert "slurm" in log.lower()
-    out, ref = e2e["root"] / "slurm", e2e["out"]
+    # the failed job fails the run, and its own message reaches the user
+    assert rc == 2, log
+    assert "truncated or corrupt" in log and cut.name in log, log
+    # every cluster job was a SLURM job: each fit/fit_chunk/qc jobid was submitted by sbatch
+    jobs = re.findall(r"^rule (fit|fit_chunk|qc):\n(?:\s+\S.*\n)*?\s+jobid: (\d+)", log, re.M)
+    submitted = dict(re.findall(r"Job (\d+) has been submitted with SLURM jobid (\d+)", log))
+    assert {r for r, _ in jobs} >= {"fit", "fit_chunk", "qc"}, log
+    assert all(j in submitted for _, j in jobs), (jobs, submitted)
+    # the good sessions: maps bitwise and tables equal to the local run
+    out, ref = root / "slurm", e2e["out"]
     maps = list(ref.glob("sub-*/ses-*/maps/*/*.nii.gz"))
-    assert maps
+    tables = list(ref.glob("sub-*/ses-*/qc/*/roi_stats.tsv"))
+    assert maps and tables
     for p in maps:
         assert p.read_bytes() == (out / p.relative_to(ref)).read_bytes(), p.name
+    for p in tables:
+        pd.testing.assert_frame_equal(pd.read_csv(p, sep="\t"),
+                                      pd.read_csv(out / p.relative_to(ref), sep="\t"))
+    # nothing partial under a final name for the failed series
+    failed = out / "sub-relaxlinedemo" / "ses-20261103" / "maps" / "ir"
+    assert not list(failed.glob("*.nii.gz")) if failed.exists() else True
 
 
 # ---- report job and exit status (constructed history) -------------------------------------

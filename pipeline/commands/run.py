@@ -120,6 +120,10 @@ def run_workflow(config: str | Path, cores: int | None = None, profile: str | No
         signal.signal(signal.SIGTERM, previous)
         lock.close()
     if rc != 0:
+        for rule, log, tail in failed_job_logs(out):
+            print(f"relaxline run: job {rule} failed; last lines of {log}:", file=stream)
+            for line in tail:
+                print(f"    {line}", file=stream)
         print(f"relaxline run: error: Snakemake stopped with status {rc}; the messages "
               f"above name the failing job and its log (under {out}/logs/). Fix the cause "
               "and run again: finished jobs are not repeated.", file=stream)
@@ -133,6 +137,36 @@ def run_workflow(config: str | Path, cores: int | None = None, profile: str | No
     if summary:
         print(f"relaxline run: attention: {summary}", file=stream)
     return status
+
+
+def failed_job_logs(out: Path, lines: int = 12) -> list[tuple[str, Path, list[str]]]:
+    """(rule, log file, last lines) of each job that failed in the newest Snakemake run.
+
+    Read from Snakemake's own log of the run (``.snakemake/log/``): every ``Error in rule``
+    block names the job's log file. Shown to the user so a failure on a cluster node is
+    readable from the submitting terminal without hunting for files.
+    """
+    import re
+    logs = sorted((out / ".snakemake" / "log").glob("*.snakemake.log"),
+                  key=lambda p: p.stat().st_mtime)
+    if not logs:
+        return []
+    found: list[tuple[str, Path, list[str]]] = []
+    rule = None
+    for line in logs[-1].read_text(errors="replace").splitlines():
+        m = re.match(r"\s*Error in rule (\S+?):", line)
+        if m:
+            rule = m.group(1)
+            continue
+        m = re.match(r"\s*log: (.+?) \(check log file", line)
+        if m and rule:
+            for name in m.group(1).split(", "):
+                path = Path(name) if Path(name).is_absolute() else out / name
+                if path.is_file() and all(path != f[1] for f in found):
+                    tail = path.read_text(errors="replace").splitlines()[-lines:]
+                    found.append((rule, path, tail))
+            rule = None
+    return found
 
 
 def run(args: argparse.Namespace) -> int:
