@@ -28,8 +28,8 @@ ALL_MAPS = QC_MAPS + ("M0map",)
 TSV_COLUMNS = ["session", "series", "map", "label", "name", "n_voxels", "n_excluded", "mean",
                "sd", "median", "iqr", "cv_pct", "median_stderr", "units", "reference",
                "reference_sd", "reference_temperature", "temperature", "temperature_source",
-               "reference_at_temperature", "bias_pct", "warn_pct", "tolerance_pct", "status",
-               "note"]
+               "reference_at_temperature", "bias_pct", "warn_pct", "tolerance_pct", "range_low",
+               "range_high", "status", "note"]
 _MAP_NAME = re.compile(r"^(?P<stem>.+?)_(?P<suffix>" + "|".join(ALL_MAPS) + r")\.nii(\.gz)?$")
 _SESSION = re.compile(r"(?:^|_)ses-([0-9A-Za-z]+)")
 
@@ -304,12 +304,24 @@ def compute(maps: list[MapFile], label_source: LabelSource, reference=None, tole
             has_ref = np.isfinite(refT)
             df["warn_pct"] = [w if h else np.nan for (w, _), h in zip(lims, has_ref)]
             df["tolerance_pct"] = [f if h else np.nan for (_, f), h in zip(lims, has_ref)]
-            df["status"] = [tol.status(b, mf.suffix, int(v), bool(h))
-                            for b, v, h in zip(df["bias_pct"], df["label"], has_ref)]
+            # a configured range judges a region only where no reference value applies
+            rngs = [tol.range_for(mf.suffix, int(v)) for v in df["label"]]
+            use_rng = [r is not None and not h for r, h in zip(rngs, has_ref)]
+            df["range_low"] = [r[0] if u else np.nan for r, u in zip(rngs, use_rng)]
+            df["range_high"] = [r[1] if u else np.nan for r, u in zip(rngs, use_rng)]
+            df["status"] = [tol.range_status(m, mf.suffix, int(v)) if u else
+                            tol.status(b, mf.suffix, int(v), bool(h))
+                            for m, b, v, h, u in zip(df["mean"], df["bias_pct"], df["label"],
+                                                     has_ref, use_rng)]
+            unit = f" {df['units'].iloc[0]}" if len(df) and df["units"].iloc[0] else ""
             notes = []
-            for r in df.itertuples():
+            for r, rng, u in zip(df.itertuples(), rngs, use_rng):
                 n = [r.reference_note] if isinstance(r.reference_note, str) and \
                     r.reference_note else []
+                if rng is not None:
+                    n.append(f"range [{rng[0]:g}, {rng[1]:g}]{unit}" if u else
+                             f"reference used; configured range [{rng[0]:g}, {rng[1]:g}]"
+                             f"{unit} not applied")
                 if r.n_voxels == 0:
                     n.append("no usable voxel in this vial")
                 elif r.n_excluded > 0:
@@ -317,6 +329,11 @@ def compute(maps: list[MapFile], label_source: LabelSource, reference=None, tole
                 notes.append("; ".join(n))
             df["note"] = notes
             rows.append(df)
+            absent = sorted(lab for lab, per_map in tol.ranges.items()
+                            if mf.suffix in per_map and lab not in set(df["label"]))
+            if absent:
+                warnings.append(f"{stem} {mf.suffix}: label(s) {absent} have a range in "
+                                f"{tol.source} but are not in the label map; not judged.")
             empty = df[df["n_voxels"] == 0]["label"].tolist()
             if empty:
                 warnings.append(f"{stem} {mf.suffix}: no usable voxel in label(s) {empty}"
@@ -552,6 +569,12 @@ def render(result: QCResult, reference, tol, out_figures: bool, erode_mm: float,
         "phantom temperature": "; ".join(sorted(temps)),
         "tolerances": tol_src if reference is not None else "not used (no reference)",
     }
+    if tol.ranges:
+        margin = (f"; within {tol.range_warn_margin_pct:g} % of the range width of an edge → "
+                  "warn" if tol.range_warn_margin_pct > 0 else "")
+        summary["ranges"] = (f"{tol.source}: region mean inside [low, high] → pass, outside "
+                             f"→ fail{margin}; only where no reference value applies. Ranges "
+                             "are set by the local procedure.")
     provenance = [{"file": mf.path.name, **{k: mf.sidecar.get(k) for k in
                   ("Model", "Engine", "Options", "RelaxlineVersion", "Sources")}}
                   for mf in result.maps if mf.suffix in QC_MAPS]
@@ -633,7 +656,9 @@ def run_qc(maps_dir: str | Path, out_dir: str | Path, label_source: LabelSource,
     result = compute(maps, label_source, reference, tol, temperature, session, erode_mm)
     page, files = render(result, reference, tol, figures, erode_mm, Path(maps_dir),
                          labels_desc, str(reference_path) if reference_path else
-                         "none (scan session: statistics only)", extra_sections, extra_warnings)
+                         "none (scan session: statistics only" + (
+                             ", regions with a configured range judged against it)"
+                             if tol.ranges else ")"), extra_sections, extra_warnings)
     out = Path(out_dir)
     atomic_write_tsv(out / "roi_stats.tsv", result.table)
     for name, png in files.items():

@@ -124,11 +124,16 @@ def results_table(table: pd.DataFrame) -> str:
         uu = f" ({u})" if u else ""
         title = MAP_TITLE.get(m, m)
         has_ref = g["reference_at_temperature"].notna().any()
+        has_rng = "range_low" in g and g["range_low"].notna().any()
         head = ["vial", "name", "n used", "n excl.", f"mean{uu}", f"SD{uu}", f"median{uu}",
                 f"IQR{uu}", "CV %", f"fit SE{uu}"]
         if has_ref:
             head += [f"ref.{uu}", "ref. at °C", f"ref. corrected{uu}", "bias %",
-                     "warn / fail ±%", "status"]
+                     "warn / fail ±%"]
+        if has_rng:
+            head += [f"range of mean{uu}"]
+        if has_ref or has_rng:
+            head += ["status"]
         head += ["note"]
         rows = []
         for r in g.itertuples():
@@ -146,6 +151,11 @@ def results_table(table: pd.DataFrame) -> str:
                 lim = (f"{_num(r.warn_pct, 3)} / {_num(r.tolerance_pct, 3)}"
                        if math.isfinite(float(r.tolerance_pct)) else "–")
                 cells.append(f"<td>{lim}</td>")
+            if has_rng:
+                lo, hi = float(r.range_low) * k, float(r.range_high) * k
+                cells.append(f'<td class="nw">{_num(lo)} – {_num(hi)}</td>'
+                             if math.isfinite(lo) else "<td>–</td>")
+            if has_ref or has_rng:
                 cells.append(status_cell(str(r.status)))
             cells.append(f'<td class="note">{esc(r.note if isinstance(r.note, str) else "")}</td>')
             rows.append("<tr>" + "".join(cells) + "</tr>")
@@ -155,6 +165,21 @@ def results_table(table: pd.DataFrame) -> str:
                      f"<table><thead><tr>{ths}</tr></thead><tbody>{''.join(rows)}</tbody>"
                      "</table>")
     return "\n".join(parts)
+
+
+def _fail_text(r: Any) -> str:
+    """Why a row fails: the bias against its limit, or the mean outside its range."""
+    units = getattr(r, "units", "s")
+    k, u = display_scale(str(r.map), units if isinstance(units, str) else "")
+    lo = float(getattr(r, "range_low", math.nan))
+    if math.isfinite(lo):
+        rng = f"range {_num(lo * k)} – {_num(float(r.range_high) * k)} {esc(u)}".rstrip()
+        mean = float(r.mean)
+        what = (f"mean {_num(mean * k)} {esc(u)}".rstrip() + " outside the "
+                if math.isfinite(mean) else "no usable voxel; ")
+        return f"region {esc(r.label)} ({esc(r.name)}): {what}{rng}"
+    return (f"vial {esc(r.label)} ({esc(r.name)}): bias {_fixed(r.bias_pct, 1, True)} % "
+            f"(limit ±{_num(r.tolerance_pct, 3)} %)")
 
 
 def kv_table(items: Mapping[str, Any]) -> str:
@@ -215,17 +240,17 @@ def build_report(table: pd.DataFrame, *, title: str = "relaxline phantom QC",
     st = overall_status(table)
     counts = table["status"].value_counts().to_dict() if len(table) else {}
     n_ref = sum(counts.get(k, 0) for k in ("pass", "warn", "fail"))
+    by_range = "range_low" in table and bool(table["range_low"].notna().any())
     if st == "n/a":
-        verdict = "No reference values: statistics only (no pass/fail)."
+        verdict = "No reference values or ranges: statistics only (no pass/fail)."
     else:
         verdict = (f"{counts.get('fail', 0)} fail, {counts.get('warn', 0)} warn, "
                    f"{counts.get('pass', 0)} pass of {n_ref} vial/map results compared with "
-                   "reference.")
+                   + ("reference or configured range." if by_range else "reference."))
     failing = table[table["status"] == "fail"] if len(table) else table
     fail_list = ""
     if len(failing):
-        items = "".join(f"<li>{esc(r.map)} vial {esc(r.label)} ({esc(r.name)}): bias "
-                        f"{_fixed(r.bias_pct, 1, True)} % (limit ±{_num(r.tolerance_pct, 3)} %)"
+        items = "".join(f"<li>{esc(r.map)} {_fail_text(r)}"
                         f"{' — ' + esc(r.note) if isinstance(r.note, str) and r.note else ''}"
                         "</li>" for r in failing.itertuples())
         fail_list = f"<p><strong>Failing:</strong></p><ul>{items}</ul>"
@@ -247,6 +272,9 @@ def build_report(table: pd.DataFrame, *, title: str = "relaxline phantom QC",
                "<p>Status: |bias| ≤ warn limit → PASS; ≤ fail limit → WARN; otherwise FAIL. "
                "Ref. corrected = reference value corrected to the phantom temperature; "
                "bias = (vial mean − ref. corrected) / ref. corrected. "
+               "A region without reference value but with a configured range: mean inside "
+               "the range → PASS (WARN near an edge if a margin is configured), outside → "
+               "FAIL. "
                "SD, IQR and CV over the voxels used; voxels whose fit is not usable are "
                "excluded (n excl.). Fit SE = median voxelwise standard error. Times in ms "
                "here; roi_stats.tsv holds seconds.</p>")

@@ -8,11 +8,21 @@ The config is a mapping (or a YAML file holding one)::
     vials:                     # optional per-vial overrides, keyed by label
       "3": {T2map: {warn_pct: 10, fail_pct: 20}}
     temperature: 20.0          # optional fallback phantom temperature (°C)
+    ranges:                    # optional acceptable [low, high] of a region's mean, per label
+      "2": {T1map: [0.70, 0.95], T2map: [0.060, 0.085]}   # in the map's units (s for times)
+    range_warn_margin_pct: 10  # optional: within 10 % of the range width of an edge → warn
 
 |bias| ≤ warn_pct → ``pass``; ≤ fail_pct → ``warn``; otherwise ``fail``. A vial with a
 reference but no usable voxel is ``fail``; no reference → ``n/a``.
 
-The defaults below are ILLUSTRATIVE only (common practice is a few percent for T1 and
+Ranges serve scan (non-phantom) sessions, whose regions have no reference value (design
+§1): a region with a range for a map and no reference value for it is judged on its
+**mean** (the statistic the bias of vials uses): inside [low + m, high − m] → ``pass``,
+inside [low, high] but within the margin m = range_warn_margin_pct % of (high − low) of an
+edge → ``warn`` (no warn band by default), outside → ``fail``; no usable voxel → ``fail``.
+Where a reference value applies, it is used and the range is not.
+
+The defaults below, and any range in a sample config, are ILLUSTRATIVE only (common practice is a few percent for T1 and
 somewhat more for T2, which is harder to measure); each site sets its own from its local
 QA procedure and the responsible physicist's judgement.
 """
@@ -24,6 +34,7 @@ from pathlib import Path
 from typing import Any, Mapping
 
 from fitting.errors import RelaxlineError
+from qc.reference import MAX_RELAXATION_S
 
 DEFAULT_TOLERANCES: dict[str, dict[str, float]] = {
     "T1map": {"warn_pct": 5.0, "fail_pct": 10.0},
@@ -33,7 +44,11 @@ DEFAULT_TOLERANCES: dict[str, dict[str, float]] = {
 """Illustrative defaults; set real values in the config from the local QA procedure."""
 
 KNOWN_MAPS = ("T1map", "T2map", "T2starmap", "TB1map", "M0map")
+RANGE_MAPS = ("T1map", "T2map", "T2starmap", "TB1map")
+"""Maps the QC evaluates, so the maps a range may be given for."""
+TIME_MAPS = ("T1map", "T2map", "T2starmap")
 PASS, WARN, FAIL, NA = "pass", "warn", "fail", "n/a"
+CONFIG_KEYS = ("maps", "vials", "temperature", "ranges", "range_warn_margin_pct")
 
 
 @dataclass
@@ -43,6 +58,8 @@ class Tolerances:
     vials: dict[int, dict[str, dict[str, float]]] = field(default_factory=dict)
     temperature: float | None = None
     source: str = "built-in illustrative defaults"
+    ranges: dict[int, dict[str, tuple[float, float]]] = field(default_factory=dict)
+    range_warn_margin_pct: float = 0.0
 
     def limits(self, map_name: str, label: int | None = None) -> tuple[float, float]:
         """(warn_pct, fail_pct) for a map and vial; NaN when none is configured."""
@@ -63,6 +80,23 @@ class Tolerances:
             return FAIL  # a reference but nothing measurable in the vial
         b = abs(bias_pct)
         return PASS if b <= warn else WARN if b <= fail else FAIL
+
+    def range_for(self, map_name: str, label: int) -> tuple[float, float] | None:
+        """The configured acceptable [low, high] of a region's mean, or ``None``."""
+        return self.ranges.get(int(label), {}).get(map_name)
+
+    def range_status(self, mean: float, map_name: str, label: int) -> str:
+        """pass / warn / fail of a region mean against its range; ``n/a`` without one."""
+        r = self.range_for(map_name, label)
+        if r is None:
+            return NA
+        if not math.isfinite(mean):
+            return FAIL  # a range but nothing measurable in the region
+        low, high = r
+        if not low <= mean <= high:
+            return FAIL
+        margin = self.range_warn_margin_pct / 100.0 * (high - low)
+        return PASS if low + margin <= mean <= high - margin else WARN
 
 
 def _limits(obj: Any, where: str) -> dict[str, float]:
@@ -102,6 +136,52 @@ def _maps_block(obj: Any, where: str) -> dict[str, dict[str, float]]:
     return out
 
 
+def _range(obj: Any, map_name: str, where: str) -> tuple[float, float]:
+    if isinstance(obj, (str, bytes)) or not isinstance(obj, (list, tuple)) or len(obj) != 2:
+        raise RelaxlineError(f"{where}: expected a list [low, high] of two numbers in the "
+                             f"map's units, got {obj!r}.")
+    for v in obj:
+        if isinstance(v, bool) or not isinstance(v, (int, float)) or not math.isfinite(v):
+            raise RelaxlineError(f"{where}: {v!r} is not a number; give [low, high] as two "
+                                 "numbers (no units, dot as decimal separator).")
+    low, high = float(obj[0]), float(obj[1])
+    if low >= high:
+        raise RelaxlineError(f"{where}: low ({low:g}) must be below high ({high:g}); write "
+                             "the range as [low, high].")
+    if map_name in TIME_MAPS and high > MAX_RELAXATION_S:
+        raise RelaxlineError(f"{where}: [{low:g}, {high:g}] looks like milliseconds; ranges "
+                             f"of {map_name} are in seconds (divide by 1000).")
+    if map_name in TIME_MAPS and low < 0:
+        raise RelaxlineError(f"{where}: low ({low:g}) is negative; relaxation times are "
+                             "positive (seconds).")
+    return low, high
+
+
+def _ranges_block(obj: Any, source: str) -> dict[int, dict[str, tuple[float, float]]]:
+    if not isinstance(obj, Mapping):
+        raise RelaxlineError(f"{source}: ranges: expected a mapping of region labels to "
+                             f"{{map: [low, high]}}, got {obj!r}.")
+    out: dict[int, dict[str, tuple[float, float]]] = {}
+    for lab, block in obj.items():
+        where = f"{source}: ranges.{lab}"
+        try:
+            ilab = int(lab) if not isinstance(lab, bool) else 0
+        except (TypeError, ValueError):
+            ilab = 0
+        if ilab <= 0 or str(ilab) != str(lab).strip():
+            raise RelaxlineError(f"{source}: ranges: key {lab!r} is not a region label (a "
+                                 "positive integer of the label map).")
+        if not isinstance(block, Mapping):
+            raise RelaxlineError(f"{where}: expected a mapping of map names "
+                                 f"({', '.join(RANGE_MAPS)}) to [low, high], got {block!r}.")
+        for name, r in block.items():
+            if name not in RANGE_MAPS:
+                raise RelaxlineError(f"{where}: unknown map '{name}'; expected one of "
+                                     f"{list(RANGE_MAPS)}.")
+            out.setdefault(ilab, {})[name] = _range(r, name, f"{where}.{name}")
+    return out
+
+
 def load_tolerances(config: Mapping[str, Any] | str | Path | None = None) -> Tolerances:
     """Tolerances from a mapping, a YAML file, or ``None`` (illustrative defaults).
 
@@ -122,12 +202,12 @@ def load_tolerances(config: Mapping[str, Any] | str | Path | None = None) -> Tol
             raise RelaxlineError(f"{p}: not valid YAML ({exc}).") from None
         source = str(p)
     if not isinstance(config, Mapping):
-        raise RelaxlineError(f"{source}: expected a mapping with 'maps', 'vials' and/or "
-                             f"'temperature', got {type(config).__name__}.")
-    extra = set(config) - {"maps", "vials", "temperature"}
+        raise RelaxlineError(f"{source}: expected a mapping with {list(CONFIG_KEYS)}, got "
+                             f"{type(config).__name__}.")
+    extra = set(config) - set(CONFIG_KEYS)
     if extra:
-        raise RelaxlineError(f"{source}: unknown key(s) {sorted(extra)}; expected 'maps', "
-                             "'vials', 'temperature'.")
+        raise RelaxlineError(f"{source}: unknown key(s) {sorted(map(str, extra))}; expected "
+                             f"{list(CONFIG_KEYS)}.")
     tol = Tolerances(source=source)
     tol.maps.update(_maps_block(config.get("maps") or {}, f"{source}: maps"))
     for lab, block in (config.get("vials") or {}).items():
@@ -142,4 +222,12 @@ def load_tolerances(config: Mapping[str, Any] | str | Path | None = None) -> Tol
         if isinstance(t, bool) or not isinstance(t, (int, float)) or not math.isfinite(t):
             raise RelaxlineError(f"{source}: 'temperature' must be a number in °C, got {t!r}.")
         tol.temperature = float(t)
+    tol.ranges = _ranges_block(config.get("ranges") or {}, source)
+    m = config.get("range_warn_margin_pct")
+    if m is not None:
+        if isinstance(m, bool) or not isinstance(m, (int, float)) or not 0 <= m < 50:
+            raise RelaxlineError(f"{source}: 'range_warn_margin_pct' must be a number from 0 "
+                                 f"up to (not including) 50 (percent of the range width), "
+                                 f"got {m!r}.")
+        tol.range_warn_margin_pct = float(m)
     return tol

@@ -255,3 +255,84 @@ def test_vial_without_usable_voxels_fails(case, tmp_path):
     r = df[(df["map"] == "T1map") & (df["label"] == 3)].iloc[0]
     assert r.status == "fail" and r.n_voxels == 0 and r.n_excluded == (info["labels"] == 3).sum()
     assert "no usable voxel" in r.note
+
+
+# ---- scan sessions: configured ranges instead of a reference (design §1) -------------------
+# The comparison is plain arithmetic on the region mean; the expected mean is computed here
+# with numpy from the constructed map, never taken from the code under test.
+
+def _ranges_cfg(tmp_path: Path, body: str) -> Path:
+    cfg = tmp_path / "ranges.yaml"
+    cfg.write_text(body)
+    return cfg
+
+
+def test_scan_session_ranges_pass_and_fail(case, tmp_path, capsys):
+    maps, lab, _, out, info = case()
+    keep = (info["labels"] == 2) & np.isin(info["status"], status.USABLE)
+    mean2 = float(info["T1"][keep].mean())               # ≈ 0.60 s
+    assert 0.55 < mean2 < 0.65
+    cfg = _ranges_cfg(tmp_path, "ranges:\n  '2': {T1map: [0.55, 0.65], T2map: [0.05, 0.07]}\n"
+                                "  3: {T1map: [0.20, 0.40]}\n")
+    assert _qc(maps, lab, None, out, "--config", str(cfg)) == 0
+    df = pd.read_csv(out / "roi_stats.tsv", sep="\t", keep_default_na=False,
+                     na_values=[""])
+    t1 = df[df["map"] == "T1map"].set_index("label")
+    assert t1.loc[2, "status"] == "pass" and t1.loc[3, "status"] == "pass"
+    assert t1.loc[1, "status"] == "n/a"                   # no range for label 1
+    assert t1.loc[2, "mean"] == pytest.approx(mean2, rel=1e-5)
+    assert (t1.loc[2, "range_low"], t1.loc[2, "range_high"]) == (0.55, 0.65)
+    assert np.isnan(t1.loc[2, "reference"]) and np.isnan(t1.loc[2, "bias_pct"])
+    assert "range [0.55, 0.65] s" in t1.loc[2, "note"]
+    html_text = (out / "report.html").read_text()
+    assert "range of mean (ms)" in html_text and "550 – 650" in html_text
+    # the same region read 20 % long lies above the range: fail, exit 1
+    maps, lab, _, out, info = case(scale={2: 1.2})
+    mean2 = float(info["T1"][keep].mean())
+    assert mean2 > 0.65
+    capsys.readouterr()
+    assert _qc(maps, lab, None, out, "--config", str(cfg)) == 1
+    df = pd.read_csv(out / "roi_stats.tsv", sep="\t", keep_default_na=False, na_values=[""])
+    t1 = df[df["map"] == "T1map"].set_index("label")
+    assert t1.loc[2, "status"] == "fail" and t1.loc[3, "status"] == "pass"
+    assert "1 fail" in capsys.readouterr().out
+    html_text = (out / "report.html").read_text()
+    assert "✖ FAIL" in html_text and "outside the range 550 – 650 ms" in html_text
+
+
+def test_range_warn_margin_and_reference_precedence(case, tmp_path):
+    maps, lab, ref, out, info = case()
+    keep = (info["labels"] == 2) & np.isin(info["status"], status.USABLE)
+    mean2 = float(info["T1"][keep].mean())
+    # mean2 lies 0.01 s inside the low edge; a 20 % margin of a 0.2 s wide range is 0.04 s
+    lo = round(mean2 - 0.01, 6)
+    cfg = _ranges_cfg(tmp_path, f"range_warn_margin_pct: 20\nranges:\n"
+                                f"  '2': {{T1map: [{lo}, {lo + 0.2}]}}\n")
+    assert _qc(maps, lab, None, out, "--config", str(cfg)) == 0
+    df = pd.read_csv(out / "roi_stats.tsv", sep="\t", keep_default_na=False, na_values=[""])
+    assert df[(df["map"] == "T1map") & (df["label"] == 2)]["status"].item() == "warn"
+    # with a reference table the reference value applies and the range is not used
+    assert _qc(maps, lab, ref, out, "--config", str(cfg)) == 0
+    df = pd.read_csv(out / "roi_stats.tsv", sep="\t", keep_default_na=False, na_values=[""])
+    r = df[(df["map"] == "T1map") & (df["label"] == 2)].iloc[0]
+    assert r.status == "pass" and np.isfinite(r.bias_pct) and np.isnan(r.range_low)
+    assert "range" in r.note and "not applied" in r.note
+
+
+@pytest.mark.parametrize("body, key", [
+    ("ranges:\n  '2': {T1map: [0.95, 0.70]}\n", "ranges.2.T1map"),
+    ("ranges:\n  '2': {T1map: [0.7, fast]}\n", "ranges.2.T1map"),
+    ("ranges:\n  '2': {T1map: 0.7}\n", "ranges.2.T1map"),
+    ("ranges:\n  '2': {T1: [0.7, 0.9]}\n", "ranges.2"),
+    ("ranges:\n  '2': {T1map: [700, 950]}\n", "milliseconds"),
+    ("ranges:\n  tissue: {T1map: [0.7, 0.9]}\n", "ranges"),
+    ("range_warn_margin_pct: 70\nranges:\n  '2': {T1map: [0.7, 0.9]}\n",
+     "range_warn_margin_pct"),
+])
+def test_bad_ranges_exit_2_naming_the_key(case, tmp_path, capsys, body, key):
+    maps, lab, _, out, _ = case()
+    cfg = _ranges_cfg(tmp_path, body)
+    assert _qc(maps, lab, None, out, "--config", str(cfg)) == 2
+    err = capsys.readouterr().err
+    assert key in err and str(cfg) in err and "Traceback" not in err
+    assert not (out / "roi_stats.tsv").exists()

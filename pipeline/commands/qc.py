@@ -20,9 +20,12 @@ Vials come from --labels, or (without --labels) are placed automatically from th
 --layout on the M0 map (or the source series' mean) plus the relaxation maps; a placement
 that does not match the layout convincingly is a QC failure (exit 1, overlay written).
 
-Without --reference (scan sessions) only statistics are written; status is n/a.
-Exit status: 0 all pass/warn/n-a, 1 any vial fails or the vial placement is poor, 2 bad
-input (e.g. label map on another grid, no phantom in the images).
+Without --reference (scan sessions) only statistics are written and status is n/a,
+unless --config gives `ranges`: an acceptable [low, high] of a region's mean per label and
+map (map units, seconds for times); such regions pass inside and fail outside the range
+(warn near an edge with `range_warn_margin_pct`). See sample_config/tolerances.yaml.
+Exit status: 0 all pass/warn/n-a, 1 any vial or region fails or the vial placement is
+poor, 2 bad input (e.g. label map on another grid, no phantom in the images, a bad range).
 
 For quality assurance and research; not a medical device. Local codes, QA procedures
 and the responsible licensed physicist take precedence."""
@@ -48,8 +51,9 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
                    help="phantom temperature in °C (overrides the sidecars)")
     p.add_argument("--session", metavar="S", help="session label (default: the ses- entity)")
     p.add_argument("--config", metavar="F.yaml",
-                   help="QC config: tolerances per map/vial, fallback temperature "
-                        "(default: illustrative built-in tolerances; see "
+                   help="QC config: tolerances per map/vial, fallback temperature, ranges "
+                        "for regions without reference (default: illustrative built-in "
+                        "tolerances, no ranges; see "
                         "sample_config/tolerances.yaml)")
     p.add_argument("--erode", metavar="MM", type=float, default=0.0,
                    help="shrink each vial by this margin in mm before statistics (partial "
