@@ -15,9 +15,20 @@ import math
 import numpy as np
 import pandas as pd
 
-from qc.figures import QUANTITY_LABEL, _plt, to_png
+from qc.figures import QUANTITY_LABEL, TIME_MAPS, _plt, to_png
 
 PANEL_GROUP = ("site", "scanner", "series", "map")
+
+
+def y_label(map_name: str, value: str = "mean") -> str:
+    """Quantity, statistic and unit of the plotted values, e.g. "T2, ROI mean ± SD (s)".
+
+    The history holds values as stored in the maps (seconds for relaxation times, a ratio
+    for B1) and the figures plot them unscaled, so the unit is the stored one.
+    """
+    q = QUANTITY_LABEL.get(map_name, map_name)
+    unit = " (s)" if map_name in TIME_MAPS else ""
+    return f"{q}, ROI {value} ± SD{unit}"
 
 
 def trend_figure(scored: pd.DataFrame, violations: pd.DataFrame | None = None,
@@ -82,8 +93,7 @@ def trend_figure(scored: pd.DataFrame, violations: pd.DataFrame | None = None,
         ax.tick_params(labelsize=6)
         ax.set_xticks(range(len(sessions)))
         ax.set_xticklabels(sessions, rotation=60, ha="right", fontsize=6)
-    q = QUANTITY_LABEL.get(mapname, mapname)
-    fig.supylabel(f"{q} ({value})", fontsize=8)
+    fig.supylabel(y_label(mapname, value), fontsize=8)
     fig.suptitle(title or mapname, fontsize=9)
     handles, names = axes.flat[0].get_legend_handles_labels()
     if handles:
