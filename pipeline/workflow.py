@@ -26,6 +26,7 @@ import argparse
 import copy
 import fnmatch
 import json
+import os
 import re
 import sys
 from dataclasses import dataclass, field
@@ -159,6 +160,14 @@ def check_paths(cfg: dict, source: str = "config") -> None:
         p = cfg.get("phantom", {}).get(k)
         if p and not Path(p).is_file():
             raise InputError(f"{source}: key `phantom.{k}`: file {p} not found.")
+    tol = cfg.get("phantom", {}).get("tolerances")
+    if tol:   # tolerances and ranges checked now, not after hours of fitting
+        from fitting.errors import RelaxlineError
+        from qc.tolerance import load_tolerances
+        try:
+            load_tolerances(tol)
+        except RelaxlineError as exc:
+            raise InputError(f"{source}: key `phantom.tolerances`: {exc}") from None
 
 
 def load(path: str | Path | None = None, cfg: dict | None = None) -> dict:
@@ -521,12 +530,13 @@ def step_report(cfg: dict, summaries: Sequence[str], report: str, status: str,
     for s in sess:
         for model, m in s["models"].items():
             c = m["counts"]
+            link = _relative_link(Path(m["roi_stats"]).with_name("report.html"),
+                                  Path(report).parent) if m["roi_stats"] else ""
             rows.append({"site": s["site"], "scanner": s["scanner"], "session": s["session"],
                          "subject": s["sub"], "model": model, "pass": c.get("pass", 0),
                          "warn": c.get("warn", 0), "fail": c.get("fail", 0),
                          "n/a": c.get("n/a", 0),
-                         "qc report": str(Path(m["roi_stats"]).with_name("report.html"))
-                         if m["roi_stats"] else "; ".join(m["warnings"])})
+                         "qc report": link or "; ".join(m["warnings"]), "_href": link})
     sessions_df = pd.DataFrame(rows)
     exit_status = EXIT_QC_FAIL if (len(current) or qc_fail_latest) else EXIT_OK
     atomic_write_tsv(drift_tsv, violations)
@@ -544,7 +554,8 @@ def step_report(cfg: dict, summaries: Sequence[str], report: str, status: str,
                  f"{s['sub']}/{s['ses']}" in _latest(sess)
                  for model, m in s["models"].items() if not m["roi_stats"]
                  for w in m["warnings"]]
-    sections = [("Sessions", trend.html_table(sessions_df, list(sessions_df.columns))
+    shown = [c for c in sessions_df.columns if c != "_href"]
+    sections = [("Sessions", trend.html_table(sessions_df, shown, {"qc report": "_href"})
                  if not sessions_df.empty else "<p>No session.</p>"),
                 ("History and drift", trend.history_section_html(scored, violations, figures,
                                                                  note))]
@@ -562,6 +573,15 @@ def step_report(cfg: dict, summaries: Sequence[str], report: str, status: str,
         "drift_rejections_total": int((violations["severity"] == "reject").sum())
         if len(violations) else 0,
         "report": str(Path(report).resolve()), "database": cfg["database"]})
+
+
+def _relative_link(target: Path, base: Path) -> str:
+    """``target`` relative to ``base`` ("/"-separated), so the link keeps working wherever
+    the output tree is moved or opened from disk; '' when no relative path exists."""
+    try:
+        return Path(os.path.relpath(target, base)).as_posix()
+    except ValueError:   # another drive (Windows): leave the cell as text
+        return ""
 
 
 def _latest(summaries: list[dict]) -> set[str]:

@@ -114,16 +114,29 @@ def trend_figures(scored: pd.DataFrame, violations: pd.DataFrame, value: str = "
     return out
 
 
-def html_table(df: pd.DataFrame, columns: list[str]) -> str:
-    """A plain HTML table of ``columns`` (floats to 4 significant digits, text escaped)."""
+def html_table(df: pd.DataFrame, columns: list[str],
+               links: dict[str, str] | None = None) -> str:
+    """A plain HTML table of ``columns`` (floats to 4 significant digits, text escaped).
+
+    ``links`` maps a shown column to a column of ``df`` holding a relative link target
+    (a path, "/"-separated); a cell whose target is empty stays plain text.
+    """
+    from urllib.parse import quote
+
+    links = links or {}
     head = "".join(f"<th>{html.escape(c)}</th>" for c in columns)
     body = []
-    for r in df[columns].itertuples(index=False):
+    for _, row in df.iterrows():
         cells = []
-        for v in r:
+        for c in columns:
+            v = row[c]
             if isinstance(v, float):
                 v = "" if math.isnan(v) else f"{v:.4g}"
-            cells.append(f"<td>{html.escape(str(v))}</td>")
+            text = html.escape(str(v))
+            target = row[links[c]] if c in links else ""
+            if isinstance(target, str) and target:
+                text = f'<a href="{html.escape(quote(target), quote=True)}">{text}</a>'
+            cells.append(f"<td>{text}</td>")
         body.append("<tr>" + "".join(cells) + "</tr>")
     return f"<table><thead><tr>{head}</tr></thead><tbody>{''.join(body)}</tbody></table>"
 

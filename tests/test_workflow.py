@@ -82,6 +82,18 @@ def test_bad_config_names_the_key(tmp_path, change, key):
     assert f"`{key}`" in str(exc.value)
 
 
+def test_bad_ranges_in_tolerances_fail_at_load(tmp_path):
+    # a bad range in the tolerance file stops the run before any fit, naming both keys
+    cfg = _cfg(tmp_path)
+    (tmp_path / "tol.yaml").write_text("ranges:\n  '2': {T2map: [0.085, 0.060]}\n")
+    cfg["phantom"]["tolerances"] = "tol.yaml"
+    with pytest.raises(InputError) as exc:
+        W.load(_write(tmp_path, cfg))
+    assert "`phantom.tolerances`" in str(exc.value) and "ranges.2.T2map" in str(exc.value)
+    (tmp_path / "tol.yaml").write_text("ranges:\n  '2': {T2map: [0.060, 0.085]}\n")
+    assert W.load(_write(tmp_path, cfg))["phantom"]["tolerances"].endswith("tol.yaml")
+
+
 def test_bad_config_fails_before_any_job(tmp_path, capsys):
     cfg = _cfg(tmp_path)
     cfg["models"]["t3"] = {"pattern": "x"}
@@ -474,3 +486,35 @@ def test_report_exit_1_on_qc_fail_in_newest_session_only(tmp_path):
     new_fail = old_fail + [_session(tmp_path, "20261103", [1.2, 1.0], "fail")]
     rc, status = _report(tmp_path, new_fail)
     assert rc == 1 and status["qc_fail_latest"] == ["sub-p/ses-20261103"]
+
+
+def test_report_links_each_session_report_relatively(tmp_path):
+    """The Sessions table links each session's QC report by a relative path that exists."""
+    import re
+    from html.parser import HTMLParser
+    from urllib.parse import unquote, urlsplit
+    sessions = [_session(tmp_path, f"2026110{i + 1}", [1.0, 1.0]) for i in range(2)]
+    for s in sessions:
+        Path(s).with_name("report.html").write_text("<!DOCTYPE html><p>session</p>")
+    _report(tmp_path, sessions)
+    page = (tmp_path / "out" / "report.html").read_text()
+
+    class Links(HTMLParser):
+        def __init__(self):
+            super().__init__()
+            self.hrefs: list[str] = []
+
+        def handle_starttag(self, tag, attrs):
+            self.hrefs += [v for k, v in attrs if tag == "a" and k == "href"]
+
+    parser = Links()
+    parser.feed(page)
+    assert len(parser.hrefs) == len(sessions)
+    for href in parser.hrefs:
+        parts = urlsplit(href)
+        assert not parts.scheme and not parts.netloc and not href.startswith("/"), href
+        target = (tmp_path / "out" / unquote(parts.path)).resolve()
+        assert target.is_file() and target.name == "report.html", href
+    assert {(tmp_path / "out" / unquote(h)).resolve() for h in parser.hrefs} == \
+        {Path(s).with_name("report.html").resolve() for s in sessions}
+    assert not re.search(r"""(src|href)\s*=\s*["']?\s*(https?:)?//""", page)
