@@ -518,3 +518,37 @@ def test_report_links_each_session_report_relatively(tmp_path):
     assert {(tmp_path / "out" / unquote(h)).resolve() for h in parser.hrefs} == \
         {Path(s).with_name("report.html").resolve() for s in sessions}
     assert not re.search(r"""(src|href)\s*=\s*["']?\s*(https?:)?//""", page)
+
+
+def test_qc_step_scan_session_judged_by_configured_ranges(tmp_path):
+    """A scan session (no reference) in the workflow: the tolerance file's ranges decide."""
+    import nibabel as nib
+    from fitting import status as fit_status
+    lab = np.zeros((8, 8, 2), np.int16)
+    lab[1:4, 1:4] = 1
+    lab[5:8, 5:8] = 2
+    t1 = np.where(lab == 1, 0.80, np.where(lab == 2, 1.50, np.nan)).astype(np.float32)
+    maps = tmp_path / "maps" / "ir"
+    maps.mkdir(parents=True)
+    stem = "sub-scan_ses-20261101_IRT1"
+    nib.save(nib.Nifti1Image(t1, np.eye(4)), str(maps / f"{stem}_T1map.nii.gz"))
+    (maps / f"{stem}_T1map.json").write_text(json.dumps({"Units": "s", "Model": "ir"}))
+    nib.save(nib.Nifti1Image(np.full(lab.shape, fit_status.OK, np.uint8), np.eye(4)),
+             str(maps / f"{stem}_desc-fitstatus_mask.nii.gz"))
+    (maps / "manifest.json").write_text(json.dumps({"model": "ir"}))
+    nib.save(nib.Nifti1Image(lab, np.eye(4)), str(tmp_path / "regions_dseg.nii.gz"))
+    tol = tmp_path / "tol.yaml"
+    tol.write_text("ranges:\n  '1': {T1map: [0.70, 0.95]}\n  '2': {T1map: [0.70, 0.95]}\n")
+    settings = {"sub": "sub-scan", "ses": "ses-20261101", "session": "20261101", "site": "A",
+                "scanner": "S", "labels": str(tmp_path / "regions_dseg.nii.gz"),
+                "labels_pattern": "*_dseg.nii.gz", "folder": str(tmp_path), "reference": None,
+                "tolerances": str(tol), "erode_mm": 0.0, "layout": None, "margin_mm": 2.0,
+                "figures": False}
+    out = tmp_path / "qc" / "session.json"
+    W.step_qc(settings, [str(maps / "manifest.json")], str(out))
+    summary = json.loads(out.read_text())
+    assert summary["fail"] and summary["models"]["ir"]["counts"] == {"pass": 1, "fail": 1}
+    df = pd.read_csv(tmp_path / "qc" / "ir" / "roi_stats.tsv", sep="\t").set_index("label")
+    # 0.80 s lies in [0.70, 0.95]; 1.50 s does not
+    assert df.loc[1, "status"] == "pass" and df.loc[2, "status"] == "fail"
+    assert summary["models"]["ir"]["exit_status"] == 1
