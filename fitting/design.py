@@ -67,7 +67,8 @@ MIN_ANGLE = 1.0           # degrees
 MIN_GAP = {"ir": (0.005, 0.02), "vfa": (1.0, 0.0)}
 MAX_ANGLE = 90.0
 MIN_ESP = 0.005           # s; default shortest echo spacing
-MAX_POINTS = 32           # TIs/angles derived from a budget are capped here
+MAX_POINTS = 32           # TIs/angles derived from a budget (or --points) are capped here
+MAX_POINTS_ECHOES = 256   # longest echo train --points may ask for (mese)
 MAX_ECHOES = 64           # echo trains searched up to this length
 DEFAULT_POINTS = {"ir": 8, "vfa": 4, "mese": 32}
 N_RANDOM_STARTS = 2
@@ -169,6 +170,11 @@ def make_problem(model: str, lo: float, hi: float, *, points: int | None = None,
         raise _bad(f"--points {points!r}: the {model} model estimates {spec.n_params} "
                    f"parameters ({', '.join(spec.params)}) and its fit needs at least "
                    f"{need} points.")
+    most = MAX_POINTS_ECHOES if model == "mese" else MAX_POINTS
+    if points is not None and points > most:
+        raise _bad(f"--points {points!r}: at most {most} "
+                   f"{'echoes' if model == 'mese' else 'points'} can be designed for {model}; "
+                   f"give a smaller --points.")
     if grid_points < 2 and lo != hi:
         raise _bad("grid_points must be at least 2.")
     max_train = None

@@ -33,16 +33,22 @@ def package_version() -> str:
 
 def ensure_dir(path: str | Path) -> Path:
     p = Path(path)
+    if p.exists() and not p.is_dir():
+        raise InputError(f"{p}: exists and is not a folder; give a folder name for the "
+                         f"outputs (a new one is created).")
     try:
         p.mkdir(parents=True, exist_ok=True)
     except OSError as exc:
-        raise InputError(f"{p}: cannot create output folder ({exc.strerror}).") from None
+        raise InputError(f"{p}: cannot create output folder ({exc.strerror}); give a folder "
+                         f"you can write to.") from None
     return p
 
 
 def atomic_write_bytes(path: str | Path, data: bytes) -> Path:
     """Write ``data`` to ``path`` through a temporary file in the same folder."""
     path = Path(path)
+    if path.is_dir():
+        raise InputError(f"{path}: is a folder; give a file name to write.")
     ensure_dir(path.parent)
     fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
     try:

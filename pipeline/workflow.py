@@ -64,6 +64,9 @@ def read_config(path: str | Path) -> dict:
                          "edit it, or give --config.")
     try:
         cfg = yaml.safe_load(p.read_text(encoding="utf-8"))
+    except UnicodeDecodeError:
+        raise InputError(f"{p}: not UTF-8 text; a config is a YAML text file (see "
+                         "sample_config/config.yaml).") from None
     except yaml.YAMLError as exc:
         mark = getattr(exc, "problem_mark", None)
         where = f" (line {mark.line + 1}, column {mark.column + 1})" if mark else ""

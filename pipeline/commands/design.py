@@ -13,6 +13,7 @@ import json
 import sys
 
 from pipeline.errors import InputError
+from pipeline.series import MS_THRESHOLD_S
 
 HELP = "Protocol design: TIs, flip angles or echo spacing from the Cramér–Rao bound"
 DESCRIPTION = """\
@@ -89,6 +90,9 @@ def _parse_range(text: str) -> tuple[float, float]:
         raise InputError(f"--range {text!r}: expected LO:HI in seconds, e.g. 0.1:2.5.") from None
     if not (lo > 0 and hi > lo and hi < float("inf")):
         raise InputError(f"--range {text!r}: need 0 < LO < HI (seconds).")
+    if hi > MS_THRESHOLD_S:
+        raise InputError(f"--range {text!r}: HI = {hi:g} s looks like milliseconds; give the "
+                         f"range in seconds (e.g. 0.1:2.5).")
     return lo, hi
 
 
@@ -149,7 +153,14 @@ def run(args: argparse.Namespace) -> int:
     lo, hi = _parse_range(args.range_)
     if args.trials < VERIFY_TRIALS_MIN:
         raise InputError(f"--trials {args.trials}: use at least {VERIFY_TRIALS_MIN}.")
-    compare = parse_values(model, args.compare) if args.compare else None
+    compare = parse_values(model, args.compare) if args.compare is not None else None
+    if compare is not None and model == "vfa" and np.any(compare >= 180):
+        raise InputError(f"--compare {args.compare!r}: flip angles must lie in (0, 180) "
+                         f"degrees.")
+    if compare is not None and model == "ir" and args.tr is not None and np.any(
+            compare >= args.tr):
+        raise InputError(f"--compare {args.compare!r}: every TI must be shorter than --tr "
+                         f"{args.tr:g} s.")
     if args.plot and not args.plot.lower().endswith(".png"):
         raise InputError(f"--plot {args.plot}: the figure is a PNG; give a name ending .png.")
     problem = make_problem(model, lo, hi, points=args.points, tr=args.tr, snr=args.snr,

@@ -93,8 +93,8 @@ def run_workflow(config: str | Path, cores: int | None = None, profile: str | No
         raise InputError(f"{config}: key `input_dir`: no session under {cfg['input_dir']} "
                          f"({d['subject_glob']}/{d['session_glob']}/{d['datatype']}/) has a "
                          f"series matching any `models.*.pattern`.")
-    out = Path(cfg["output_dir"])
-    out.mkdir(parents=True, exist_ok=True)
+    from pipeline.outputs import ensure_dir
+    out = ensure_dir(cfg["output_dir"])
     # One run per output folder at a time. The kernel drops this lock when the process
     # dies, even on SIGKILL, so a killed run never leaves a stale lock behind; this is
     # why Snakemake's own (file-based) lock is switched off with --nolock.
