@@ -40,6 +40,9 @@ from pipeline.errors import InputError, RelaxlineError
 from pipeline.outputs import provenance, write_map
 from pipeline.series import Series, load_grid_map, read_series
 
+# model options of `relaxline fit` -> (flag, models it applies to)
+MODEL_OPTIONS = {"t1_fixed": ("--t1-fixed", ("mese",)), "offset": ("--offset", ("mese-mono",)),
+                 "drop_first_echo": ("--drop-first-echo", ("mese-mono",))}
 SLAB_VOXELS = 131072           # voxels read and fitted at a time (bounds memory)
 NOISE_SAMPLE_VOXELS = 200_000  # voxels sampled for the background-noise estimate
 STATUS_KEY = "desc-fitstatus_mask"
@@ -237,6 +240,10 @@ def load_b1(spec: ModelSpec, series: Series, b1: str | Path | None, stream: Text
     b1_arr = load_grid_map(b1, series, what="B1 map") if b1 else None
     if b1_arr is not None:
         finite = b1_arr[np.isfinite(b1_arr)]
+        if not np.any(finite > 0):
+            raise InputError(f"{b1}: the B1 map holds no positive finite value (all NaN, zero "
+                             f"or negative); --b1 expects the ratio actual/nominal flip angle "
+                             f"(about 1). Check that the right file is given.")
         if finite.size and np.nanmedian(finite) > 10:
             raise InputError(f"{b1}: B1 map median {np.nanmedian(finite):g} looks like a percent "
                              f"map; --b1 expects the ratio actual/nominal flip angle (about 1).")
@@ -263,11 +270,20 @@ def fit_command(model: str, inputs: Sequence[str | Path], out: str | Path,
         raise InputError(f"--engine must be one of {', '.join(ENGINES)}, got {engine!r}.")
     if int(jobs) < 1:
         raise InputError(f"--jobs must be at least 1, got {jobs}.")
-    spec, series, fixed = prepare(model, inputs, time_unit)
     extra = dict(model_options or {})
+    for opt, (flag, models) in MODEL_OPTIONS.items():
+        if extra.get(opt) is not None and extra.get(opt) is not False and model not in models:
+            raise InputError(f"option {flag} applies to the {', '.join(models)} model only, "
+                             f"not to {model}; leave it out.")
+    spec, series, fixed = prepare(model, inputs, time_unit)
     spec = configure_model(spec, {**extra, "b1_map": str(b1) if b1 else None})
     acquisition(spec, series, extra)          # validate the options before any reading
     mask_arr = load_grid_map(mask, series, what="mask") if mask else None
+    if mask_arr is not None:
+        mask_arr = np.where(np.isfinite(mask_arr), mask_arr, 0)   # NaN is not "in the mask"
+        if not mask_arr.any():
+            raise InputError(f"--mask {mask}: the mask has no non-zero voxel, so nothing would "
+                             f"be fitted; give a mask that is non-zero where to fit.")
     b1_arr = load_b1(spec, series, b1, stream)
     sigma = estimate_noise(series)
     options = {"engine": engine, "jobs": int(jobs), "time_unit": time_unit,
@@ -279,4 +295,9 @@ def fit_command(model: str, inputs: Sequence[str | Path], out: str | Path,
     summary = ", ".join(f"{st.NAMES[c]}: {int(counts[c])}" for c in sorted(st.NAMES)
                         if counts[c])
     print(f"relaxline fit {spec.name}: {summary}", file=stream)
+    if counts[st.BAD_DATA] and counts[st.BAD_DATA] + counts[st.OUTSIDE] == series.n_voxels:
+        # kept as output (the status map records it), but never silently
+        print(f"relaxline fit: warning: {', '.join(map(str, series.paths))}: every fitted "
+              f"voxel holds non-finite or all-zero data, so the maps hold only NaN; check "
+              f"that these are the right images.", file=stream)
     return write_fit_outputs(arrays, series, out, model, engine, options)

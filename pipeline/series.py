@@ -30,6 +30,9 @@ TIME_KEYS = ("InversionTime", "EchoTime", "RepetitionTime")
 ANGLE_KEYS = ("FlipAngle", "RefocusingFlipAngle")
 SCALAR_KEYS = TIME_KEYS + ANGLE_KEYS + ("MagneticFieldStrength",)
 MS_THRESHOLD_S = 30.0  # a "time" above this is almost certainly milliseconds
+# with --time-unit ms, a longest time (ms) below this is really seconds (common practice:
+# no T1-mapping IR ends its TIs under 10 ms, no echo train or TR under 1 ms)
+MS_FLOOR = {"InversionTime": 10.0, "EchoTime": 1.0, "RepetitionTime": 1.0}
 AFFINE_ATOL_MM = 1e-3
 # BIDS entities that index the volumes of a split series; dropped to form the stem.
 _INDEX_ENTITY = re.compile(r"_(inv|echo|flip|part|mt)-[0-9A-Za-z]+")
@@ -98,7 +101,19 @@ def _check_unit(key: str, v: float, where: str, time_unit: str) -> float:
                 f"Fix the sidecar, or pass --time-unit ms if all its times are in ms.")
         if v < 0:
             raise InputError(f"{where}: key '{key}' = {v:g} s is negative.")
+    elif key == "MagneticFieldStrength" and not v > 0:
+        raise InputError(f"{where}: key '{key}' = {v:g} must be a positive field in tesla "
+                         f"(e.g. 3); fix the sidecar.")
     return v
+
+
+def _check_looks_like_seconds(key: str, raw: Sequence[float], where: str) -> None:
+    """With ``--time-unit ms``, a longest time under :data:`MS_FLOOR` is really seconds."""
+    floor = MS_FLOOR.get(key)
+    if floor and len(raw) and 0 < max(raw) < floor:
+        raise InputError(f"{where}: key '{key}' is {max(raw):g} at most, which looks like "
+                         f"seconds, not milliseconds (a longest {key} under {floor:g} ms is "
+                         f"not a real protocol); drop --time-unit ms.")
 
 
 @dataclass
@@ -196,6 +211,9 @@ def _load_image(path: Path):
 
 def _spatial(img, path: Path) -> tuple[int, int, int]:
     shp = tuple(int(s) for s in img.shape)
+    if len(shp) > 4 and any(s > 1 for s in shp[4:]):
+        raise InputError(f"{path}: image has shape {shp}; expected a 3D volume or a 4D series "
+                         f"(x, y, z, volume).")
     if len(shp) == 2:
         shp = shp + (1,)
     if len(shp) < 3:
@@ -254,6 +272,8 @@ def read_series(inputs: Sequence[str | Path], key: str, time_unit: str = "s",
             raise InputError(f"{where}: key '{key}' has {len(raw)} values but {p.name} has "
                              f"{n} volumes; give one value per volume.")
         values = [_check_unit(key, _as_number(v, where, key), where, time_unit) for v in raw]
+        if time_unit == "ms":
+            _check_looks_like_seconds(key, [float(v) for v in raw], where)
         metas = [sc]
         shape, affine = _spatial(img, p), img.affine
     else:
@@ -274,6 +294,9 @@ def read_series(inputs: Sequence[str | Path], key: str, time_unit: str = "s",
                                  f"volume; give one number.")
             values.append(_check_unit(key, _as_number(sc[key], where, key), where, time_unit))
         metas = sidecars
+        if time_unit == "ms":
+            _check_looks_like_seconds(key, [v * 1000.0 for v in values],
+                                      ", ".join(str(sidecar_path(p)) for p in paths))
 
     vals = np.asarray(values, dtype=float)
     if vals.size < min_volumes:
@@ -308,7 +331,10 @@ def _common_meta(paths: list[Path], metas: list[dict], key: str, time_unit: str)
                 if isinstance(sc[k], list):
                     raise InputError(f"{where}: key '{k}' must be a single number for this "
                                      f"series (it varies in '{key}'), got a list.")
-                seen.append((p, _check_unit(k, _as_number(sc[k], where, k), where, time_unit)))
+                v = _as_number(sc[k], where, k)
+                if time_unit == "ms" and k == "RepetitionTime":
+                    _check_looks_like_seconds(k, [v], where)
+                seen.append((p, _check_unit(k, v, where, time_unit)))
         if seen:
             v0 = seen[0][1]
             for p, v in seen[1:]:

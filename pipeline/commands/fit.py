@@ -69,7 +69,8 @@ def model_options(args: argparse.Namespace) -> dict:
     out = {"t1_fixed": args.t1_fixed, "offset": args.offset,
            "drop_first_echo": args.drop_first_echo,
            "noise": args.noise if args.noise != "gaussian" else None}
-    return {k: v for k, v in out.items() if v not in (None, False)}
+    # `is` tests: --t1-fixed 0 must reach validation, not vanish as "== False"
+    return {k: v for k, v in out.items() if v is not None and v is not False}
 
 
 def run(args: argparse.Namespace) -> int:

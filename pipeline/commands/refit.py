@@ -107,6 +107,12 @@ def select_region(args: argparse.Namespace, series):
         if args.label is None:
             raise InputError("--label-map needs --label N (the label value of the region).")
         labels = load_grid_map(args.label_map, series, what="label map")
+        fin = labels[np.isfinite(labels)]
+        if np.any(fin != np.round(fin)):
+            odd = np.unique(fin[fin != np.round(fin)])[:5]
+            raise InputError(f"--label-map {args.label_map}: labels must be whole numbers, found "
+                             f"{', '.join(f'{v:g}' for v in odd)}; give a label map (integer "
+                             f"labels), not a probability or resampled map.")
         sel = np.isclose(labels, args.label) & np.isfinite(labels)
         if not sel.any():
             present = np.unique(labels[np.isfinite(labels) & (labels != 0)])
