@@ -53,20 +53,22 @@ def demo_config(sessions: int) -> dict:
 def run(args: argparse.Namespace) -> int:
     import yaml
 
-    from pipeline.commands.run import run_workflow
+    from pipeline.commands.run import check_options, run_workflow
     from pipeline.errors import InputError
     from pipeline.outputs import atomic_write_text, ensure_dir
     from pipeline.simulate import SimOptions, simulate
 
     if args.sessions < 1:
         raise InputError(f"--sessions must be at least 1, got {args.sessions}.")
+    # every option is checked before anything is simulated or written
+    opts = SimOptions(sessions=args.sessions, seed=args.seed)
+    opts.validate()
+    check_options(args.cores, args.profile)
     out = ensure_dir(args.outdir)
     raw = out / "rawdata"
     if any(raw.glob("sub-*/ses-*/anat")):
         print(f"relaxline demo: keeping the sessions already in {raw}")
     else:
-        opts = SimOptions(sessions=args.sessions, seed=args.seed)
-        opts.validate()
         files = simulate(raw, opts)
         print(f"relaxline demo: simulated {args.sessions} session(s) ({len(files)} files) "
               f"in {raw}")

@@ -70,6 +70,17 @@ def snakemake_command(config: str | Path, cfg: dict, cores: int | None, profile:
     return cmd + list(extra)
 
 
+def check_options(cores: int | None, profile: str | None) -> None:
+    """Reject a bad --cores / --profile (shared with ``relaxline demo``)."""
+    from pipeline.errors import InputError
+    if cores is not None and cores < 1:
+        raise InputError(f"--cores must be at least 1, got {cores}.")
+    if profile and not Path(profile, "config.yaml").is_file():
+        raise InputError(f"--profile {profile}: no config.yaml in that folder; a Snakemake "
+                         "profile is a folder holding config.yaml (see "
+                         "sample_config/profiles/slurm).")
+
+
 def run_workflow(config: str | Path, cores: int | None = None, profile: str | None = None,
                  extra: Sequence[str] = (), stream=sys.stderr) -> int:
     """Validate, run Snakemake, and return the exit status of design §5."""
@@ -80,12 +91,7 @@ def run_workflow(config: str | Path, cores: int | None = None, profile: str | No
     from pipeline import workflow
     from pipeline.errors import EXIT_BAD_INPUT, InputError
 
-    if cores is not None and cores < 1:
-        raise InputError(f"--cores must be at least 1, got {cores}.")
-    if profile and not Path(profile, "config.yaml").is_file():
-        raise InputError(f"--profile {profile}: no config.yaml in that folder; a Snakemake "
-                         "profile is a folder holding config.yaml (see "
-                         "sample_config/profiles/slurm).")
+    check_options(cores, profile)
     cfg = workflow.load(config)              # schema, names the key; paths exist
     plan = workflow.plan(cfg)                # discovery errors before any job
     if not plan.sessions:
