@@ -1,0 +1,288 @@
+"""Bad input to every command: exit 2, a message naming the file/key/option, no traceback,
+no output under a final name, and nothing the user gave is changed (design §3, §5, §6).
+
+Valid material comes from ``relaxline simulate`` (one small session); broken variants
+are copies with one thing changed. Cases are ``(argv builder, fragment)``; the builder
+gets a :class:`Kit` and returns the argv (paths inside ``kit.out`` must stay free of
+output files).
+"""
+from __future__ import annotations
+
+import hashlib
+import json
+import shutil
+from pathlib import Path
+from typing import Callable
+
+import nibabel as nib
+import numpy as np
+import pytest
+
+from pipeline.cli import main
+from seriesio import write_3d_set, write_4d, write_json, write_nifti
+
+P = "sub-relaxlinedemo_ses-20261101_"
+
+
+@pytest.fixture(scope="module")
+def sim(tmp_path_factory) -> Path:
+    root = tmp_path_factory.mktemp("sim")
+    assert main(["simulate", str(root), "--sessions", "1", "--slices", "1",
+                 "--matrix", "48"]) == 0
+    return root
+
+
+class Kit:
+    """Paths of the simulated session and helpers to write broken variants."""
+
+    def __init__(self, sim: Path, tmp: Path):
+        self.anat = sim / "sub-relaxlinedemo" / "ses-20261101" / "anat"
+        self.phantom = sim / "phantom"
+        self.tmp = tmp
+        self.out = tmp / "out"           # must hold no final-named file afterwards
+
+    def s(self, name: str) -> str:
+        return str(self.anat / f"{P}{name}.nii.gz")
+
+    def grid(self, name: str = "VFA"):
+        img = nib.load(self.s(name))
+        return img.shape[:3], img.affine
+
+    def variant(self, name: str, change: Callable[[dict], dict] | None = None) -> str:
+        """Copy series ``name`` to tmp with its sidecar passed through ``change``."""
+        d = self.tmp / "in"
+        d.mkdir(exist_ok=True)
+        shutil.copy(self.s(name), d / f"{name}.nii.gz")
+        sc = json.loads((self.anat / f"{P}{name}.json").read_text())
+        write_json(d / f"{name}.json", change(sc) if change else sc)
+        return str(d / f"{name}.nii.gz")
+
+    def image(self, fname: str, data, like: str = "VFA") -> str:
+        _, affine = self.grid(like)
+        return str(write_nifti(self.tmp / fname, np.asarray(data), affine))
+
+    def file(self, fname: str, text: str | bytes) -> str:
+        p = self.tmp / fname
+        p.write_bytes(text) if isinstance(text, bytes) else p.write_text(text)
+        return str(p)
+
+
+def setkey(key, value):
+    return lambda sc: {**sc, key: value}
+
+
+def first(key, value):
+    return lambda sc: {**sc, key: [value] + sc[key][1:]}
+
+
+def fit(model, *inputs, **kw):
+    """argv of ``relaxline fit`` with ``--out kit.out`` (added by the case runner)."""
+    return ["fit", model, *inputs, *sum(([f"--{k.replace('_', '-')}", v]
+                                         for k, v in kw.items()), [])]
+
+
+def zeros_series(k: Kit) -> str:
+    return str(write_4d(k.tmp / "in", "x", np.ones((4, 4, 1, 1), np.float32),
+                        "InversionTime", [0.1]))
+
+
+CASES: dict[str, tuple[Callable[[Kit], list[str]], str]] = {
+    # ---- input files
+    "input is a folder": (lambda k: fit("ir", str(k.anat)), "anat: expected a NIfTI"),
+    "empty file": (lambda k: fit("ir", k.file("e.nii.gz", b"")), "e.nii.gz: cannot be read"),
+    "nii.gz that is text": (lambda k: fit("ir", k.file("t.nii.gz", "not an image\n" * 9)),
+                            "t.nii.gz: cannot be read as NIfTI"),
+    "missing sidecar": (lambda k: fit("ir", str(shutil.copy(k.s("IRT1"), k.tmp / "n.nii.gz"))),
+                        "n.json: sidecar not found"),
+    "5D image": (lambda k: fit("ir", str(write_4d(k.tmp / "in", "f", np.ones((4, 4, 1, 3, 2)),
+                                                  "InversionTime", [0.1, 0.2, 0.3]))),
+                 "f.nii.gz: image has shape (4, 4, 1, 3, 2)"),
+    "single volume": (lambda k: fit("ir", *map(str, write_3d_set(
+        k.tmp / "in", "a_IR", np.ones((4, 4, 1, 1)), "InversionTime", [0.1]))),
+        "needs at least 3 values of 'InversionTime'"),
+    "3D mixed with 4D": (lambda k: fit("dam", k.s("flip-1_TB1DAM"), k.s("IRT1")),
+                         "IRT1.nii.gz: a 4D image must be the only input"),
+    "same file twice": (lambda k: fit("dam", k.s("flip-1_TB1DAM"), k.s("flip-1_TB1DAM")),
+                        "the same input file is given twice"),
+    "IR series to mese": (lambda k: fit("mese", k.s("IRT1")), "IRT1.json: missing key 'EchoTime'"),
+    "MESE series to vfa": (lambda k: fit("vfa", k.s("MESE")),
+                           "MESE.json: key 'FlipAngle' must be a list"),
+    # ---- sidecars
+    "sidecar is an array": (lambda k: fit("ir", k.variant("IRT1", lambda sc: [1, 2])),
+                            "IRT1.json: expected a JSON object"),
+    "string for a number": (lambda k: fit("ir", k.variant("IRT1", setkey("RepetitionTime", "2.5"))),
+                            "'RepetitionTime' must be a number, got '2.5'"),
+    "boolean": (lambda k: fit("ir", k.variant("IRT1", setkey("RepetitionTime", True))),
+                "'RepetitionTime' must be a number, got True"),
+    "nested dict": (lambda k: fit("ir", k.variant("IRT1", setkey("FlipAngle", {"v": 90}))),
+                    "'FlipAngle' must be a number"),
+    "null in list": (lambda k: fit("ir", k.variant("IRT1", first("InversionTime", None))),
+                     "'InversionTime' must be a number, got None"),
+    "ir TR = 0": (lambda k: fit("ir", k.variant("IRT1", setkey("RepetitionTime", 0))),
+                  "not shorter than 'RepetitionTime' = 0 s"),
+    "ir negative TI": (lambda k: fit("ir", k.variant("IRT1", first("InversionTime", -0.1))),
+                       "'InversionTime' = -0.1 s is negative"),
+    "ir FlipAngle 0": (lambda k: fit("ir", k.variant("IRT1", setkey("FlipAngle", 0))),
+                       "'FlipAngle' = 0 degrees"),
+    "ir FlipAngle 400": (lambda k: fit("ir", k.variant("IRT1", setkey("FlipAngle", 400))),
+                         "'FlipAngle' = 400 degrees"),
+    "field strength < 0": (lambda k: fit("ir", k.variant("IRT1", setkey(
+        "MagneticFieldStrength", -3))), "IRT1.json: key 'MagneticFieldStrength' = -3"),
+    "ir times in ms": (lambda k: fit("ir", k.variant("IRT1", lambda sc: {
+        **sc, "InversionTime": [v * 1000 for v in sc["InversionTime"]]})),
+        "'InversionTime' = 35 looks like milliseconds"),
+    "seconds with --time-unit ms": (lambda k: fit("ir", k.s("IRT1"), time_unit="ms"),
+                                    "IRT1.json: key 'InversionTime' is 1.9 at most"),
+    "vfa TR = 0": (lambda k: fit("vfa", k.variant("VFA", setkey("RepetitionTime", 0))),
+                   "'RepetitionTime' = 0 s must be positive"),
+    "vfa angle 400": (lambda k: fit("vfa", k.variant("VFA", first("FlipAngle", 400))),
+                      "'FlipAngle' values"),
+    "dam not a 2:1 pair": (lambda k: fit("dam", k.variant("flip-1_TB1DAM", setkey(
+        "FlipAngle", 50)), k.s("flip-2_TB1DAM")), "needs a 2:1 pair"),
+    "mese EchoTime 0": (lambda k: fit("mese", k.variant("MESE", first("EchoTime", 0.0))),
+                        "'EchoTime' values must be positive"),
+    "mese refocusing 400": (lambda k: fit("mese", k.variant("MESE", setkey(
+        "RefocusingFlipAngle", 400))), "'RefocusingFlipAngle' = 400"),
+    "mese-mono negative TE": (lambda k: fit("mese-mono", k.variant("MESE", first(
+        "EchoTime", -0.01))), "'EchoTime' = -0.01 s is negative"),
+    "megre EchoTime 0": (lambda k: fit("megre", k.variant("MEGRE", first("EchoTime", 0.0))),
+                         "'EchoTime' values must be positive"),
+    # ---- options
+    "unknown model": (lambda k: fit("t3", k.s("IRT1")), "unknown model 't3'"),
+    "--jobs 0": (lambda k: fit("ir", k.s("IRT1"), jobs="0"), "--jobs must be at least 1"),
+    "--jobs -2": (lambda k: fit("ir", k.s("IRT1"), jobs="-2"), "--jobs must be at least 1"),
+    "--engine foo": (lambda k: fit("ir", k.s("IRT1"), engine="foo"), "argument --engine"),
+    "--t1-fixed 0": (lambda k: fit("mese", k.s("MESE"), t1_fixed="0"), "fixed T1 = 0.0 s"),
+    "--t1-fixed on ir": (lambda k: fit("ir", k.s("IRT1"), t1_fixed="1"),
+                         "option --t1-fixed applies to the mese model only"),
+    "--offset on megre": (lambda k: fit("megre", k.s("MEGRE")) + ["--offset"],
+                          "option --offset applies to the mese-mono model only"),
+    "--b1 on ir": (lambda k: fit("ir", k.s("IRT1"), b1=str(
+        k.phantom / "truth_ses-20261101_TB1map.nii.gz")), "the ir model does not use a B1 map"),
+    # ---- maps
+    "mask all zeros": (lambda k: fit("megre", k.s("MEGRE"), mask=k.image(
+        "m.nii.gz", np.zeros(k.grid()[0], np.uint8))), "m.nii.gz: the mask has no non-zero"),
+    "mask 4D": (lambda k: fit("megre", k.s("MEGRE"), mask=k.image(
+        "m.nii.gz", np.ones(k.grid()[0] + (2,), np.uint8))), "m.nii.gz: mask must be a 3D"),
+    "mask off grid": (lambda k: fit("megre", k.s("MEGRE"), mask=k.image(
+        "m.nii.gz", np.ones((5, 5, 1), np.uint8))), "m.nii.gz: mask has grid (5, 5, 1)"),
+    "B1 4D": (lambda k: fit("vfa", k.s("VFA"), b1=k.image(
+        "b.nii.gz", np.ones(k.grid()[0] + (2,), np.float32))), "b.nii.gz: B1 map must be a 3D"),
+    "B1 all NaN": (lambda k: fit("vfa", k.s("VFA"), b1=k.image(
+        "b.nii.gz", np.full(k.grid()[0], np.nan, np.float32))),
+        "b.nii.gz: the B1 map holds no positive finite value"),
+    "B1 negative": (lambda k: fit("mese", k.s("MESE"), b1=k.image(
+        "b.nii.gz", np.full(k.grid()[0], -1.0, np.float32))),
+        "b.nii.gz: the B1 map holds no positive finite value"),
+    "B1 in percent": (lambda k: fit("vfa", k.s("VFA"), b1=k.image(
+        "b.nii.gz", np.full(k.grid()[0], 100.0, np.float32))), "looks like a percent map"),
+    # ---- output folder
+    "--out is a file": (lambda k: ["fit", "megre", k.s("MEGRE"), "--out",
+                                   k.file("o.txt", "keep me")], "o.txt: exists and is not a folder"),
+    "--out below a file": (lambda k: ["fit", "megre", k.s("MEGRE"), "--out",
+                                      k.file("o.txt", "keep me") + "/sub"], "cannot create output"),
+    # ---- refit
+    "refit box outside": (lambda k: ["refit", "megre", k.s("MEGRE"), "--box", "0:100,0:4,0:1"],
+                          "the x range 0:100 is empty or outside the image (0:48)"),
+    "refit box empty": (lambda k: ["refit", "megre", k.s("MEGRE"), "--box", "3:3,0:4,0:1"],
+                        "the x range 3:3 is empty"),
+    "refit box reversed": (lambda k: ["refit", "megre", k.s("MEGRE"), "--box", "5:2,0:4,0:1"],
+                           "the x range 5:2 is empty"),
+    "refit box two axes": (lambda k: ["refit", "megre", k.s("MEGRE"), "--box", "0:4,0:4"],
+                           "--box '0:4,0:4': expected x0:x1,y0:y1,z0:z1"),
+    "refit voxel outside": (lambda k: ["refit", "megre", k.s("MEGRE"), "--voxel", "100,0,0"],
+                            "x = 100 is outside the image"),
+    "refit label absent": (lambda k: ["refit", "megre", k.s("MEGRE"), "--label-map",
+                                      k.s("dseg"), "--label", "99"], "--label 99: label absent"),
+    "refit fractional labels": (lambda k: ["refit", "megre", k.s("MEGRE"), "--label-map",
+                                           k.image("l.nii.gz", np.asarray(nib.load(k.s(
+                                               "dseg")).dataobj, np.float32) * 0.5),
+                                           "--label", "1"], "labels must be whole numbers"),
+    "refit --plot is a folder": (lambda k: ["refit", "megre", k.s("MEGRE"), "--voxel", "24,24,0",
+                                            "--plot", str(k.tmp)], "is a folder; give a file name"),
+    "refit all-NaN region": (lambda k: ["refit", "megre", str(write_4d(
+        k.tmp / "in", "nan", np.full((4, 4, 1, 4), np.nan, np.float32), "EchoTime",
+        [0.01, 0.02, 0.03, 0.04], {"RepetitionTime": 1.0})), "--box", "0:4,0:4,0:1"],
+        "hold non-finite or all-zero data"),
+    # ---- simulate
+    "simulate --sessions 0": (lambda k: ["simulate", str(k.out), "--sessions", "0"],
+                              "--sessions must be an integer"),
+    "simulate --snr 0": (lambda k: ["simulate", str(k.out), "--snr", "0"], "--snr must be positive"),
+    "simulate --matrix 1": (lambda k: ["simulate", str(k.out), "--matrix", "1"], "--matrix"),
+    "simulate OUTDIR is a file": (lambda k: ["simulate", k.file("o.txt", "keep me")],
+                                  "o.txt: exists and is not a folder"),
+    # ---- design
+    "design LO = HI": (lambda k: ["design", "ir", "--range", "1:1", "--tr", "5"], "--range '1:1'"),
+    "design LO > HI": (lambda k: ["design", "ir", "--range", "2:1", "--tr", "5"], "--range '2:1'"),
+    "design --range abc": (lambda k: ["design", "ir", "--range", "abc", "--tr", "5"],
+                           "--range 'abc': expected LO:HI"),
+    "design --range in ms": (lambda k: ["design", "ir", "--range", "100:2500", "--tr", "5"],
+                             "looks like milliseconds"),
+    "design --points 1": (lambda k: ["design", "ir", "--range", "0.1:2", "--tr", "5",
+                                     "--points", "1"], "--points 1"),
+    "design --points huge": (lambda k: ["design", "mese", "--range", "0.01:0.5", "--points",
+                                        "100000"], "--points 100000: at most"),
+    "design --snr 0": (lambda k: ["design", "ir", "--range", "0.1:2", "--tr", "5", "--snr", "0"],
+                       "--snr 0"),
+    "design no --tr": (lambda k: ["design", "ir", "--range", "0.1:2"], "--tr is required"),
+    "design unknown model": (lambda k: ["design", "megre", "--range", "0.01:0.1"],
+                             "unknown model 'megre'"),
+    "design --compare empty": (lambda k: ["design", "ir", "--range", "0.1:2", "--tr", "5",
+                                          "--compare", ""], "--compare ''"),
+    "design --compare TI > TR": (lambda k: ["design", "ir", "--range", "0.1:2", "--tr", "5",
+                                            "--compare", "0.1,6"], "shorter than --tr 5"),
+    "design --compare angle 400": (lambda k: ["design", "vfa", "--range", "0.1:2", "--tr",
+                                              "0.01", "--compare", "2,400"], "(0, 180)"),
+    "design --plot not png": (lambda k: ["design", "vfa", "--range", "0.1:2", "--tr", "0.01",
+                                         "--plot", str(k.out)], "give a name ending .png"),
+    # ---- run / demo (option and config errors only)
+    "run missing config": (lambda k: ["run", "--config", str(k.tmp / "no.yaml")],
+                           "no.yaml: config file not found"),
+    "run config is binary": (lambda k: ["run", "--config", k.file("b.yaml", bytes(range(256)))],
+                             "b.yaml: not UTF-8 text"),
+    "run config is a list": (lambda k: ["run", "--config", k.file("l.yaml", "- a\n")],
+                             "l.yaml: expected a mapping"),
+    "run unknown key": (lambda k: ["run", "--config", k.file("c.yaml", "modles: {}\n")],
+                        "'modles' was unexpected"),
+    "run output_dir is a file": (lambda k: ["run", "--config", k.file("c.yaml", (
+        f"input_dir: {k.anat.parents[2]}\noutput_dir: {k.file('o.txt', 'keep me')}\n"
+        f"models:\n  ir: {{pattern: '*IRT1.nii.gz'}}\n"))], "o.txt: exists and is not a folder"),
+    "run --cores 0": (lambda k: ["run", "--config", str(k.tmp / "no.yaml"), "--cores", "0"],
+                      "--cores must be at least 1"),
+    "demo --sessions 0": (lambda k: ["demo", str(k.out), "--sessions", "0"], "--sessions"),
+    "demo --cores 0": (lambda k: ["demo", str(k.out), "--cores", "0"], "--cores must be"),
+    "demo --profile missing": (lambda k: ["demo", str(k.out), "--profile", str(k.tmp / "np")],
+                               "no config.yaml in that folder"),
+    "demo OUTDIR is a file": (lambda k: ["demo", k.file("o.txt", "keep me")],
+                              "o.txt: exists and is not a folder"),
+}
+
+
+def _tree_digest(root: Path) -> dict[str, str]:
+    return {str(p.relative_to(root)): hashlib.sha256(p.read_bytes()).hexdigest()
+            for p in sorted(root.rglob("*")) if p.is_file()}
+
+
+@pytest.mark.parametrize("name", list(CASES))
+def test_bad_input(name, sim, tmp_path, capsys):
+    kit = Kit(sim, tmp_path)
+    argv = CASES[name][0](kit)
+    fragment = CASES[name][1]
+    if argv[0] == "fit" and "--out" not in argv:
+        argv += ["--out", str(kit.out)]
+    given = _tree_digest(tmp_path)
+    sim_before = _tree_digest(sim)
+    try:
+        code = main(argv)
+    except SystemExit as exc:      # argparse usage errors
+        code = exc.code
+    err = capsys.readouterr().err
+    assert code == 2, (code, err)
+    assert fragment in err, err
+    assert "Traceback" not in err and "internal error" not in err
+    # no output under a final name, nothing given changed or lost
+    if kit.out.is_dir():
+        assert not [p for p in kit.out.rglob("*") if p.is_file()]
+    assert _tree_digest(tmp_path) == given
+    assert _tree_digest(sim) == sim_before
+
