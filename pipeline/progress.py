@@ -40,8 +40,7 @@ class Progress:
                 self.stream.write(f"  {time.monotonic() - self._t0:.1f} s\n")
             self.stream.flush()
         else:
-            while pct >= self._next_step and self._next_step <= 100:
-                self.stream.write(f"{self.label}: {self._next_step}% "
-                                  f"({self.done}/{self.total})\n")
-                self._next_step += 10
+            if pct >= self._next_step:  # one line per call, however many steps it crossed
+                self.stream.write(f"{self.label}: {int(pct)}% ({self.done}/{self.total})\n")
+                self._next_step = (int(pct) // 10 + 1) * 10
             self.stream.flush()
