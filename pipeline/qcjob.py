@@ -21,7 +21,7 @@ import numpy as np
 import pandas as pd
 
 from pipeline.errors import EXIT_OK, EXIT_QC_FAIL, InputError
-from pipeline.series import check_same_grid, load_grid_map
+from pipeline.series import load_grid_map, sidecar_path
 
 QC_MAPS = ("T1map", "T2map", "T2starmap", "TB1map")
 ALL_MAPS = QC_MAPS + ("M0map",)
@@ -81,10 +81,7 @@ class MapFile:
     def companion(self, path: Path | None, what: str, dtype=np.float32) -> np.ndarray | None:
         if path is None:
             return None
-        import nibabel as nib
-        img = nib.load(str(path))
-        check_same_grid(self.shape, self.affine, img, path, what)
-        return np.asarray(img.dataobj).astype(dtype).reshape(self.shape)
+        return load_grid_map(path, self.shape, self.affine, what=what).astype(dtype)
 
 
 LabelSource = Callable[[MapFile], np.ndarray]
@@ -114,7 +111,7 @@ def discover_maps(maps_dir: str | Path) -> list[MapFile]:
         if not m or "_desc-" in p.name:
             continue
         stem, suffix = m.group("stem"), m.group("suffix")
-        side = p.with_name(p.name.split(".nii")[0] + ".json")
+        side = sidecar_path(p)
         sidecar = _read_json(side) if side.is_file() else {}
         status = next((q for q in (d / f"{stem}_desc-fitstatus_mask.nii.gz",
                                    d / f"{stem}_desc-fitstatus_mask.nii") if q.is_file()), None)
@@ -411,10 +408,7 @@ def fitted_curves(mf: MapFile, series, labels: np.ndarray, keep: np.ndarray,
         path = mf.path.with_name(f"{mf.stem}_{suffix}.nii.gz") if suffix else None
         if path is None or not path.is_file():
             return {}, f"no map for parameter {p} ({mf.stem}_{suffix}): fitted curves omitted"
-        import nibabel as nib
-        img = nib.load(str(path))
-        check_same_grid(mf.shape, mf.affine, img, path, f"{p} map")
-        params[p] = np.asarray(img.dataobj, dtype=float).reshape(mf.shape)
+        params[p] = mf.companion(path, f"{p} map", float)
     options = mf.sidecar.get("Options") or {}
     try:
         fixed = dict(spec.fixed_from_meta(series.meta, options))
