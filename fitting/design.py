@@ -53,6 +53,7 @@ import numpy as np
 from scipy.optimize import minimize, minimize_scalar
 
 from fitting.errors import RelaxlineError
+from fitting.signals import ernst_angle_deg
 from fitting.spec import ModelSpec, get_model
 from fitting.uncertainty import crlb
 
@@ -338,8 +339,7 @@ def start_protocol(problem: DesignProblem) -> np.ndarray:
         b = np.clip(2 * problem.hi, a, problem.tr - MIN_TI)
         return np.geomspace(a, b, n)
     if problem.model == "vfa":
-        ernst = np.degrees(np.arccos(np.exp(-problem.tr / np.array([problem.hi, problem.lo]))))
-        ernst /= problem.b1
+        ernst = ernst_angle_deg(problem.tr, np.array([problem.hi, problem.lo])) / problem.b1
         a = np.clip(ernst[0] / 2, MIN_ANGLE, MAX_ANGLE)
         b = np.clip(2 * ernst[1], a, MAX_ANGLE)
         return np.linspace(a, b, n)
