@@ -47,7 +47,6 @@ and mirror are searched, the orientation convention of the scan does not matter.
 """
 from __future__ import annotations
 
-import io
 from dataclasses import dataclass
 from typing import Sequence
 
@@ -56,6 +55,7 @@ import pandas as pd
 from scipy import ndimage, optimize
 
 from fitting.errors import RelaxlineError
+from qc.figures import to_png
 from qc.layout import check_layout
 
 MIN_SCORE = 0.35        # refined Pearson r below this: no convincing vial pattern
@@ -660,6 +660,4 @@ def overlay_png(image: np.ndarray, placement: Placement, title: str | None = Non
                   f"{', mirrored' if placement.mirrored else ''}; score {placement.score:.2f}, "
                   f"ambiguity {placement.ambiguity:.2f}", fontsize=9)
     fig.tight_layout()
-    buf = io.BytesIO()
-    fig.savefig(buf, format="png", metadata={"Software": None})
-    return buf.getvalue()
+    return to_png(fig, dpi=dpi)
