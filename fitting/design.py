@@ -319,10 +319,10 @@ def _soft_max_log(cv: np.ndarray, k: float = SOFTMAX_SHARPNESS) -> float:
 
 def _box(problem: DesignProblem) -> tuple[Callable, Callable, float, float]:
     """to_values, to_coords and coordinate bounds of the ir/vfa optimiser."""
+    lo, hi = _value_bounds(problem)
     if problem.model == "ir":   # log TI: inversion times span decades
-        return np.exp, np.log, float(np.log(MIN_TI)), float(np.log(problem.tr - MIN_TI))
-    ident = np.asarray
-    return ident, ident, MIN_ANGLE, MAX_ANGLE
+        return np.exp, np.log, float(np.log(lo)), float(np.log(hi))
+    return np.asarray, np.asarray, lo, hi
 
 
 def start_protocol(problem: DesignProblem) -> np.ndarray:
