@@ -42,9 +42,8 @@ def jacobian(spec: ModelSpec, x: np.ndarray, p: np.ndarray, fixed: Fixed,
         return spec.jacobian(x, spec.unpack(p), fixed)
     if f0 is None:
         f0 = spec.evaluate(x, p, fixed)
-    n, npar = p.shape
-    jac = np.empty(f0.shape + (npar,))
-    lo, hi = spec.lower_array, spec.upper_array
+    jac = np.empty(f0.shape + (p.shape[1],))
+    hi = spec.upper_array
     for i, name in enumerate(spec.params):
         if name == spec.scale_param:
             q = p.copy()
