@@ -8,7 +8,6 @@ Violations are marked by shape and labelled, so the figures read in grey.
 """
 from __future__ import annotations
 
-import base64
 import html
 import math
 
@@ -16,6 +15,7 @@ import numpy as np
 import pandas as pd
 
 from qc.figures import QUANTITY_LABEL, TIME_MAPS, _plt, to_png
+from qc.report import img_tag
 
 PANEL_GROUP = ("site", "scanner", "series", "map")
 
@@ -159,7 +159,6 @@ def history_section_html(scored: pd.DataFrame, violations: pd.DataFrame,
                                          "detail"]))
     for key, png in figures.items():
         alt = " / ".join(str(k) for k in key)
-        parts.append(f'<figure><img alt="trend {html.escape(alt)}" src="data:image/png;base64,'
-                     f'{base64.b64encode(png).decode()}"><figcaption>{html.escape(alt)}'
+        parts.append(f"<figure>{img_tag(png, f'trend {alt}')}<figcaption>{html.escape(alt)}"
                      "</figcaption></figure>")
     return "\n".join(parts)
