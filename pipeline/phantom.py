@@ -131,14 +131,6 @@ def world_to_phantom(x: np.ndarray, y: np.ndarray, shift_mm: tuple[float, float]
     return c * dx + s * dy, -s * dx + c * dy
 
 
-def phantom_to_world(px: np.ndarray, py: np.ndarray, shift_mm: tuple[float, float],
-                     rotation_deg: float) -> tuple[np.ndarray, np.ndarray]:
-    """World coordinates of phantom-frame points (inverse of :func:`world_to_phantom`)."""
-    th = math.radians(rotation_deg)
-    c, s = math.cos(th), math.sin(th)
-    return c * px - s * py + shift_mm[0], s * px + c * py + shift_mm[1]
-
-
 def label_map(x: np.ndarray, y: np.ndarray, shift_mm: tuple[float, float],
               rotation_deg: float) -> tuple[np.ndarray, np.ndarray]:
     """Vial labels (0 outside vials) and the inside-cylinder mask at world points (mm).
