@@ -41,7 +41,7 @@ Model comparison
 """
 from __future__ import annotations
 
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from typing import Any, Mapping, Sequence
 
 import numpy as np
@@ -378,8 +378,7 @@ def fit_region(spec: ModelSpec, x: np.ndarray, data: np.ndarray, fixed: Fixed,
     main = fit_mean(spec, ms, ci=ci)
     others, comps = [], []
     for alt, alt_fixed, fix, label in competitors:
-        alt_ms = MeanSignal(ms.x, ms.y, ms.sigma, ms.source, ms.n_used, ms.n_excluded,
-                            region_constants(alt, alt_fixed, ms.keep), ms.keep)
+        alt_ms = replace(ms, fixed=region_constants(alt, alt_fixed, ms.keep))
         other = fit_mean(alt, alt_ms, fix=fix, label=label, ci=False)
         others.append(other)
         comps.append(compare(main, other))
