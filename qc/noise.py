@@ -19,6 +19,7 @@ import numpy as np
 import pandas as pd
 
 from fitting.uncertainty import background_from_max, rayleigh_max_threshold
+from qc.roi import roi_stats
 
 
 @dataclass
@@ -43,7 +44,6 @@ def estimate_noise(series: np.ndarray, labels: np.ndarray,
     is_complex = np.iscomplexobj(data)
     mag = np.abs(data).astype(float)
     lab = np.asarray(labels).astype(np.int64)
-    vials = sorted(int(v) for v in np.unique(lab) if v > 0)
     names = names or {}
     # brightest volume inside the vials: best SNR, least affected by the noise floor
     inside = lab > 0
@@ -52,12 +52,11 @@ def estimate_noise(series: np.ndarray, labels: np.ndarray,
     k = int(np.nanargmax(means))
     vmax = np.nanmax(mag, axis=-1)
     sigma = background_from_max(vmax, lambda sel: data[sel], data.shape[-1], is_complex)
-    rows = []
-    for v in vials:
-        s = float(np.nanmean(mag[..., k][lab == v]))
-        rows.append({"label": v, "name": names.get(v, f"label {v}"), "signal": s,
-                     "snr": s / sigma if sigma else np.nan})
-    table = pd.DataFrame(rows, columns=["label", "name", "signal", "snr"])
+    stats = roi_stats(mag[..., k], lab)   # finite voxels of each vial
+    table = pd.DataFrame({"label": stats["label"],
+                          "name": [names.get(v, f"label {v}") for v in stats["label"]],
+                          "signal": stats["mean"].astype(float)})
+    table["snr"] = table["signal"] / sigma if sigma else np.nan
     if sigma is None:
         return NoiseEstimate(None, 0, k, table,
                              "no usable background: too few air voxels, or their values do "
