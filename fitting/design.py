@@ -297,7 +297,7 @@ def check_protocol(problem: DesignProblem, values: Sequence[float]) -> str:
         return "values repeat; each TI or angle must be distinct"
     if problem.points is not None and v.size != problem.points:
         return f"{v.size} points where the design has {problem.points}"
-    if problem.model == "mese" and v.size < max(problem.spec.n_params, problem.spec.min_volumes):
+    if problem.model == "mese" and v.size < _mese_min_n(problem):
         return f"{v.size} echoes are too few"
     return ""
 
