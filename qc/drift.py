@@ -55,7 +55,7 @@ class DriftSettings:
 
     baseline_sessions: int = 5               # first K sessions of each site/scanner
     baseline: tuple[str, ...] | None = None  # or these session labels
-    rules: tuple[str, ...] = WESTGARD_RULES + (WARNING_RULE, REFERENCE_RULE)
+    rules: tuple[str, ...] = ALL_RULES
     warning_trigger: bool = False            # 1981 scheme: judge only runs with a 1-2s value
     min_sd_pct: float = 0.5                  # SD floor, % of the baseline mean
     reference_pct: float = 5.0
