@@ -272,6 +272,11 @@ def echo_times(n: int, esp: float) -> np.ndarray:
     return esp * np.arange(1, int(n) + 1)
 
 
+def _is_train(v: np.ndarray) -> bool:
+    """Sorted finite ``v`` are CPMG echo times k·ESP, k = 1..N, with ESP = v[0] (to 1 % of ESP)."""
+    return not np.max(np.abs(v - echo_times(v.size, v[0]))) > 0.01 * v[0]
+
+
 # --------------------------------------------------------------------------- feasibility
 def check_protocol(problem: DesignProblem, values: Sequence[float]) -> str:
     """Why ``values`` break the problem's constraints ('' when feasible)."""
@@ -287,7 +292,7 @@ def check_protocol(problem: DesignProblem, values: Sequence[float]) -> str:
             return f"angles must lie in [{MIN_ANGLE:g}, {MAX_ANGLE:g}] degrees"
     else:
         esp = v[0]
-        if np.max(np.abs(v - echo_times(v.size, esp))) > 0.01 * esp:
+        if not _is_train(v):
             return "echo times are not k·ESP, k = 1..N"
         if esp < problem.min_esp * (1 - 1e-9):
             return f"ESP {esp:g} s is below the minimum {problem.min_esp:g} s"
@@ -511,11 +516,9 @@ def parse_values(model: str, text: str) -> np.ndarray:
                    f"({'seconds' if UNITS[model] == 's' else 'degrees'}).") from None
     if v.size == 0 or not np.all(np.isfinite(v)) or np.any(v <= 0):
         raise _bad(f"--compare {text!r}: expected positive finite numbers.")
-    if model == "mese":
-        esp = np.sort(v)[0]
-        if np.max(np.abs(np.sort(v) - echo_times(v.size, esp))) > 0.01 * esp:
-            raise _bad(f"--compare {text!r}: mese echo times must be k·ESP, k = 1..N (a CPMG "
-                       f"train from its first echo).")
+    if model == "mese" and not _is_train(np.sort(v)):
+        raise _bad(f"--compare {text!r}: mese echo times must be k·ESP, k = 1..N (a CPMG "
+                   f"train from its first echo).")
     return np.sort(v)
 
 
