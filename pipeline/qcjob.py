@@ -21,7 +21,7 @@ import numpy as np
 import pandas as pd
 
 from pipeline.errors import EXIT_OK, EXIT_QC_FAIL, InputError
-from pipeline.series import load_grid_map, sidecar_path
+from pipeline.series import _load_image, load_grid_map, sidecar_path
 
 QC_MAPS = ("T1map", "T2map", "T2starmap", "TB1map")
 ALL_MAPS = QC_MAPS + ("M0map",)
@@ -49,12 +49,7 @@ class MapFile:
     @property
     def image(self):
         if self._img is None:
-            import nibabel as nib
-            try:
-                self._img = nib.load(str(self.path))
-                _ = self._img.shape
-            except Exception as exc:
-                raise InputError(f"{self.path}: cannot be read as NIfTI ({exc}).") from None
+            self._img = _load_image(self.path)
         return self._img
 
     @property

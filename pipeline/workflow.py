@@ -286,7 +286,7 @@ def _site_scanner(folder: Path, cfg: dict) -> tuple[str, str]:
 
 def plan(cfg: dict) -> Plan:
     """Find the sessions of ``input_dir`` and the fit jobs of each (reads headers only)."""
-    import nibabel as nib
+    from pipeline.series import _load_image
     d = cfg["discovery"]
     root = Path(cfg["input_dir"])
     only = set(d.get("sessions") or [])
@@ -311,11 +311,7 @@ def plan(cfg: dict) -> Plan:
                 files = [p for p in names if fnmatch.fnmatch(p.name, m["pattern"])
                          and p not in labels and re.search(r"\.nii(\.gz)?$", p.name)]
                 for stem, group in _series_groups(files).items():
-                    try:
-                        shape = tuple(int(v) for v in nib.load(str(group[0])).shape[:3])
-                    except Exception as exc:
-                        raise InputError(f"{group[0]}: cannot be read as NIfTI ({exc}).") \
-                            from None
+                    shape = tuple(int(v) for v in _load_image(group[0]).shape[:3])
                     shape = (shape + (1, 1, 1))[:3]
                     n = shape[0] * shape[1] * shape[2]
                     slabs = slab_bounds(shape[2], shape[0] * shape[1], cfg["fit"]["chunk_voxels"]) \
