@@ -19,6 +19,8 @@ from typing import Mapping, Sequence
 import numpy as np
 import pandas as pd
 
+from qc.tolerance import TIME_MAPS
+
 STATUS_STYLE = {  # marker shape carries the status without colour
     "pass": {"marker": "o", "color": "#1b7837"},
     "warn": {"marker": "s", "color": "#b35806"},
@@ -27,9 +29,6 @@ STATUS_STYLE = {  # marker shape carries the status without colour
 }
 QUANTITY_LABEL = {"T1map": "T1", "T2map": "T2", "T2starmap": "T2*", "TB1map": "B1 (ratio)",
                   "M0map": "M0"}
-
-
-TIME_MAPS = ("T1map", "T2map", "T2starmap")
 
 
 def display_scale(map_name: str, units: str) -> tuple[float, str]:
