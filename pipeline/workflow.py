@@ -524,6 +524,7 @@ def step_report(cfg: dict, summaries: Sequence[str], report: str, status: str,
                       "wait for it")
                      for (site, scanner), b in base.items()) or "no history yet"
     sess = [json.loads(Path(p).read_text(encoding="utf-8")) for p in summaries]
+    latest = _latest(sess)
     qc_fail_latest = _latest_fails(sess)
     rows = []
     for s in sess:
@@ -539,8 +540,7 @@ def step_report(cfg: dict, summaries: Sequence[str], report: str, status: str,
     sessions_df = pd.DataFrame(rows)
     exit_status = EXIT_QC_FAIL if (len(current) or qc_fail_latest) else EXIT_OK
     atomic_write_tsv(drift_tsv, violations)
-    newest = [s for s in sess if not s["models"] or f"{s['sub']}/{s['ses']}" in
-              _latest(sess)]
+    newest = [s for s in sess if not s["models"] or f"{s['sub']}/{s['ses']}" in latest]
     table = pd.concat([pd.read_csv(m["roi_stats"], sep="\t") for s in newest
                        for m in s["models"].values() if m["roi_stats"]]
                       or [pd.DataFrame(columns=["status"])],
@@ -550,7 +550,7 @@ def step_report(cfg: dict, summaries: Sequence[str], report: str, status: str,
                  f"{r.series} {r.map} label {r.label}: {r.detail}" for r in current.itertuples()]
     warnings += [f"{s['sub']}/{s['ses']}: {s['note']}" for s in sess if s.get("note")]
     warnings += [f"{s['sub']}/{s['ses']} {model}: {w}" for s in sess if
-                 f"{s['sub']}/{s['ses']}" in _latest(sess)
+                 f"{s['sub']}/{s['ses']}" in latest
                  for model, m in s["models"].items() if not m["roi_stats"]
                  for w in m["warnings"]]
     shown = [c for c in sessions_df.columns if c != "_href"]
@@ -559,7 +559,7 @@ def step_report(cfg: dict, summaries: Sequence[str], report: str, status: str,
                 ("History and drift", trend.history_section_html(scored, violations, figures,
                                                                  note))]
     page = build_report(table, title=cfg["title"], summary={
-        "sessions": len(sess), "newest": ", ".join(sorted(_latest(sess))),
+        "sessions": len(sess), "newest": ", ".join(sorted(latest)),
         "history database": cfg["database"], "drift rules": ", ".join(settings.rules)},
         warnings=warnings, extra_sections=sections)
     atomic_write_text(report, page)
