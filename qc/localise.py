@@ -556,8 +556,8 @@ def localise(images: np.ndarray | Sequence[np.ndarray], affine: np.ndarray,
         if (cu - radii[n] < -0.5 * dx or cv - radii[n] < -0.5 * dy
                 or cu + radii[n] > (shape[0] - 0.5) * dx or cv + radii[n] > (shape[1] - 0.5) * dy):
             outside_fov.append(int(labels_arr[n]))
-        disc_n = np.hypot(ii - cu, jj - cv) <= region_r[n]
-        full_n = np.hypot(ii - cu, jj - cv) <= radii[n]
+        dist = np.hypot(ii - cu, jj - cv)
+        disc_n, full_n = dist <= region_r[n], dist <= radii[n]
         slices = [k for k, rows in rows_on.items() if n in rows]
         fr = []
         for k in slices:
