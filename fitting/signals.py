@@ -134,11 +134,11 @@ def dam_b1(s_alpha: ArrayLike, s_2alpha: ArrayLike, alpha_deg: float) -> np.ndar
     return np.where(s1 > 0, out, np.nan)
 
 
-def mono_exp(te: ArrayLike, t2: ArrayLike, m0: ArrayLike, offset: ArrayLike = 0.0) -> np.ndarray:
-    """Mono-exponential decay S(TE) = M0·e^(−TE/T2) + offset.
+def mono_exp(te: ArrayLike, t2: ArrayLike, m0: ArrayLike, plateau: ArrayLike = 0.0) -> np.ndarray:
+    """Mono-exponential decay S(TE) = M0·e^(−TE/T2) + plateau.
 
     The classic multi-echo spin-echo T2 model (``mese-mono``, optional constant
-    offset) and the T2* model of multi-echo gradient echo (``megre``) with T2 → T2*.
+    plateau) and the T2* model of multi-echo gradient echo (``megre``) with T2 → T2*.
     """
-    te, (t2, m0, offset) = _prep(te, t2, m0, offset)
-    return m0 * np.exp(-te / t2) + offset
+    te, (t2, m0, plateau) = _prep(te, t2, m0, plateau)
+    return m0 * np.exp(-te / t2) + plateau

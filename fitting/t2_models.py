@@ -29,11 +29,12 @@ variants (:func:`configure`).
   the worst case being the longest T2 (0.4 s, approaching T1) at the lowest B1 (0.75).
   Set ``t1_fixed`` near the expected T1 when long T2 and poor refocusing meet.
 
-* ``mese-mono`` — S = M0·e^(−TE/T2) (+ offset, option ``offset``; map suffix
-  ``Offsetmap``, relaxline's name, signal units), optionally without the first echo
-  (option ``drop_first_echo``), which carries no stimulated-echo contribution and so
+* ``mese-mono`` — S = M0·e^(−TE/T2) (+ a constant plateau, option ``plateau``: the level
+  the decay tends to, absorbing a noise floor or a non-decaying component; map suffix
+  ``Plateaumap``, relaxline's name, signal units), optionally without the first N echoes
+  (option ``skip_echoes``). The first echo carries no stimulated-echo contribution and so
   breaks the train's pattern under imperfect refocusing (Milford et al. 2015, PLoS ONE
-  10:e0145255). It overestimates T2 when B1 < 1 (Lebel & Wilman 2010); provided for
+  10:e0145255); ``skip_echoes=1`` leaves it out. It overestimates T2 when B1 < 1 (Lebel & Wilman 2010); provided for
   comparison and for users who need it.
 
 * ``megre`` — T2* and M0 from multi-echo gradient-echo magnitudes, S = M0·e^(−TE/T2*).
@@ -225,40 +226,46 @@ MESE_B1_FIXED = dataclasses.replace(
 
 # --------------------------------------------------------------------------- mese-mono / megre
 def _mono_fixed(meta: Mapping[str, Any], options: Mapping[str, Any]) -> Fixed:
-    return {"drop_first_echo": bool(options.get("drop_first_echo", False))}
+    skip = options.get("skip_echoes")
+    if skip is None:
+        return {"skip_echoes": 0}
+    if isinstance(skip, bool) or not isinstance(skip, (int, np.integer)) or skip < 0:
+        raise RelaxlineError(f"skip_echoes = {skip!r}: the number of leading echoes to leave "
+                             f"out must be a whole number >= 0 (option --skip-echoes).")
+    return {"skip_echoes": int(skip)}
 
 
 def _used(x: np.ndarray, fixed: Fixed) -> np.ndarray:
-    return x[1:] if fixed.get("drop_first_echo") else x
+    return x[int(fixed.get("skip_echoes", 0)):]
 
 
 def _mono_prepare(x: np.ndarray, data: np.ndarray, fixed: Fixed) -> tuple[np.ndarray, Fixed]:
     data = np.abs(data) if np.iscomplexobj(data) else np.asarray(data, float)
-    return (data[:, 1:] if fixed.get("drop_first_echo") else data), fixed
+    return data[:, int(fixed.get("skip_echoes", 0)):], fixed
 
 
 def _mono_signal(x: np.ndarray, p: Params, fixed: Fixed) -> np.ndarray:
     t2 = p["T2"] if "T2" in p else p["T2star"]
-    return mono_exp(_used(x, fixed), t2, p["M0"], p.get("offset", 0.0))
+    return mono_exp(_used(x, fixed), t2, p["M0"], p.get("plateau", 0.0))
 
 
 def _mono_jacobian(x: np.ndarray, p: Params, fixed: Fixed) -> np.ndarray:
-    """d/d(T2, M0[, offset]) of M0·e^(−TE/T2) + offset."""
+    """d/d(T2, M0[, plateau]) of M0·e^(−TE/T2) + plateau."""
     te = _used(x, fixed)[None, :]
     t2 = np.asarray(p["T2"] if "T2" in p else p["T2star"], float)[:, None]
     e = np.exp(-te / t2)
     cols = [np.asarray(p["M0"], float)[:, None] * e * te / t2 ** 2, e]
-    if "offset" in p:
+    if "plateau" in p:
         cols.append(np.ones_like(e))
     return np.stack(cols, axis=-1)
 
 
 def _mono_init(x: np.ndarray, data: np.ndarray, fixed: Fixed, t2_name: str = "T2",
-               offset: bool = False) -> Params:
-    # The offset starts at zero: the log-linear T2 is then a slight overestimate, well
+               plateau: bool = False) -> Params:
+    # The plateau starts at zero: the log-linear T2 is then a slight overestimate, well
     # inside the basin of the fitted minimum.
     t2, m0 = _log_linear(_used(x, fixed), data)
-    return {t2_name: t2, "M0": m0, "offset": np.zeros(data.shape[0])} if offset \
+    return {t2_name: t2, "M0": m0, "plateau": np.zeros(data.shape[0])} if plateau \
         else {t2_name: t2, "M0": m0}
 
 
@@ -288,15 +295,16 @@ MESE_MONO = register(ModelSpec(
     jacobian=_mono_jacobian,
     scale_param="M0",
     primary="T2",
-    description="multi-echo spin echo, mono-exponential T2 (optional offset, first echo dropped)",
+    description="multi-echo spin echo, mono-exponential T2 (optional plateau, leading echoes "
+                "skipped)",
     configure=_configure,
 ))
 
-MESE_MONO_OFFSET = dataclasses.replace(
-    MESE_MONO, params=("T2", "M0", "offset"), units=("s", "arbitrary", "arbitrary"),
+MESE_MONO_PLATEAU = dataclasses.replace(
+    MESE_MONO, params=("T2", "M0", "plateau"), units=("s", "arbitrary", "arbitrary"),
     lower=(T2_LOWER, 0.0, -np.inf), upper=(T2_UPPER, np.inf, np.inf), min_volumes=4,
-    outputs={"T2": "T2map", "M0": "M0map", "offset": "Offsetmap"},
-    init=partial(_mono_init, offset=True),
+    outputs={"T2": "T2map", "M0": "M0map", "plateau": "Plateaumap"},
+    init=partial(_mono_init, plateau=True),
     validate=partial(_mono_validate, n_params=3, name="mese-mono"),
     scale_param=None)
 
@@ -326,16 +334,17 @@ def configure(spec: ModelSpec, options: Mapping[str, Any]) -> ModelSpec:
     """The variant of a T2 model to fit for these options (``ModelSpec.configure``).
 
     ``b1_map`` (a B1 map is given): ``mese`` fits T2 and M0 only, B1 from ``fixed["b1"]``.
-    ``offset``: ``mese-mono`` gains a constant offset parameter. ``drop_first_echo`` is
+    ``plateau``: ``mese-mono`` gains a constant plateau parameter. ``skip_echoes`` is
     read by ``mese-mono``'s ``fixed_from_meta``. The noise model is applied by
     :func:`fitting.spec.configure_model`.
     """
-    for opt, flag in (("offset", "--offset"), ("drop_first_echo", "--drop-first-echo")):
-        if options.get(opt) and spec.name != "mese-mono":
+    for opt, flag in (("plateau", "--plateau"), ("skip_echoes", "--skip-echoes")):
+        if options.get(opt) is not None and options.get(opt) is not False \
+                and spec.name != "mese-mono":
             raise RelaxlineError(f"option {flag} applies to the mese-mono model only, not to "
                                  f"{spec.name}.")
     if spec.name == "mese" and options.get("b1_map"):
         return MESE_B1_FIXED
-    if spec.name == "mese-mono" and options.get("offset"):
-        return MESE_MONO_OFFSET
+    if spec.name == "mese-mono" and options.get("plateau"):
+        return MESE_MONO_PLATEAU
     return spec

@@ -41,8 +41,8 @@ from pipeline.outputs import provenance, write_map
 from pipeline.series import Series, load_grid_map, read_series
 
 # model options of `relaxline fit` -> (flag, models it applies to)
-MODEL_OPTIONS = {"t1_fixed": ("--t1-fixed", ("mese",)), "offset": ("--offset", ("mese-mono",)),
-                 "drop_first_echo": ("--drop-first-echo", ("mese-mono",))}
+MODEL_OPTIONS = {"t1_fixed": ("--t1-fixed", ("mese",)), "plateau": ("--plateau", ("mese-mono",)),
+                 "skip_echoes": ("--skip-echoes", ("mese-mono",))}
 SLAB_VOXELS = 131072           # voxels read and fitted at a time (bounds memory)
 NOISE_SAMPLE_VOXELS = 200_000  # voxels sampled for the background-noise estimate
 STATUS_KEY = "desc-fitstatus_mask"
@@ -261,8 +261,8 @@ def fit_command(model: str, inputs: Sequence[str | Path], out: str | Path,
                 model_options: Mapping[str, Any] | None = None) -> list[Path]:
     """``relaxline fit``: validate everything, fit, then write all maps.
 
-    ``model_options``: model variants and noise model (``t1_fixed``, ``offset``,
-    ``drop_first_echo``, ``noise``; :func:`fitting.spec.configure_model`).
+    ``model_options``: model variants and noise model (``t1_fixed``, ``plateau``,
+    ``skip_echoes``, ``noise``; :func:`fitting.spec.configure_model`).
     """
     from pipeline.progress import Progress
     stream = stream or sys.stderr

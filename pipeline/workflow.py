@@ -46,6 +46,9 @@ RECORDED = "{sub}/{ses}/qc/history.json"
 REPORT, STATUS, DRIFT = "report.html", "status.json", "trend/drift.tsv"
 # models that take a B1 map, with the setting that uses none (or fits it)
 B1_USERS = {"vfa": "none", "mese": "fitted"}
+# model options a `models.<name>` entry may set -> the models they apply to (the same
+# options `relaxline fit` takes; passed to the fit jobs as JSON)
+MODEL_OPTION_KEYS = {"plateau": ("mese-mono",), "skip_echoes": ("mese-mono",)}
 
 
 # ---- config ---------------------------------------------------------------------------
@@ -122,7 +125,17 @@ def validate_config(cfg: dict, source: str = "config") -> dict:
             raise InputError(f"{source}: key `models.{name}.b1` is 'dam' but no `models.dam` "
                              "is configured; add the dam series pattern or set b1 to "
                              f"'{B1_USERS[name]}'.")
+        for key in MODEL_OPTION_KEYS:
+            if key in m and m[key] is not False and name not in MODEL_OPTION_KEYS[key]:
+                raise InputError(f"{source}: key `models.{name}.{key}` applies to "
+                                 f"{', '.join(MODEL_OPTION_KEYS[key])} only; remove it.")
     return out
+
+
+def model_options(cfg: dict, model: str) -> dict:
+    """The model options (as ``relaxline fit`` takes them) set in ``models.<model>``."""
+    m = cfg["models"][model]
+    return {k: m[k] for k in MODEL_OPTION_KEYS if k in m and m[k] is not False}
 
 
 def _fill_defaults(obj: dict, schema: dict) -> None:
@@ -346,13 +359,15 @@ def write_manifest(path: str | Path, files: Sequence[Path], inputs: Sequence[str
 
 def step_fit(model: str, inputs: Sequence[str], out_dir: str, manifest: str,
              b1_manifest: str | None, engine: str, threads: int, time_unit: str,
-             chunks: Sequence[str] = ()) -> None:
-    """Fit one series (or gather its chunk results) and write the manifest last."""
+             chunks: Sequence[str] = (), options: dict | None = None) -> None:
+    """Fit one series (or gather its chunk results) and write the manifest last.
+
+    ``options``: model options from the config (:func:`model_options`)."""
     from pipeline.fitjob import fit_command, prepare, write_fit_outputs
     b1 = b1_map_path(b1_manifest) if b1_manifest else None
     if not chunks:
         files = fit_command(model, inputs, out_dir, b1=b1, engine=engine, jobs=threads,
-                            time_unit=time_unit, show_progress=False)
+                            time_unit=time_unit, show_progress=False, model_options=options)
     else:
         _, series, _ = prepare(model, inputs, time_unit)
         parts = [np.load(c) for c in chunks]
@@ -365,7 +380,8 @@ def step_fit(model: str, inputs: Sequence[str], out_dir: str, manifest: str,
 
 
 def step_chunk(model: str, inputs: Sequence[str], z0: int, z1: int, out: str,
-               b1_manifest: str | None, engine: str, threads: int, time_unit: str) -> None:
+               b1_manifest: str | None, engine: str, threads: int, time_unit: str,
+               options: dict | None = None) -> None:
     """Fit slices z0:z1 of a series into an .npz (noise σ from the whole series)."""
     from pipeline.fitjob import estimate_noise, fit_arrays, prepare
     from pipeline.outputs import atomic_write_bytes
@@ -375,7 +391,8 @@ def step_chunk(model: str, inputs: Sequence[str], z0: int, z1: int, out: str,
     b1 = b1_map_path(b1_manifest) if b1_manifest else None
     b1_arr = load_grid_map(b1, series, what="B1 map") if b1 else None
     options = {"engine": engine, "jobs": int(threads), "time_unit": time_unit, "mask": None,
-               "b1_map": str(b1) if b1 else None, "noise_sigma": estimate_noise(series)}
+               "b1_map": str(b1) if b1 else None, "noise_sigma": estimate_noise(series),
+               **(options or {})}
     arrays = fit_arrays(model, series, None, b1_arr, options, z=slice(z0, z1))
     keys = list(arrays)
     buf = io.BytesIO()
@@ -644,6 +661,9 @@ def fit_command(cfg: dict, plan_: Plan, step: str, wc, input, output, threads: i
             "--time-unit", m.get("time_unit", "s")]
     if input.b1:
         args += ["--b1-manifest", input.b1[0]]
+    opts = model_options(cfg, job.model)
+    if opts:
+        args += ["--options", json.dumps(opts, sort_keys=True)]
     if step == "chunk":
         z0, z1 = job.slabs[int(wc.chunk)]
         args += ["--z", z0, z1, "--out", output[0]]
@@ -676,6 +696,8 @@ def main(argv: Sequence[str] | None = None) -> int:
         p.add_argument("--engine", default="fast")
         p.add_argument("--threads", type=int, default=1)
         p.add_argument("--time-unit", default="s")
+        p.add_argument("--options", type=json.loads, default={},
+                       help="model options as a JSON object (see model_options)")
         p.add_argument("--out", required=True)
         if name == "fit":
             p.add_argument("--manifest", required=True)
@@ -691,10 +713,10 @@ def main(argv: Sequence[str] | None = None) -> int:
     try:
         if a.step == "fit":
             step_fit(a.model, a.inputs, a.out, a.manifest, a.b1_manifest, a.engine, a.threads,
-                     a.time_unit, a.chunks)
+                     a.time_unit, a.chunks, a.options)
         elif a.step == "chunk":
             step_chunk(a.model, a.inputs, a.z[0], a.z[1], a.out, a.b1_manifest, a.engine,
-                       a.threads, a.time_unit)
+                       a.threads, a.time_unit, a.options)
         else:
             settings = json.loads(a.settings)
             if a.step == "qc":

@@ -155,8 +155,10 @@ CASES: dict[str, tuple[Callable[[Kit], list[str]], str]] = {
     "--t1-fixed 0": (lambda k: fit("mese", k.s("MESE"), t1_fixed="0"), "fixed T1 = 0.0 s"),
     "--t1-fixed on ir": (lambda k: fit("ir", k.s("IRT1"), t1_fixed="1"),
                          "option --t1-fixed applies to the mese model only"),
-    "--offset on megre": (lambda k: fit("megre", k.s("MEGRE")) + ["--offset"],
-                          "option --offset applies to the mese-mono model only"),
+    "--plateau on megre": (lambda k: fit("megre", k.s("MEGRE")) + ["--plateau"],
+                           "option --plateau applies to the mese-mono model only"),
+    "--skip-echoes on ir": (lambda k: fit("ir", k.s("IRT1")) + ["--skip-echoes", "1"],
+                            "option --skip-echoes applies to the mese-mono model only"),
     "--b1 on ir": (lambda k: fit("ir", k.s("IRT1"), b1=str(
         k.phantom / "truth_ses-20261101_TB1map.nii.gz")), "the ir model does not use a B1 map"),
     # ---- maps

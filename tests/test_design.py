@@ -23,13 +23,13 @@ def test_crlb_single_exponential_known_amplitude_closed_form():
     spec = get_model("mese-mono")
     te = 0.01 * np.arange(1, 17)
     t2, m0, sigma = np.array([0.03, 0.08, 0.25]), 1.7, 0.02
-    sd = crlb(spec, te, {"T2": t2, "M0": m0}, {"drop_first_echo": False}, sigma,
+    sd = crlb(spec, te, {"T2": t2, "M0": m0}, {"skip_echoes": 0}, sigma,
               free=["T2"])["T2"]
     dsdt = m0 * te[None, :] / t2[:, None] ** 2 * np.exp(-te[None, :] / t2[:, None])
     np.testing.assert_allclose(sd ** 2, sigma ** 2 / np.sum(dsdt ** 2, axis=1), rtol=1e-6)
     # the model used is the project's mono-exponential
     np.testing.assert_allclose(spec.signal(te, {"T2": t2, "M0": np.full(3, m0)},
-                                           {"drop_first_echo": False}),
+                                           {"skip_echoes": 0}),
                                mono_exp(te, t2, m0), rtol=1e-12)
 
 

@@ -145,20 +145,20 @@ def test_fixed_t1_has_small_influence():
     np.testing.assert_allclose(fit_voxels(spec, TE, y, fixed).params["T2"], t2, rtol=1e-6)
 
 
-def test_mese_mono_offset_and_dropped_first_echo_match_curve_fit():
+def test_mese_mono_plateau_and_skipped_first_echo_match_curve_fit():
     rng = np.random.default_rng(4)
     t2 = np.array([0.04, 0.08, 0.2])
     y = 1.5 * np.exp(-TE[None, :] / t2[:, None]) + 0.05
     y = y + rng.normal(0, 0.002, y.shape)
-    spec, fixed = model("mese-mono", offset=True, drop_first_echo=True)
-    assert spec.params == ("T2", "M0", "offset")
+    spec, fixed = model("mese-mono", plateau=True, skip_echoes=1)
+    assert spec.params == ("T2", "M0", "plateau")
     fit = fit_voxels(spec, TE, y, fixed)
     # Independent reference: scipy.optimize.curve_fit of M0·e^(−TE/T2) + c on echoes 2..N
     # (Milford et al. 2015, PLoS ONE 10:e0145255: first echo excluded).
     for i in range(t2.size):
         ref, _ = curve_fit(lambda te, a, m, c: m * np.exp(-te / a) + c, TE[1:], y[i, 1:],
                            p0=[0.1, 1.0, 0.0])
-        np.testing.assert_allclose([fit.params[k][i] for k in ("T2", "M0", "offset")], ref,
+        np.testing.assert_allclose([fit.params[k][i] for k in ("T2", "M0", "plateau")], ref,
                                    rtol=1e-5, atol=1e-7)
 
 
@@ -274,8 +274,9 @@ def test_refocusing_angle_180_and_below_accepted_and_used():
 
 @pytest.mark.parametrize("name,opts,n_ok", [("mese", {}, 4), ("mese", {"b1_map": True}, 3),
                                             ("mese-mono", {}, 3),
-                                            ("mese-mono", {"offset": True}, 4),
-                                            ("mese-mono", {"drop_first_echo": True}, 4),
+                                            ("mese-mono", {"plateau": True}, 4),
+                                            ("mese-mono", {"skip_echoes": 1}, 4),
+                                            ("mese-mono", {"skip_echoes": 2}, 5),
                                             ("megre", {}, 3)])
 def test_fewer_echoes_than_parameters(name, opts, n_ok):
     spec, fixed = model(name, **opts)
@@ -286,9 +287,9 @@ def test_fewer_echoes_than_parameters(name, opts, n_ok):
 
 def test_options_for_the_wrong_model_and_bad_t1():
     with pytest.raises(RelaxlineError, match="mese-mono"):
-        configure_model(get_model("mese"), {"offset": True})
+        configure_model(get_model("mese"), {"plateau": True})
     with pytest.raises(RelaxlineError, match="mese-mono"):
-        configure_model(get_model("megre"), {"drop_first_echo": True})
+        configure_model(get_model("megre"), {"skip_echoes": 1})
     spec, fixed = model("mese", t1_fixed=-1.0)
     with pytest.raises(RelaxlineError, match="t1-fixed"):
         spec.validate(TE, fixed)
@@ -297,7 +298,7 @@ def test_options_for_the_wrong_model_and_bad_t1():
 def test_variants_are_picklable_for_the_process_parallel_lmfit_engine():
     import pickle
     for name, opts in [("mese", {"b1_map": True, "noise": "rician"}), ("megre", {}),
-                       ("mese-mono", {"offset": True, "noise": "rician"})]:
+                       ("mese-mono", {"plateau": True, "noise": "rician"})]:
         spec = configure_model(get_model(name), opts)
         assert pickle.loads(pickle.dumps(spec)).params == spec.params
     rng = np.random.default_rng(9)
@@ -382,7 +383,7 @@ def test_cli_mese_with_b1_map_and_options(mese_series, tmp_path, capsys):
     t2map = _load(out, "sub-01_MESE_T2map.nii.gz")
     assert abs(np.median(t2map[disk] / t2[disk] - 1)) < 0.02
     out = tmp_path / "mono"
-    code, err = _fit_cli(capsys, "mese-mono", path, "--out", out, "--offset", "--drop-first-echo")
+    code, err = _fit_cli(capsys, "mese-mono", path, "--out", out, "--plateau", "--skip-echoes", "1")
     assert code == 0, err
     mono = _load(out, "sub-01_MESE_T2map.nii.gz")
     # Lebel & Wilman 2010: mono-exponential T2 too long where B1 = 0.8
@@ -413,4 +414,6 @@ def test_cli_bad_input(tmp_path, capsys):
     p = write_4d(tmp_path / "c", "few", y[..., :3], "EchoTime", TE[:3])
     expect(["mese", p], "at least")
     p = write_4d(tmp_path / "d", "ok", y, "EchoTime", TE)
-    expect(["mese", p, "--offset"], "mese-mono")
+    expect(["mese", p, "--plateau"], "mese-mono")
+    expect(["mese-mono", p, "--skip-echoes", "-1"], "whole number >= 0")
+    expect(["mese-mono", p, "--skip-echoes", "30"], "at least")

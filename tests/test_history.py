@@ -12,11 +12,11 @@ from fitting.errors import RelaxlineError
 from qc import history
 
 
-def _stats(n_labels: int = 3, offset: float = 0.0, series: str = "IRT1") -> pd.DataFrame:
+def _stats(n_labels: int = 3, shift: float = 0.0, series: str = "IRT1") -> pd.DataFrame:
     return pd.DataFrame({
         "session": "ses-x", "series": series, "map": "T1map",
         "label": np.arange(1, n_labels + 1), "name": [f"v{i}" for i in range(n_labels)],
-        "n_voxels": 20, "mean": 1.0 + offset + 0.1 * np.arange(n_labels), "sd": 0.01,
+        "n_voxels": 20, "mean": 1.0 + shift + 0.1 * np.arange(n_labels), "sd": 0.01,
         "median": 1.0, "iqr": 0.01, "cv_pct": 1.0, "reference": 1.0,
         "reference_at_temperature": 1.01, "bias_pct": 0.0, "tolerance_pct": 5.0,
         "status": "pass"})
@@ -43,7 +43,7 @@ def test_rerun_replaces_rows_no_duplicates(tmp_path):
     history.record_session(db, _stats(3), site="A", scanner="S1", session="1")
     history.record_session(db, _stats(3), site="A", scanner="S1", session="2")
     # rerun of session 1 with one vial fewer and new values: old rows of session 1 go
-    history.record_session(db, _stats(2, offset=0.5), site="A", scanner="S1", session="1")
+    history.record_session(db, _stats(2, shift=0.5), site="A", scanner="S1", session="1")
     h = history.load_history(db)
     assert len(h) == 5
     assert not h.duplicated(list(history.KEY)).any()
@@ -87,7 +87,7 @@ def test_failed_transaction_rolls_back(tmp_path):
     # transaction: the old rows (deleted first inside it) are still there
     db = tmp_path / "h.sqlite"
     history.record_session(db, _stats(), site="A", scanner="S1", session="1")
-    bad = _stats(offset=1.0).astype({"label": object})
+    bad = _stats(shift=1.0).astype({"label": object})
     bad.loc[2, "label"] = None
     with pytest.raises(sqlite3.IntegrityError):
         history.record_session(db, bad, site="A", scanner="S1", session="1")

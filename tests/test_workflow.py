@@ -73,6 +73,10 @@ def test_defaults_filled_and_paths_resolved(tmp_path):
     (lambda c: c["models"].update({"vfa": {"pattern": "*_VFA.nii.gz", "b1": "dam"}}),
      "models.vfa.b1"),                                                        # no dam model
     (lambda c: c.update({"drift": {"rules": ["1-5s"]}}), "drift.rules.0"),
+    (lambda c: c["models"].update({"ir": {"pattern": "x", "skip_echoes": 1}}),
+     "models.ir.skip_echoes"),                                                # wrong model
+    (lambda c: c["models"].update({"mese-mono": {"pattern": "x", "skip_echoes": -1}}),
+     "models.mese-mono.skip_echoes"),
 ])
 def test_bad_config_names_the_key(tmp_path, change, key):
     cfg = _cfg(tmp_path)
@@ -177,6 +181,27 @@ def test_chunked_fit_identical_to_unsplit(sim3, tmp_path):
             (tmp_path / "split" / name).read_bytes(), name
     manifest = json.loads((tmp_path / "m.json").read_text())
     assert sorted(f for f in manifest["files"] if f.endswith(".nii.gz")) == whole
+
+
+def test_model_options_reach_the_fit_job(sim3, tmp_path):
+    """`models.mese-mono.plateau/skip_echoes` give the maps of `relaxline fit --plateau
+    --skip-echoes 1`, through the chunked path too."""
+    anat = sim3 / "sub-relaxlinedemo" / "ses-20261101" / "anat"
+    series = [str(anat / "sub-relaxlinedemo_ses-20261101_MESE.nii.gz")]
+    assert main(["fit", "mese-mono", *series, "--out", str(tmp_path / "cli"), "--plateau",
+                 "--skip-echoes", "1"]) == 0
+    cfg = {"models": {"mese-mono": {"pattern": "x", "plateau": True, "skip_echoes": 1}}}
+    opts = W.model_options(cfg, "mese-mono")
+    assert opts == {"plateau": True, "skip_echoes": 1}
+    c = tmp_path / "chunk-0.npz"
+    W.step_chunk("mese-mono", series, 0, 2, str(c), None, "fast", 1, "s", opts)
+    W.step_fit("mese-mono", series, str(tmp_path / "wf"), str(tmp_path / "m.json"), None,
+               "fast", 1, "s", [str(c)], opts)
+    names = sorted(p.name for p in (tmp_path / "cli").glob("*.nii.gz"))
+    assert any(n.endswith("_Plateaumap.nii.gz") for n in names)
+    assert names == sorted(p.name for p in (tmp_path / "wf").glob("*.nii.gz"))
+    for name in names:
+        assert (tmp_path / "cli" / name).read_bytes() == (tmp_path / "wf" / name).read_bytes()
 
 
 def test_profiles_name_real_rules():

@@ -11,7 +11,7 @@ vfa (variable flip angle: T1, M0; --b1 scales the nominal angles), dam (double
 angle alpha/2alpha: TB1map), mese (CPMG multi-echo spin echo by extended phase graphs:
 T2, M0 and the refocusing scale TB1map, reported folded to <= 1; with --b1 the B1 scale
 comes from the map and only T2 and M0 are fitted; echoes must sit at TE = k*ESP),
-mese-mono (mono-exponential T2, optional --offset and --drop-first-echo) and megre
+mese-mono (mono-exponential T2, optional --plateau and --skip-echoes N) and megre
 (T2* from multi-echo gradient echo magnitudes).
 
 Outputs in --out, named from the input stem: <stem>_T1map.nii.gz (s), _M0map,
@@ -54,10 +54,12 @@ def add_model_arguments(p: argparse.ArgumentParser) -> None:
     g.add_argument("--t1-fixed", type=float, metavar="S",
                    help="mese: T1 (s) of the echo-train model (default 1.0; it only weights "
                         "the stimulated echoes)")
-    g.add_argument("--offset", action="store_true",
-                   help="mese-mono: fit a constant offset as well")
-    g.add_argument("--drop-first-echo", action="store_true",
-                   help="mese-mono: leave out the first echo")
+    g.add_argument("--plateau", action="store_true",
+                   help="mese-mono: also fit a constant signal level the decay tends to "
+                        "(noise floor, non-decaying component); written as _Plateaumap")
+    g.add_argument("--skip-echoes", type=int, metavar="N",
+                   help="mese-mono: leave out the first N echoes (e.g. 1: the first echo "
+                        "carries no stimulated echo and breaks the train's pattern)")
     g.add_argument("--noise", choices=("gaussian", "rician"), default="gaussian",
                    help="rician: fit the Rician expectation of magnitude data given the "
                         "background noise (removes the noise-floor bias at low SNR; needs "
@@ -66,10 +68,10 @@ def add_model_arguments(p: argparse.ArgumentParser) -> None:
 
 def model_options(args: argparse.Namespace) -> dict:
     """The model options given on the command line (only those set)."""
-    out = {"t1_fixed": args.t1_fixed, "offset": args.offset,
-           "drop_first_echo": args.drop_first_echo,
+    out = {"t1_fixed": args.t1_fixed, "plateau": args.plateau,
+           "skip_echoes": args.skip_echoes,
            "noise": args.noise if args.noise != "gaussian" else None}
-    # `is` tests: --t1-fixed 0 must reach validation, not vanish as "== False"
+    # `is` tests: --t1-fixed 0 / --skip-echoes 0 must reach validation, not vanish as "== False"
     return {k: v for k, v in out.items() if v is not None and v is not False}
 
 
