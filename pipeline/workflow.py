@@ -1,7 +1,8 @@
-"""Workflow glue: config, session discovery, job planning and the steps the rules run.
+"""Workflow glue: the steps the rules run and the commands that call them.
 
 The Snakefile (``pipeline/Snakefile`` + ``pipeline/rules/*.smk``) stays thin: it
-validates the config, asks :func:`plan` for the sessions and series, and every rule
+validates the config (:mod:`pipeline.wfconfig`), asks :func:`pipeline.sessions.plan` for
+the sessions and series (both re-exported here for the rules), and every rule
 runs one step of this module as ``python -m pipeline.workflow STEP ...``, so the
 logic lives (and is tested) here.
 
@@ -23,317 +24,25 @@ an interrupted run leaves no partial file under a final name and resumes cleanly
 from __future__ import annotations
 
 import argparse
-import copy
-import fnmatch
 import json
 import os
 import re
 import sys
-from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Sequence
 
 import numpy as np
 
 from pipeline.errors import EXIT_OK, EXIT_QC_FAIL, InputError
+# configuration and discovery live in their own modules; the rules reach them through here
+from pipeline.sessions import CHUNK, MANIFEST, Plan, SeriesJob, Session, plan, slab_bounds  # noqa: F401
+from pipeline.wfconfig import (SCHEMA, load, model_options, read_config,  # noqa: F401
+                               validate_config)
 
-SCHEMA = Path(__file__).with_name("schemas") / "config.schema.yaml"
 SNAKEFILE = Path(__file__).with_name("Snakefile")
-MANIFEST = "{sub}/{ses}/maps/{model}/{stem}.fit.json"
-CHUNK = "{sub}/{ses}/chunks/{model}/{stem}/chunk-{chunk}.npz"
 QC_SUMMARY = "{sub}/{ses}/qc/session.json"
 RECORDED = "{sub}/{ses}/qc/history.json"
 REPORT, STATUS, DRIFT = "report.html", "status.json", "trend/drift.tsv"
-# models that take a B1 map, with the setting that uses none (or fits it)
-B1_USERS = {"vfa": "none", "mese": "fitted"}
-# model options a `models.<name>` entry may set -> the models they apply to (the same
-# options `relaxline fit` takes; passed to the fit jobs as JSON)
-MODEL_OPTION_KEYS = {"plateau": ("mese-mono",), "skip_echoes": ("mese-mono",)}
-
-
-# ---- config ---------------------------------------------------------------------------
-
-def _schema() -> dict:
-    import yaml
-    return yaml.safe_load(SCHEMA.read_text(encoding="utf-8"))
-
-
-def read_config(path: str | Path) -> dict:
-    """Read a YAML config file (errors name the file and line)."""
-    import yaml
-    p = Path(path)
-    if not p.is_file():
-        raise InputError(f"{p}: config file not found; copy sample_config/config.yaml and "
-                         "edit it, or give --config.")
-    try:
-        cfg = yaml.safe_load(p.read_text(encoding="utf-8"))
-    except UnicodeDecodeError:
-        raise InputError(f"{p}: not UTF-8 text; a config is a YAML text file (see "
-                         "sample_config/config.yaml).") from None
-    except yaml.YAMLError as exc:
-        mark = getattr(exc, "problem_mark", None)
-        where = f" (line {mark.line + 1}, column {mark.column + 1})" if mark else ""
-        raise InputError(f"{p}: not valid YAML{where}: {getattr(exc, 'problem', exc)}.") \
-            from None
-    if not isinstance(cfg, dict):
-        raise InputError(f"{p}: expected a mapping of config keys, got {type(cfg).__name__}.")
-    return cfg
-
-
-def _key_path(err) -> str:
-    parts = [str(p) for p in err.absolute_path]
-    return ".".join(parts) if parts else "(top level)"
-
-
-def validate_config(cfg: dict, source: str = "config") -> dict:
-    """Check ``cfg`` against the JSON schema and fill defaults; returns a new dict.
-
-    The first problem becomes an :class:`InputError` naming the key, e.g.
-    ``config.yaml: key `fit.chunk_voxels`: 'many' is not of type 'integer'``.
-    """
-    import jsonschema
-    schema = _schema()
-    validator = jsonschema.Draft202012Validator(schema)
-    errors = sorted(validator.iter_errors(cfg), key=lambda e: (len(e.absolute_path),
-                                                                list(map(str, e.absolute_path))))
-    if errors:
-        e = errors[0]
-        msg = e.message
-        if e.validator == "propertyNames":
-            msg = f"unknown name: {msg}"
-        if e.validator == "required":
-            missing = re.findall(r"'([^']+)' is a required property", msg)
-            key = ".".join([p for p in map(str, e.absolute_path)] + missing[:1])
-            raise InputError(f"{source}: key `{key}` is missing; see "
-                             "sample_config/config.yaml for a documented example.")
-        raise InputError(f"{source}: key `{_key_path(e)}`: {msg}. See "
-                         "sample_config/config.yaml for the allowed values.")
-    out = copy.deepcopy(cfg)
-    _fill_defaults(out, schema)
-    for name, m in out["models"].items():
-        b1 = m.get("b1")
-        if b1 is not None and name not in B1_USERS:
-            raise InputError(f"{source}: key `models.{name}.b1`: the {name} model takes no "
-                             "B1 map (only vfa and mese do); remove the key.")
-        if b1 == "fitted" and name != "mese":
-            raise InputError(f"{source}: key `models.{name}.b1`: 'fitted' applies to mese "
-                             "only; use 'dam' or 'none'.")
-        if b1 == "none" and name == "mese":
-            raise InputError(f"{source}: key `models.mese.b1`: use 'fitted' (B1 fitted from "
-                             "the echoes) or 'dam'.")
-        if b1 == "dam" and "dam" not in out["models"]:
-            raise InputError(f"{source}: key `models.{name}.b1` is 'dam' but no `models.dam` "
-                             "is configured; add the dam series pattern or set b1 to "
-                             f"'{B1_USERS[name]}'.")
-        for key in MODEL_OPTION_KEYS:
-            if key in m and m[key] is not False and name not in MODEL_OPTION_KEYS[key]:
-                raise InputError(f"{source}: key `models.{name}.{key}` applies to "
-                                 f"{', '.join(MODEL_OPTION_KEYS[key])} only; remove it.")
-    return out
-
-
-def model_options(cfg: dict, model: str) -> dict:
-    """The model options (as ``relaxline fit`` takes them) set in ``models.<model>``."""
-    m = cfg["models"][model]
-    return {k: m[k] for k in MODEL_OPTION_KEYS if k in m and m[k] is not False}
-
-
-def _fill_defaults(obj: dict, schema: dict) -> None:
-    for key, sub in schema.get("properties", {}).items():
-        if key not in obj and "default" in sub:
-            obj[key] = copy.deepcopy(sub["default"])
-        if isinstance(obj.get(key), dict) and sub.get("type") == "object":
-            _fill_defaults(obj[key], sub)
-
-
-def resolve_paths(cfg: dict, base: str | Path | None = None) -> dict:
-    """Make the config's paths absolute: relative to ``config_dir`` (or ``base``)."""
-    out = copy.deepcopy(cfg)
-    root = Path(out.get("config_dir") or base or Path.cwd()).resolve()
-    out["config_dir"] = str(root)
-
-    def absolute(p: str, against: Path) -> str:
-        q = Path(p).expanduser()
-        return str(q if q.is_absolute() else (against / q).resolve())
-
-    out["input_dir"] = absolute(out["input_dir"], root)
-    out["output_dir"] = absolute(out["output_dir"], root)
-    ph = out.setdefault("phantom", {})
-    for k in ("reference", "tolerances", "layout"):
-        if ph.get(k):
-            ph[k] = absolute(ph[k], root)
-    hist = out.setdefault("history", {})
-    hist["database"] = absolute(hist.get("database", "history.sqlite"), Path(out["output_dir"]))
-    return out
-
-
-def check_paths(cfg: dict, source: str = "config") -> None:
-    """Paths the config names must exist (before any job runs)."""
-    if not Path(cfg["input_dir"]).is_dir():
-        raise InputError(f"{source}: key `input_dir`: folder {cfg['input_dir']} not found; "
-                         "point it at the tree holding the sub-*/ses-* folders.")
-    for k in ("reference", "tolerances", "layout"):
-        p = cfg.get("phantom", {}).get(k)
-        if p and not Path(p).is_file():
-            raise InputError(f"{source}: key `phantom.{k}`: file {p} not found.")
-    tol = cfg.get("phantom", {}).get("tolerances")
-    if tol:   # tolerances and ranges checked now, not after hours of fitting
-        from fitting.errors import RelaxlineError
-        from qc.tolerance import load_tolerances
-        try:
-            load_tolerances(tol)
-        except RelaxlineError as exc:
-            raise InputError(f"{source}: key `phantom.tolerances`: {exc}") from None
-
-
-def load(path: str | Path | None = None, cfg: dict | None = None) -> dict:
-    """Read (or take), validate, resolve and check a config: what ``run`` and the Snakefile use."""
-    source = str(path) if path is not None else "config"
-    if cfg is None:
-        cfg = read_config(path)
-        cfg.setdefault("config_dir", str(Path(path).resolve().parent))
-    cfg = resolve_paths(validate_config(cfg, source))
-    check_paths(cfg, source)
-    return cfg
-
-
-# ---- discovery ------------------------------------------------------------------------
-
-@dataclass
-class SeriesJob:
-    """One fit: a model on one series of one session."""
-
-    sub: str
-    ses: str
-    model: str
-    stem: str
-    inputs: list[str]
-    shape: tuple[int, int, int]
-    slabs: list[tuple[int, int]]   # z ranges of the chunk jobs; one entry = unchunked
-
-    @property
-    def chunked(self) -> bool:
-        return len(self.slabs) > 1
-
-    def manifest(self) -> str:
-        return MANIFEST.format(sub=self.sub, ses=self.ses, model=self.model, stem=self.stem)
-
-    def chunk_files(self) -> list[str]:
-        return [CHUNK.format(sub=self.sub, ses=self.ses, model=self.model, stem=self.stem,
-                             chunk=i) for i in range(len(self.slabs))] if self.chunked else []
-
-
-@dataclass
-class Session:
-    sub: str
-    ses: str
-    folder: Path
-    site: str
-    scanner: str
-    labels: str | None
-    series: list[SeriesJob] = field(default_factory=list)
-
-    @property
-    def label(self) -> str:
-        """Session label as QC writes it (the ``ses-`` value)."""
-        return self.ses[len("ses-"):] if self.ses.startswith("ses-") else self.ses
-
-
-@dataclass
-class Plan:
-    sessions: list[Session]
-
-    def session(self, sub: str, ses: str) -> Session:
-        for s in self.sessions:
-            if s.sub == sub and s.ses == ses:
-                return s
-        raise KeyError(f"{sub}/{ses}")
-
-    def job(self, sub: str, ses: str, model: str, stem: str) -> SeriesJob:
-        for j in self.session(sub, ses).series:
-            if j.model == model and j.stem == stem:
-                return j
-        raise KeyError(f"{sub}/{ses}/{model}/{stem}")
-
-    def b1_source(self, cfg: dict, job: SeriesJob) -> SeriesJob | None:
-        """The dam fit whose TB1map feeds ``job`` (vfa/mese with ``b1: dam``)."""
-        if cfg["models"][job.model].get("b1") != "dam":
-            return None
-        dams = [j for j in self.session(job.sub, job.ses).series if j.model == "dam"]
-        if len(dams) != 1:
-            raise InputError(f"{self.session(job.sub, job.ses).folder}: models.{job.model}.b1 "
-                             f"is 'dam' but {len(dams)} dam series match "
-                             f"'{cfg['models']['dam']['pattern']}'; make the pattern match "
-                             "exactly one.")
-        return dams[0]
-
-
-def slab_bounds(nz: int, per_slice: int, max_voxels: int) -> list[tuple[int, int]]:
-    """z ranges of whole slices holding at most ``max_voxels`` voxels (≥ 1 slice each)."""
-    step = max(1, max_voxels // max(per_slice, 1))
-    return [(z0, min(z0 + step, nz)) for z0 in range(0, nz, step)]
-
-
-def _series_groups(files: list[Path]) -> dict[str, list[Path]]:
-    # 3D files differing only by an index entity (flip-, echo-, inv-...) are one series;
-    # the series reader names the stem the same way.
-    from pipeline.series import _series_stem, nifti_stem
-    from pipeline.series import _INDEX_ENTITY  # noqa: PLC2701 (same package)
-    groups: dict[str, list[Path]] = {}
-    for f in files:
-        groups.setdefault(_INDEX_ENTITY.sub("", nifti_stem(f)), []).append(f)
-    return {_series_stem(sorted(v)): sorted(v) for v in groups.values()}
-
-
-def _site_scanner(folder: Path, cfg: dict) -> tuple[str, str]:
-    for side in sorted(folder.glob("*.json")):
-        try:
-            meta = json.loads(side.read_text(encoding="utf-8"))
-        except (OSError, ValueError):
-            continue
-        if isinstance(meta, dict) and ("Site" in meta or "Scanner" in meta):
-            return (str(meta.get("Site", cfg["history"]["site"])),
-                    str(meta.get("Scanner", cfg["history"]["scanner"])))
-    return cfg["history"]["site"], cfg["history"]["scanner"]
-
-
-def plan(cfg: dict) -> Plan:
-    """Find the sessions of ``input_dir`` and the fit jobs of each (reads headers only)."""
-    from pipeline.series import _load_image
-    d = cfg["discovery"]
-    root = Path(cfg["input_dir"])
-    only = set(d.get("sessions") or [])
-    sessions = []
-    for sub_dir in sorted(p for p in root.glob(d["subject_glob"]) if p.is_dir()):
-        for ses_dir in sorted(p for p in sub_dir.glob(d["session_glob"]) if p.is_dir()):
-            if only and ses_dir.name not in only:
-                continue
-            folder = ses_dir / d["datatype"]
-            if not folder.is_dir():
-                continue
-            names = sorted(p for p in folder.iterdir() if p.is_file())
-            labels = [p for p in names if fnmatch.fnmatch(p.name, cfg["phantom"]["labels"])]
-            if len(labels) > 1:
-                raise InputError(f"{folder}: {len(labels)} files match the label pattern "
-                                 f"phantom.labels = '{cfg['phantom']['labels']}'; make it "
-                                 "match one.")
-            site, scanner = _site_scanner(folder, cfg)
-            s = Session(sub_dir.name, ses_dir.name, folder, site, scanner,
-                        str(labels[0]) if labels else None)
-            for model, m in cfg["models"].items():
-                files = [p for p in names if fnmatch.fnmatch(p.name, m["pattern"])
-                         and p not in labels and re.search(r"\.nii(\.gz)?$", p.name)]
-                for stem, group in _series_groups(files).items():
-                    shape = tuple(int(v) for v in _load_image(group[0]).shape[:3])
-                    shape = (shape + (1, 1, 1))[:3]
-                    n = shape[0] * shape[1] * shape[2]
-                    slabs = slab_bounds(shape[2], shape[0] * shape[1], cfg["fit"]["chunk_voxels"]) \
-                        if n > cfg["fit"]["chunk_voxels"] else [(0, shape[2])]
-                    s.series.append(SeriesJob(s.sub, s.ses, model, stem,
-                                              [str(p) for p in group], shape, slabs))
-            if s.series:
-                sessions.append(s)
-    return Plan(sessions)
 
 
 # ---- steps run by the rules -------------------------------------------------------------

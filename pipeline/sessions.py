@@ -1,0 +1,155 @@
+"""Session discovery and job planning for the workflow.
+
+:func:`plan` walks ``input_dir`` for ``sub-*/ses-*/<datatype>/`` folders and lists, per
+session, the series each configured model fits (:class:`SeriesJob`, split into z-slab
+chunk jobs when large) and where their outputs go.
+"""
+from __future__ import annotations
+
+import fnmatch
+import json
+import re
+from dataclasses import dataclass, field
+from pathlib import Path
+
+from pipeline.errors import InputError
+
+MANIFEST = "{sub}/{ses}/maps/{model}/{stem}.fit.json"
+CHUNK = "{sub}/{ses}/chunks/{model}/{stem}/chunk-{chunk}.npz"
+
+
+@dataclass
+class SeriesJob:
+    """One fit: a model on one series of one session."""
+
+    sub: str
+    ses: str
+    model: str
+    stem: str
+    inputs: list[str]
+    shape: tuple[int, int, int]
+    slabs: list[tuple[int, int]]   # z ranges of the chunk jobs; one entry = unchunked
+
+    @property
+    def chunked(self) -> bool:
+        return len(self.slabs) > 1
+
+    def manifest(self) -> str:
+        return MANIFEST.format(sub=self.sub, ses=self.ses, model=self.model, stem=self.stem)
+
+    def chunk_files(self) -> list[str]:
+        return [CHUNK.format(sub=self.sub, ses=self.ses, model=self.model, stem=self.stem,
+                             chunk=i) for i in range(len(self.slabs))] if self.chunked else []
+
+
+@dataclass
+class Session:
+    sub: str
+    ses: str
+    folder: Path
+    site: str
+    scanner: str
+    labels: str | None
+    series: list[SeriesJob] = field(default_factory=list)
+
+    @property
+    def label(self) -> str:
+        """Session label as QC writes it (the ``ses-`` value)."""
+        return self.ses[len("ses-"):] if self.ses.startswith("ses-") else self.ses
+
+
+@dataclass
+class Plan:
+    sessions: list[Session]
+
+    def session(self, sub: str, ses: str) -> Session:
+        for s in self.sessions:
+            if s.sub == sub and s.ses == ses:
+                return s
+        raise KeyError(f"{sub}/{ses}")
+
+    def job(self, sub: str, ses: str, model: str, stem: str) -> SeriesJob:
+        for j in self.session(sub, ses).series:
+            if j.model == model and j.stem == stem:
+                return j
+        raise KeyError(f"{sub}/{ses}/{model}/{stem}")
+
+    def b1_source(self, cfg: dict, job: SeriesJob) -> SeriesJob | None:
+        """The dam fit whose TB1map feeds ``job`` (vfa/mese with ``b1: dam``)."""
+        if cfg["models"][job.model].get("b1") != "dam":
+            return None
+        dams = [j for j in self.session(job.sub, job.ses).series if j.model == "dam"]
+        if len(dams) != 1:
+            raise InputError(f"{self.session(job.sub, job.ses).folder}: models.{job.model}.b1 "
+                             f"is 'dam' but {len(dams)} dam series match "
+                             f"'{cfg['models']['dam']['pattern']}'; make the pattern match "
+                             "exactly one.")
+        return dams[0]
+
+
+def slab_bounds(nz: int, per_slice: int, max_voxels: int) -> list[tuple[int, int]]:
+    """z ranges of whole slices holding at most ``max_voxels`` voxels (≥ 1 slice each)."""
+    step = max(1, max_voxels // max(per_slice, 1))
+    return [(z0, min(z0 + step, nz)) for z0 in range(0, nz, step)]
+
+
+def _series_groups(files: list[Path]) -> dict[str, list[Path]]:
+    # 3D files differing only by an index entity (flip-, echo-, inv-...) are one series;
+    # the series reader names the stem the same way.
+    from pipeline.series import _series_stem, nifti_stem
+    from pipeline.series import _INDEX_ENTITY  # noqa: PLC2701 (same package)
+    groups: dict[str, list[Path]] = {}
+    for f in files:
+        groups.setdefault(_INDEX_ENTITY.sub("", nifti_stem(f)), []).append(f)
+    return {_series_stem(sorted(v)): sorted(v) for v in groups.values()}
+
+
+def _site_scanner(folder: Path, cfg: dict) -> tuple[str, str]:
+    for side in sorted(folder.glob("*.json")):
+        try:
+            meta = json.loads(side.read_text(encoding="utf-8"))
+        except (OSError, ValueError):
+            continue
+        if isinstance(meta, dict) and ("Site" in meta or "Scanner" in meta):
+            return (str(meta.get("Site", cfg["history"]["site"])),
+                    str(meta.get("Scanner", cfg["history"]["scanner"])))
+    return cfg["history"]["site"], cfg["history"]["scanner"]
+
+
+def plan(cfg: dict) -> Plan:
+    """Find the sessions of ``input_dir`` and the fit jobs of each (reads headers only)."""
+    from pipeline.series import _load_image
+    d = cfg["discovery"]
+    root = Path(cfg["input_dir"])
+    only = set(d.get("sessions") or [])
+    sessions = []
+    for sub_dir in sorted(p for p in root.glob(d["subject_glob"]) if p.is_dir()):
+        for ses_dir in sorted(p for p in sub_dir.glob(d["session_glob"]) if p.is_dir()):
+            if only and ses_dir.name not in only:
+                continue
+            folder = ses_dir / d["datatype"]
+            if not folder.is_dir():
+                continue
+            names = sorted(p for p in folder.iterdir() if p.is_file())
+            labels = [p for p in names if fnmatch.fnmatch(p.name, cfg["phantom"]["labels"])]
+            if len(labels) > 1:
+                raise InputError(f"{folder}: {len(labels)} files match the label pattern "
+                                 f"phantom.labels = '{cfg['phantom']['labels']}'; make it "
+                                 "match one.")
+            site, scanner = _site_scanner(folder, cfg)
+            s = Session(sub_dir.name, ses_dir.name, folder, site, scanner,
+                        str(labels[0]) if labels else None)
+            for model, m in cfg["models"].items():
+                files = [p for p in names if fnmatch.fnmatch(p.name, m["pattern"])
+                         and p not in labels and re.search(r"\.nii(\.gz)?$", p.name)]
+                for stem, group in _series_groups(files).items():
+                    shape = tuple(int(v) for v in _load_image(group[0]).shape[:3])
+                    shape = (shape + (1, 1, 1))[:3]
+                    n = shape[0] * shape[1] * shape[2]
+                    slabs = slab_bounds(shape[2], shape[0] * shape[1], cfg["fit"]["chunk_voxels"]) \
+                        if n > cfg["fit"]["chunk_voxels"] else [(0, shape[2])]
+                    s.series.append(SeriesJob(s.sub, s.ses, model, stem,
+                                              [str(p) for p in group], shape, slabs))
+            if s.series:
+                sessions.append(s)
+    return Plan(sessions)

@@ -1,0 +1,163 @@
+"""Workflow configuration: read, check against the JSON schema, fill defaults, resolve paths.
+
+What ``relaxline run`` and the Snakefile call before any job runs (:func:`load`); every
+problem is an :class:`~pipeline.errors.InputError` naming the config key.
+"""
+from __future__ import annotations
+
+import copy
+import re
+from pathlib import Path
+
+from pipeline.errors import InputError
+
+SCHEMA = Path(__file__).with_name("schemas") / "config.schema.yaml"
+# models that take a B1 map, with the setting that uses none (or fits it)
+B1_USERS = {"vfa": "none", "mese": "fitted"}
+# model options a `models.<name>` entry may set -> the models they apply to (the same
+# options `relaxline fit` takes; passed to the fit jobs as JSON)
+MODEL_OPTION_KEYS = {"plateau": ("mese-mono",), "skip_echoes": ("mese-mono",)}
+
+
+def _schema() -> dict:
+    import yaml
+    return yaml.safe_load(SCHEMA.read_text(encoding="utf-8"))
+
+
+def read_config(path: str | Path) -> dict:
+    """Read a YAML config file (errors name the file and line)."""
+    import yaml
+    p = Path(path)
+    if not p.is_file():
+        raise InputError(f"{p}: config file not found; copy sample_config/config.yaml and "
+                         "edit it, or give --config.")
+    try:
+        cfg = yaml.safe_load(p.read_text(encoding="utf-8"))
+    except UnicodeDecodeError:
+        raise InputError(f"{p}: not UTF-8 text; a config is a YAML text file (see "
+                         "sample_config/config.yaml).") from None
+    except yaml.YAMLError as exc:
+        mark = getattr(exc, "problem_mark", None)
+        where = f" (line {mark.line + 1}, column {mark.column + 1})" if mark else ""
+        raise InputError(f"{p}: not valid YAML{where}: {getattr(exc, 'problem', exc)}.") \
+            from None
+    if not isinstance(cfg, dict):
+        raise InputError(f"{p}: expected a mapping of config keys, got {type(cfg).__name__}.")
+    return cfg
+
+
+def _key_path(err) -> str:
+    parts = [str(p) for p in err.absolute_path]
+    return ".".join(parts) if parts else "(top level)"
+
+
+def validate_config(cfg: dict, source: str = "config") -> dict:
+    """Check ``cfg`` against the JSON schema and fill defaults; returns a new dict.
+
+    The first problem becomes an :class:`InputError` naming the key, e.g.
+    ``config.yaml: key `fit.chunk_voxels`: 'many' is not of type 'integer'``.
+    """
+    import jsonschema
+    schema = _schema()
+    validator = jsonschema.Draft202012Validator(schema)
+    errors = sorted(validator.iter_errors(cfg), key=lambda e: (len(e.absolute_path),
+                                                                list(map(str, e.absolute_path))))
+    if errors:
+        e = errors[0]
+        msg = e.message
+        if e.validator == "propertyNames":
+            msg = f"unknown name: {msg}"
+        if e.validator == "required":
+            missing = re.findall(r"'([^']+)' is a required property", msg)
+            key = ".".join([p for p in map(str, e.absolute_path)] + missing[:1])
+            raise InputError(f"{source}: key `{key}` is missing; see "
+                             "sample_config/config.yaml for a documented example.")
+        raise InputError(f"{source}: key `{_key_path(e)}`: {msg}. See "
+                         "sample_config/config.yaml for the allowed values.")
+    out = copy.deepcopy(cfg)
+    _fill_defaults(out, schema)
+    for name, m in out["models"].items():
+        b1 = m.get("b1")
+        if b1 is not None and name not in B1_USERS:
+            raise InputError(f"{source}: key `models.{name}.b1`: the {name} model takes no "
+                             "B1 map (only vfa and mese do); remove the key.")
+        if b1 == "fitted" and name != "mese":
+            raise InputError(f"{source}: key `models.{name}.b1`: 'fitted' applies to mese "
+                             "only; use 'dam' or 'none'.")
+        if b1 == "none" and name == "mese":
+            raise InputError(f"{source}: key `models.mese.b1`: use 'fitted' (B1 fitted from "
+                             "the echoes) or 'dam'.")
+        if b1 == "dam" and "dam" not in out["models"]:
+            raise InputError(f"{source}: key `models.{name}.b1` is 'dam' but no `models.dam` "
+                             "is configured; add the dam series pattern or set b1 to "
+                             f"'{B1_USERS[name]}'.")
+        for key in MODEL_OPTION_KEYS:
+            if key in m and m[key] is not False and name not in MODEL_OPTION_KEYS[key]:
+                raise InputError(f"{source}: key `models.{name}.{key}` applies to "
+                                 f"{', '.join(MODEL_OPTION_KEYS[key])} only; remove it.")
+    return out
+
+
+def model_options(cfg: dict, model: str) -> dict:
+    """The model options (as ``relaxline fit`` takes them) set in ``models.<model>``."""
+    m = cfg["models"][model]
+    return {k: m[k] for k in MODEL_OPTION_KEYS if k in m and m[k] is not False}
+
+
+def _fill_defaults(obj: dict, schema: dict) -> None:
+    for key, sub in schema.get("properties", {}).items():
+        if key not in obj and "default" in sub:
+            obj[key] = copy.deepcopy(sub["default"])
+        if isinstance(obj.get(key), dict) and sub.get("type") == "object":
+            _fill_defaults(obj[key], sub)
+
+
+def resolve_paths(cfg: dict, base: str | Path | None = None) -> dict:
+    """Make the config's paths absolute: relative to ``config_dir`` (or ``base``)."""
+    out = copy.deepcopy(cfg)
+    root = Path(out.get("config_dir") or base or Path.cwd()).resolve()
+    out["config_dir"] = str(root)
+
+    def absolute(p: str, against: Path) -> str:
+        q = Path(p).expanduser()
+        return str(q if q.is_absolute() else (against / q).resolve())
+
+    out["input_dir"] = absolute(out["input_dir"], root)
+    out["output_dir"] = absolute(out["output_dir"], root)
+    ph = out.setdefault("phantom", {})
+    for k in ("reference", "tolerances", "layout"):
+        if ph.get(k):
+            ph[k] = absolute(ph[k], root)
+    hist = out.setdefault("history", {})
+    hist["database"] = absolute(hist.get("database", "history.sqlite"), Path(out["output_dir"]))
+    return out
+
+
+def check_paths(cfg: dict, source: str = "config") -> None:
+    """Paths the config names must exist (before any job runs)."""
+    if not Path(cfg["input_dir"]).is_dir():
+        raise InputError(f"{source}: key `input_dir`: folder {cfg['input_dir']} not found; "
+                         "point it at the tree holding the sub-*/ses-* folders.")
+    for k in ("reference", "tolerances", "layout"):
+        p = cfg.get("phantom", {}).get(k)
+        if p and not Path(p).is_file():
+            raise InputError(f"{source}: key `phantom.{k}`: file {p} not found.")
+    tol = cfg.get("phantom", {}).get("tolerances")
+    if tol:   # tolerances and ranges checked now, not after hours of fitting
+        from fitting.errors import RelaxlineError
+        from qc.tolerance import load_tolerances
+        try:
+            load_tolerances(tol)
+        except RelaxlineError as exc:
+            raise InputError(f"{source}: key `phantom.tolerances`: {exc}") from None
+
+
+def load(path: str | Path | None = None, cfg: dict | None = None) -> dict:
+    """Read (or take), validate, resolve and check a config: what ``run`` and the Snakefile use."""
+    source = str(path) if path is not None else "config"
+    if cfg is None:
+        cfg = read_config(path)
+        cfg.setdefault("config_dir", str(Path(path).resolve().parent))
+    cfg = resolve_paths(validate_config(cfg, source))
+    check_paths(cfg, source)
+    return cfg
