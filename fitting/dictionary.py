@@ -143,7 +143,54 @@ class EpgDictionary:
                 progress(r.size)
 
 
-@lru_cache(maxsize=8)
+# Per-voxel T1 (a T1 map): voxels are matched in the dictionary of the nearest T1 node,
+# nodes spaced by a factor √2 (so a voxel's T1 is within 19 % of its node's); the engine's
+# refinement then uses each voxel's own T1. T1 only weights the stimulated-echo pathways,
+# so a node's start lies in the basin of the voxel's minimum (tests/test_t1_map.py).
+T1_NODE_RANGE_S = (0.02, 12.0)
+T1_NODE_FACTOR = np.sqrt(2.0)
+
+
+def t1_nodes() -> np.ndarray:
+    """The T1 nodes (s) of per-voxel T1 matching (module constants)."""
+    lo, hi = T1_NODE_RANGE_S
+    n = int(np.ceil(np.log(hi / lo) / np.log(T1_NODE_FACTOR))) + 1
+    return lo * T1_NODE_FACTOR ** np.arange(n)
+
+
+def nearest_t1_node(t1: np.ndarray) -> np.ndarray:
+    """Index of the nearest node (in log T1) for each T1 value (clipped to the node range)."""
+    nodes = t1_nodes()
+    k = np.round(np.log(np.asarray(t1, float) / nodes[0]) / np.log(T1_NODE_FACTOR))
+    return np.clip(np.nan_to_num(k, nan=0.0), 0, nodes.size - 1).astype(int)
+
+
+def match_protocol(data: np.ndarray, n_echoes: int, esp: float, refocus_deg: float,
+                   t1, excite_deg: float, b1: np.ndarray | None = None) -> MatchResult:
+    """Dictionary match of ``data`` (N, n_echoes) for one protocol.
+
+    ``t1`` is a scalar (one dictionary at that T1) or (N,) per voxel: each voxel is then
+    matched in the dictionary of its nearest T1 node (:func:`t1_nodes`). ``b1`` as in
+    :meth:`EpgDictionary.match`.
+    """
+    t1 = np.asarray(t1, float)
+    if t1.ndim == 0:
+        return get_dictionary(n_echoes, esp, refocus_deg, float(t1), excite_deg).match(data, b1=b1)
+    n = data.shape[0]
+    t1 = np.broadcast_to(t1.reshape(-1), (n,))
+    node = nearest_t1_node(t1)
+    nodes = t1_nodes()
+    out = {k: np.full(n, np.nan) for k in ("t2", "b1", "m0", "score")}
+    for k in np.unique(node):
+        rows = np.flatnonzero(node == k)
+        d = get_dictionary(n_echoes, esp, refocus_deg, float(nodes[k]), excite_deg)
+        r = d.match(data[rows], b1=None if b1 is None else np.asarray(b1).reshape(-1)[rows])
+        for name in out:
+            out[name][rows] = getattr(r, name)
+    return MatchResult(**out)
+
+
+@lru_cache(maxsize=32)
 def get_dictionary(n_echoes: int, esp: float, refocus_deg: float = 180.0, t1: float = 1.0,
                    excite_deg: float = 90.0) -> EpgDictionary:
     """The default-grid dictionary for one protocol, built once per process (cached)."""

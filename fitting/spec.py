@@ -14,6 +14,11 @@ Conventions
 * ``fixed`` is a dict of constants. Scalars (and tuples) are global; the names in
   ``voxel_fixed`` hold (N,) arrays, one value per voxel (for example a B1 map), and
   engines subset them together with the data.
+* Per-voxel T1 (``--t1-map``): a model that can use a T1 map returns, from its
+  ``configure`` with option ``t1_map`` set, a variant that lists ``"t1"`` in
+  ``voxel_fixed`` (:func:`per_voxel` adds it); the pipeline then delivers the map as
+  ``fixed["t1"]``, (N,) seconds. :func:`configure_model` refuses ``t1_map`` for a model
+  whose configured variant does not list ``"t1"``.
 * ``init(x, data, fixed)`` returns a dict ``name -> (N,)`` of starting values inside
   the bounds, computed without Python loops over voxels.
 
@@ -27,6 +32,7 @@ there plus its module.
 """
 from __future__ import annotations
 
+import dataclasses
 import importlib
 from dataclasses import dataclass, field
 from typing import Any, Callable, Mapping
@@ -171,12 +177,28 @@ def subset_fixed(spec: ModelSpec, fixed: Fixed, idx) -> Fixed:
     return out
 
 
+def per_voxel(spec: ModelSpec, name: str) -> ModelSpec:
+    """``spec`` with the constant ``fixed[name]`` given per voxel (added to ``voxel_fixed``)."""
+    if name in spec.voxel_fixed:
+        return spec
+    return dataclasses.replace(spec, voxel_fixed=tuple(spec.voxel_fixed) + (name,))
+
+
 def configure_model(spec: ModelSpec, options: Mapping[str, Any]) -> ModelSpec:
     """The spec to fit for the user's ``options``: the model's own variant
     (``spec.configure``), then ``options["noise"] == "rician"`` wraps the forward signal in
-    the Rician expectation given ``fixed["sigma"]`` (:func:`fitting.noise.rician_spec`)."""
+    the Rician expectation given ``fixed["sigma"]`` (:func:`fitting.noise.rician_spec`).
+
+    ``options["t1_map"]`` (a per-voxel T1 is given) is refused unless the configured
+    variant lists ``"t1"`` in ``voxel_fixed`` (module docstring).
+    """
+    name = spec.name
     if spec.configure is not None:
         spec = spec.configure(spec, options)
+    if options.get("t1_map") and "t1" not in spec.voxel_fixed:
+        raise RelaxlineError(f"the {name} model does not use a T1 map (option --t1-map "
+                             f"applies to: {', '.join(t1_map_models()) or 'none'}); leave "
+                             f"it out.")
     noise = options.get("noise") or "gaussian"
     if noise == "rician":
         from fitting.noise import rician_spec  # noise imports this module
@@ -184,6 +206,19 @@ def configure_model(spec: ModelSpec, options: Mapping[str, Any]) -> ModelSpec:
     elif noise != "gaussian":
         raise RelaxlineError(f"unknown noise model {noise!r}; choose gaussian or rician.")
     return spec
+
+
+def t1_map_models() -> list[str]:
+    """Names of the registered models that take a per-voxel T1 (``t1_map``)."""
+    _load_all()
+    out = []
+    for m in MODELS.values():
+        try:
+            if m.configure is not None and "t1" in m.configure(m, {"t1_map": "-"}).voxel_fixed:
+                out.append(m.name)
+        except RelaxlineError:
+            pass
+    return sorted(out)
 
 
 def register(spec: ModelSpec) -> ModelSpec:

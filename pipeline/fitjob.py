@@ -39,6 +39,7 @@ from fitting.voxelwise import ENGINES, fit_voxels
 from pipeline.errors import InputError, RelaxlineError
 from pipeline.outputs import provenance, write_map
 from pipeline.series import Series, load_grid_map, read_series
+from pipeline.t1map import check_t1_map_model, gap_note, load_t1_map, t1_values
 
 # model options of `relaxline fit` -> (flag, models it applies to)
 MODEL_OPTIONS = {"t1_fixed": ("--t1-fixed", ("mese",)), "plateau": ("--plateau", ("mese-mono",)),
@@ -46,6 +47,15 @@ MODEL_OPTIONS = {"t1_fixed": ("--t1-fixed", ("mese",)), "plateau": ("--plateau",
 SLAB_VOXELS = 131072           # voxels read and fitted at a time (bounds memory)
 NOISE_SAMPLE_VOXELS = 200_000  # voxels sampled for the background-noise estimate
 STATUS_KEY = "desc-fitstatus_mask"
+
+
+def check_model_options(model: str, options: Mapping[str, Any]) -> None:
+    """Refuse a model option (:data:`MODEL_OPTIONS`) given for a model it does not apply to."""
+    for opt, (flag, models) in MODEL_OPTIONS.items():
+        if options.get(opt) is not None and options.get(opt) is not False \
+                and model not in models:
+            raise InputError(f"option {flag} applies to the {', '.join(models)} model only, "
+                             f"not to {model}; leave it out.")
 
 
 def _spec(model: str | ModelSpec) -> ModelSpec:
@@ -117,16 +127,43 @@ def output_keys(spec: ModelSpec) -> list[str]:
     return keys
 
 
+def _selected(flat: np.ndarray, mask_slab: np.ndarray | None, threshold: float) -> np.ndarray:
+    """Voxels of a slab (rows of ``flat``) to fit: the mask, else those above the noise."""
+    if mask_slab is not None:
+        return (mask_slab != 0).reshape(-1)
+    if not threshold > 0:
+        return np.ones(flat.shape[0], bool)
+    with np.errstate(invalid="ignore"):
+        vmax = np.max(np.abs(flat), axis=1)
+    return ~(vmax < threshold)   # below-threshold background is OUTSIDE; NaN kept (BAD_DATA)
+
+
+def fitted_region(series: Series, mask: np.ndarray | None, sigma: float | None) -> np.ndarray:
+    """Boolean grid of the voxels :func:`fit_arrays` fits (reads the series without a mask)."""
+    if mask is not None:
+        return np.asarray(mask) != 0
+    out = np.ones(series.shape, bool)
+    if sigma is None:
+        return out
+    threshold = rayleigh_max_threshold(sigma, series.n_volumes)
+    for zs in series.slabs(SLAB_VOXELS):
+        block = series.read(zs)
+        out[:, :, zs] = _selected(block.reshape(-1, series.n_volumes), None,
+                                  threshold).reshape(block.shape[:3])
+    return out
+
+
 def fit_arrays(model: str | ModelSpec, series: Series, mask: np.ndarray | None = None,
                b1: np.ndarray | None = None, options: Mapping[str, Any] | None = None,
-               z: slice | None = None, progress: Callable[[int], None] | None = None
-               ) -> dict[str, np.ndarray]:
+               z: slice | None = None, progress: Callable[[int], None] | None = None,
+               t1: np.ndarray | None = None) -> dict[str, np.ndarray]:
     """Fit the slices ``z`` (default all) of ``series``; maps shaped (x, y, nz).
 
-    ``mask`` and ``b1`` are full-volume arrays on the series grid (or None).
-    ``options``: ``engine`` ("fast"), ``jobs`` (1), ``noise_sigma`` (float, None for
-    residual-based errors, or absent to estimate it here over the whole series —
-    chunked jobs should pass one value so all chunks agree).
+    ``mask``, ``b1`` and ``t1`` (a T1 map, s) are full-volume arrays on the series grid
+    (or None). ``options``: ``engine`` ("fast"), ``jobs`` (1), ``noise_sigma`` (float,
+    None for residual-based errors, or absent to estimate it here over the whole series —
+    chunked jobs should pass one value so all chunks agree), ``t1_map`` (the T1 map's
+    path, for messages) and ``t1_fixed`` (T1 used in the map's gaps; :mod:`pipeline.t1map`).
     Returns ``{key: array}`` with keys from :func:`output_keys`.
     """
     options = dict(options or {})
@@ -154,18 +191,18 @@ def fit_arrays(model: str | ModelSpec, series: Series, mask: np.ndarray | None =
         block = series.read(zs)
         oz = slice(zs.start - zr.start, zs.stop - zr.start)
         flat = block.reshape(-1, n)
-        if mask is not None:
-            sel = (mask[:, :, zs] != 0).reshape(-1)
-        else:
-            with np.errstate(invalid="ignore"):
-                vmax = np.max(np.abs(flat), axis=1)
-            # below-threshold background is OUTSIDE; NaN voxels are kept (-> BAD_DATA)
-            sel = ~(vmax < threshold) if threshold > 0 else np.ones(flat.shape[0], bool)
+        sel = _selected(flat, None if mask is None else mask[:, :, zs], threshold)
         idx = np.flatnonzero(sel)
         fx = dict(fixed)
         if b1 is not None and "b1" in spec.voxel_fixed:  # ratio map; <= 0 is invalid
             bv = b1[:, :, zs].reshape(-1)[idx].astype(float)
             fx["b1"] = np.where(bv > 0, bv, np.nan)
+        if "t1" in spec.voxel_fixed:
+            if t1 is None:
+                raise ValueError(f"{spec.name} was configured for a T1 map but none was given")
+            coords = np.column_stack(np.unravel_index(idx, block.shape[:3])) + [0, 0, zs.start]
+            fx["t1"], _ = t1_values(t1[:, :, zs].reshape(-1)[idx], coords,
+                                    str(options.get("t1_map")), options.get("t1_fixed"))
         res = fit_voxels(spec, x, flat[idx], fx, engine=engine, jobs=jobs, noise_sigma=sigma,
                          progress=progress)
         if progress is not None and flat.shape[0] > idx.size:
@@ -188,12 +225,13 @@ def _put(target: np.ndarray, oz: slice, slab_shape, idx: np.ndarray, values: np.
 
 
 def write_fit_outputs(arrays: Mapping[str, np.ndarray], series: Series, out_dir: str | Path,
-                      model: str | ModelSpec, engine: str, options: Mapping[str, Any]
-                      ) -> list[Path]:
+                      model: str | ModelSpec, engine: str, options: Mapping[str, Any],
+                      notes: Sequence[str] = ()) -> list[Path]:
     """Write every map of ``arrays`` (whole volume) with its JSON sidecar; returns paths.
 
     ``model`` and ``options`` as given to :func:`fit_arrays` (the spec is configured the
-    same way, so the keys match).
+    same way, so the keys match). ``notes``: warnings about the fit every map's sidecar
+    carries under ``Warnings`` (``relaxline qc`` shows them in its report).
     """
     spec = configure_model(_spec(model), options)
     prov = provenance(spec.name, engine, dict(options), series)
@@ -206,7 +244,7 @@ def write_fit_outputs(arrays: Mapping[str, np.ndarray], series: Series, out_dir:
                              f"{series.shape}")
         desc, suffix = (key.split("_", 1)[0][5:], key.split("_", 1)[1]) \
             if key.startswith("desc-") else (None, key)
-        extra: dict[str, Any] = {}
+        extra: dict[str, Any] = {"Warnings": list(notes)} if notes else {}
         if desc == "fitstatus":
             u = "code"
             extra["StatusCodes"] = {str(c): name for c, name in st.NAMES.items()}
@@ -258,11 +296,14 @@ def fit_command(model: str, inputs: Sequence[str | Path], out: str | Path,
                 mask: str | Path | None = None, b1: str | Path | None = None,
                 engine: str = "fast", jobs: int = 1, time_unit: str = "s",
                 stream: TextIO | None = None, show_progress: bool = True,
-                model_options: Mapping[str, Any] | None = None) -> list[Path]:
+                model_options: Mapping[str, Any] | None = None,
+                t1_map: str | Path | None = None) -> list[Path]:
     """``relaxline fit``: validate everything, fit, then write all maps.
 
     ``model_options``: model variants and noise model (``t1_fixed``, ``plateau``,
-    ``skip_echoes``, ``noise``; :func:`fitting.spec.configure_model`).
+    ``skip_echoes``, ``noise``; :func:`fitting.spec.configure_model`). ``t1_map``: a
+    per-voxel T1 map (s) for the models that use one (:mod:`pipeline.t1map`); with it,
+    ``t1_fixed`` is the T1 used where the map has no value.
     """
     from pipeline.progress import Progress
     stream = stream or sys.stderr
@@ -271,12 +312,11 @@ def fit_command(model: str, inputs: Sequence[str | Path], out: str | Path,
     if int(jobs) < 1:
         raise InputError(f"--jobs must be at least 1, got {jobs}.")
     extra = dict(model_options or {})
-    for opt, (flag, models) in MODEL_OPTIONS.items():
-        if extra.get(opt) is not None and extra.get(opt) is not False and model not in models:
-            raise InputError(f"option {flag} applies to the {', '.join(models)} model only, "
-                             f"not to {model}; leave it out.")
+    check_model_options(model, extra)
     spec, series, fixed = prepare(model, inputs, time_unit)
-    spec = configure_model(spec, {**extra, "b1_map": str(b1) if b1 else None})
+    check_t1_map_model(spec, t1_map)
+    maps = {"b1_map": str(b1) if b1 else None, "t1_map": str(t1_map) if t1_map else None}
+    spec = configure_model(spec, {**extra, **maps})
     acquisition(spec, series, extra)          # validate the options before any reading
     mask_arr = load_grid_map(mask, series, what="mask") if mask else None
     if mask_arr is not None:
@@ -285,12 +325,15 @@ def fit_command(model: str, inputs: Sequence[str | Path], out: str | Path,
             raise InputError(f"--mask {mask}: the mask has no non-zero voxel, so nothing would "
                              f"be fitted; give a mask that is non-zero where to fit.")
     b1_arr = load_b1(spec, series, b1, stream)
+    t1_arr = load_t1_map(spec, series, t1_map)
     sigma = estimate_noise(series)
+    if t1_arr is not None and extra.get("t1_fixed") is None:   # gaps are errors: find them now
+        region = fitted_region(series, mask_arr, sigma)
+        t1_values(t1_arr[region], np.argwhere(region), str(t1_map), None)
     options = {"engine": engine, "jobs": int(jobs), "time_unit": time_unit,
-               "mask": str(mask) if mask else None, "b1_map": str(b1) if b1 else None,
-               "noise_sigma": sigma, **extra}
+               "mask": str(mask) if mask else None, **maps, "noise_sigma": sigma, **extra}
     prog = Progress(series.n_voxels, f"fit {spec.name}", stream=stream, enabled=show_progress)
-    arrays = fit_arrays(model, series, mask_arr, b1_arr, options, progress=prog)
+    arrays = fit_arrays(model, series, mask_arr, b1_arr, options, progress=prog, t1=t1_arr)
     counts = np.bincount(arrays[STATUS_KEY].ravel(), minlength=max(st.NAMES) + 1)
     summary = ", ".join(f"{st.NAMES[c]}: {int(counts[c])}" for c in sorted(st.NAMES)
                         if counts[c])
@@ -300,4 +343,19 @@ def fit_command(model: str, inputs: Sequence[str | Path], out: str | Path,
         print(f"relaxline fit: warning: {', '.join(map(str, series.paths))}: every fitted "
               f"voxel holds non-finite or all-zero data, so the maps hold only NaN; check "
               f"that these are the right images.", file=stream)
-    return write_fit_outputs(arrays, series, out, model, engine, options)
+    notes = fit_notes(arrays, options, t1_arr)
+    for note in notes:
+        print(f"relaxline fit: warning: {note}.", file=stream)
+    return write_fit_outputs(arrays, series, out, model, engine, options, notes)
+
+
+def fit_notes(arrays: Mapping[str, np.ndarray], options: Mapping[str, Any],
+              t1: np.ndarray | None = None) -> list[str]:
+    """Warnings about a finished fit for the console and the map sidecars."""
+    notes = []
+    if t1 is not None:
+        fitted = arrays[STATUS_KEY] != st.OUTSIDE
+        note = gap_note(t1, fitted, str(options.get("t1_map")), options.get("t1_fixed"))
+        if note:
+            notes.append(note)
+    return notes

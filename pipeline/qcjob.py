@@ -248,6 +248,9 @@ def compute(maps: list[MapFile], label_source: LabelSource, reference=None, tole
         for mf in group:
             if mf.suffix not in QC_MAPS:
                 continue
+            # warnings the fit wrote into the map sidecars (same on every map of a series)
+            warnings += [f"{stem}: {w}" for w in mf.sidecar.get("Warnings") or []
+                         if isinstance(w, str)]
             labels = label_source(mf)
             if erode_mm > 0:
                 labels = erode_labels(labels, erode_mm, mf.voxel_size)

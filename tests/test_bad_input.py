@@ -178,6 +178,16 @@ CASES: dict[str, tuple[Callable[[Kit], list[str]], str]] = {
         "b.nii.gz: the B1 map holds no positive finite value"),
     "B1 in percent": (lambda k: fit("vfa", k.s("VFA"), b1=k.image(
         "b.nii.gz", np.full(k.grid()[0], 100.0, np.float32))), "looks like a percent map"),
+    "--t1-map on ir": (lambda k: fit("ir", k.s("IRT1"), t1_map=k.image(
+        "t.nii.gz", np.ones(k.grid()[0], np.float32))), "the ir model does not use a T1 map"),
+    "T1 map off grid": (lambda k: fit("mese", k.s("MESE"), t1_map=k.image(
+        "t.nii.gz", np.ones((5, 5, 1), np.float32))), "t.nii.gz: T1 map has grid (5, 5, 1)"),
+    "T1 map zeros in region": (lambda k: fit("mese", k.s("MESE"), t1_map=k.image(
+        "t.nii.gz", np.where(np.arange(48)[:, None, None] < 24, 1.0, 0.0) * np.ones(
+            k.grid()[0], np.float32), like="MESE")),
+        "t.nii.gz: the T1 map has no value (NaN or 0) in"),
+    "T1 map in ms": (lambda k: fit("mese", k.s("MESE"), t1_map=k.image(
+        "t.nii.gz", np.full(k.grid()[0], 800.0, np.float32))), "looks like milliseconds"),
     # ---- output folder
     "--out is a file": (lambda k: ["fit", "megre", k.s("MEGRE"), "--out",
                                    k.file("o.txt", "keep me")], "o.txt: exists and is not a folder"),

@@ -10,7 +10,8 @@ Models: ir (inversion recovery: T1, M0, inversion efficiency; magnitude or compl
 vfa (variable flip angle: T1, M0; --b1 scales the nominal angles), dam (double
 angle alpha/2alpha: TB1map), mese (CPMG multi-echo spin echo by extended phase graphs:
 T2, M0 and the refocusing scale TB1map, reported folded to <= 1; with --b1 the B1 scale
-comes from the map and only T2 and M0 are fitted; echoes must sit at TE = k*ESP),
+comes from the map and only T2 and M0 are fitted; with --t1-map each voxel's T1 comes
+from a T1 map, e.g. from `relaxline fit ir`; echoes must sit at TE = k*ESP),
 mese-mono (mono-exponential T2, optional --plateau and --skip-echoes N) and megre
 (T2* from multi-echo gradient echo magnitudes).
 
@@ -33,6 +34,15 @@ def add_series_arguments(p: argparse.ArgumentParser) -> None:
     p.add_argument("--b1", metavar="F",
                    help="B1 map (actual/nominal flip-angle ratio) on the series grid "
                         "(vfa; mese: B1 then fixed from the map)")
+    p.add_argument("--t1-map", metavar="F",
+                   help="T1 map in seconds on the series grid: each voxel's own T1 for the "
+                        "models that use one (mese). Inside the fitted region it must hold "
+                        "T1 > 0 everywhere, unless --t1-fixed gives the T1 used where the map "
+                        "has no value (NaN or 0)")
+    p.add_argument("--t1-fixed", type=float, metavar="S",
+                   help="mese: T1 (s) of the echo-train model (default 1.0; it only weights "
+                        "the stimulated echoes); with --t1-map, the T1 used where the map "
+                        "has no value")
     p.add_argument("--time-unit", choices=("s", "ms"), default="s",
                    help="unit of the times in the sidecars (BIDS: s)")
 
@@ -51,9 +61,6 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
 def add_model_arguments(p: argparse.ArgumentParser) -> None:
     """Model options: T2 model variants and the noise model."""
     g = p.add_argument_group("model options")
-    g.add_argument("--t1-fixed", type=float, metavar="S",
-                   help="mese: T1 (s) of the echo-train model (default 1.0; it only weights "
-                        "the stimulated echoes)")
     g.add_argument("--plateau", action="store_true",
                    help="mese-mono: also fit a constant signal level the decay tends to "
                         "(noise floor, non-decaying component); written as _Plateaumap")
@@ -79,6 +86,6 @@ def run(args: argparse.Namespace) -> int:
     from pipeline.fitjob import fit_command
     paths = fit_command(args.model, args.inputs, args.out, mask=args.mask, b1=args.b1,
                         engine=args.engine, jobs=args.jobs, time_unit=args.time_unit,
-                        model_options=model_options(args))
+                        model_options=model_options(args), t1_map=args.t1_map)
     print(f"relaxline fit: wrote {len(paths)} maps to {args.out}")
     return 0

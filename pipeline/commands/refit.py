@@ -295,15 +295,22 @@ def run(args: argparse.Namespace) -> int:
 
     from fitting.region import DELTA_CLEAR, DELTA_STRONG, REDCHI_P_WARN, alternatives, \
         fit_region
-    from fitting.spec import configure_model
-    from pipeline.fitjob import acquisition, estimate_noise, load_b1, prepare
+    from fitting.spec import configure_model, t1_map_models
+    from pipeline.fitjob import acquisition, check_model_options, estimate_noise, load_b1, \
+        prepare
+    from pipeline.t1map import check_t1_map_model, load_t1_map, t1_values
     from pipeline.outputs import atomic_write_bytes
 
     spec, series, _ = prepare(args.model, args.inputs, args.time_unit)
-    options = {"b1_map": str(args.b1) if args.b1 else None, "noise": args.noise}
+    options = {"b1_map": str(args.b1) if args.b1 else None, "noise": args.noise,
+               "t1_map": str(args.t1_map) if args.t1_map else None,
+               "t1_fixed": args.t1_fixed}
+    check_model_options(args.model, options)
+    check_t1_map_model(spec, args.t1_map)
     spec = configure_model(spec, options)
     fixed = acquisition(spec, series, options)
     b1_arr = load_b1(spec, series, args.b1, sys.stderr, command="refit")
+    t1_arr = load_t1_map(spec, series, args.t1_map)
     sel, region = select_region(args, series)
     data, z = read_region(series, sel)
     sigma = estimate_noise(series)
@@ -311,6 +318,13 @@ def run(args: argparse.Namespace) -> int:
     if b1_arr is not None:
         bv = b1_arr[:, :, z][sel[:, :, z]].astype(float)
         per_voxel["b1"] = np.where(bv > 0, bv, np.nan)
+    if t1_arr is not None:
+        per_voxel["t1"], gaps = t1_values(t1_arr[sel], np.argwhere(sel), str(args.t1_map),
+                                          args.t1_fixed)
+        if gaps:
+            print(f"relaxline refit: warning: the T1 map {args.t1_map} has no value in {gaps} "
+                  f"voxel(s) of the region; T1 = {args.t1_fixed:g} s (--t1-fixed) used there.",
+                  file=sys.stderr)
     if args.noise == "rician":
         if sigma is None:
             raise InputError(f"{series.paths[0]}: --noise rician needs the background noise, "
@@ -322,9 +336,11 @@ def run(args: argparse.Namespace) -> int:
 
     competitors, skipped = [], []
     for alt, fix, label in alternatives(spec):
-        alt_spec = alt if alt is spec else configure_model(alt, options)
+        # a competitor without a per-voxel T1 (mese-mono) is fitted without the map
+        alt_opts = options if alt.name in t1_map_models() else {**options, "t1_map": None}
+        alt_spec = alt if alt is spec else configure_model(alt, alt_opts)
         try:
-            alt_fixed = fixed if alt is spec else acquisition(alt_spec, series, options)
+            alt_fixed = fixed if alt is spec else acquisition(alt_spec, series, alt_opts)
         except InputError as exc:
             skipped.append(f"{label}: {exc}")
             continue
