@@ -26,14 +26,18 @@ import numpy as np
 
 from pipeline.errors import InputError
 
-TIME_KEYS = ("InversionTime", "EchoTime", "RepetitionTime")
 ANGLE_KEYS = ("FlipAngle", "RefocusingFlipAngle")
-SCALAR_KEYS = TIME_KEYS + ANGLE_KEYS + ("MagneticFieldStrength",)
+SCALAR_KEYS = ("InversionTime", "EchoTime", "RepetitionTime") + ANGLE_KEYS + (
+    "MagneticFieldStrength",)
+TIME_KEYS = ("InversionTime", "EchoTime", "RepetitionTime", "RepetitionTimeExcitation")
 MS_THRESHOLD_S = 30.0  # a "time" above this is almost certainly milliseconds
 # with --time-unit ms, a longest time (ms) below this is really seconds (common practice:
 # no T1-mapping IR ends its TIs under 10 ms, no echo train or TR under 1 ms)
 MS_FLOOR = {"InversionTime": 10.0, "EchoTime": 1.0, "RepetitionTime": 1.0}
 AFFINE_ATOL_MM = 1e-3
+# BIDS anat sidecars may give the excitation TR as RepetitionTimeExcitation (BIDS qMRI
+# requires it for VFA); it stands in for RepetitionTime when that key is absent.
+KEY_ALIASES = {"RepetitionTime": ("RepetitionTimeExcitation",)}
 # BIDS entities that index the volumes of a split series; dropped to form the stem.
 _INDEX_ENTITY = re.compile(r"_(inv|echo|flip|part|mt)-[0-9A-Za-z]+")
 
@@ -326,15 +330,17 @@ def _common_meta(paths: list[Path], metas: list[dict], key: str, time_unit: str)
             continue
         seen = []
         for p, sc in zip(paths, metas):
-            if k in sc and sc[k] is not None:
+            name = k if sc.get(k) is not None else next(
+                (a for a in KEY_ALIASES.get(k, ()) if sc.get(a) is not None), k)
+            if sc.get(name) is not None:
                 where = str(sidecar_path(p))
-                if isinstance(sc[k], list):
-                    raise InputError(f"{where}: key '{k}' must be a single number for this "
+                if isinstance(sc[name], list):
+                    raise InputError(f"{where}: key '{name}' must be a single number for this "
                                      f"series (it varies in '{key}'), got a list.")
-                v = _as_number(sc[k], where, k)
+                v = _as_number(sc[name], where, name)
                 if time_unit == "ms" and k == "RepetitionTime":
                     _check_looks_like_seconds(k, [v], where)
-                seen.append((p, _check_unit(k, v, where, time_unit)))
+                seen.append((p, _check_unit(name, v, where, time_unit)))
         if seen:
             v0 = seen[0][1]
             for p, v in seen[1:]:

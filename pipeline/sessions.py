@@ -1,8 +1,10 @@
 """Session discovery and job planning for the workflow.
 
-:func:`plan` walks ``input_dir`` for ``sub-*/ses-*/<datatype>/`` folders and lists, per
+:func:`plan` walks ``input_dir`` for ``sub-*/ses-*/`` session folders and lists, per
 session, the series each configured model fits (:class:`SeriesJob`, split into z-slab
-chunk jobs when large) and where their outputs go.
+chunk jobs when large) and where their outputs go. A session's series are looked for in
+its BIDS datatype folders (``discovery.datatype``: by default ``anat/`` and ``fmap/``,
+where BIDS puts B1 mapping series such as ``TB1DAM``).
 """
 from __future__ import annotations
 
@@ -104,16 +106,34 @@ def _series_groups(files: list[Path]) -> dict[str, list[Path]]:
     return {_series_stem(sorted(v)): sorted(v) for v in groups.values()}
 
 
-def _site_scanner(folder: Path, cfg: dict) -> tuple[str, str]:
-    for side in sorted(folder.glob("*.json")):
+# sidecar keys naming the site and the scanner, in order of preference: relaxline's own,
+# then the BIDS keys a DICOM converter fills from the DICOM header
+SITE_KEYS = ("Site", "InstitutionName")
+SCANNER_KEYS = ("Scanner", "StationName")
+
+
+def _site_scanner(files: list[Path], cfg: dict) -> tuple[str, str]:
+    for side in files:
+        if side.suffix != ".json":
+            continue
         try:
             meta = json.loads(side.read_text(encoding="utf-8"))
         except (OSError, ValueError):
             continue
-        if isinstance(meta, dict) and ("Site" in meta or "Scanner" in meta):
-            return (str(meta.get("Site", cfg["history"]["site"])),
-                    str(meta.get("Scanner", cfg["history"]["scanner"])))
+        if not isinstance(meta, dict):
+            continue
+        site = next((meta[k] for k in SITE_KEYS if meta.get(k)), None)
+        scanner = next((meta[k] for k in SCANNER_KEYS if meta.get(k)), None)
+        if site is not None or scanner is not None:
+            return (str(site or cfg["history"]["site"]),
+                    str(scanner or cfg["history"]["scanner"]))
     return cfg["history"]["site"], cfg["history"]["scanner"]
+
+
+def datatypes(cfg: dict) -> list[str]:
+    """The datatype folders searched in each session (``discovery.datatype``)."""
+    d = cfg["discovery"]["datatype"]
+    return [d] if isinstance(d, str) else list(d)
 
 
 def plan(cfg: dict) -> Plan:
@@ -127,17 +147,17 @@ def plan(cfg: dict) -> Plan:
         for ses_dir in sorted(p for p in sub_dir.glob(d["session_glob"]) if p.is_dir()):
             if only and ses_dir.name not in only:
                 continue
-            folder = ses_dir / d["datatype"]
-            if not folder.is_dir():
+            folders = [ses_dir / t for t in datatypes(cfg) if (ses_dir / t).is_dir()]
+            if not folders:
                 continue
-            names = sorted(p for p in folder.iterdir() if p.is_file())
+            names = sorted(p for f in folders for p in f.iterdir() if p.is_file())
             labels = [p for p in names if fnmatch.fnmatch(p.name, cfg["phantom"]["labels"])]
             if len(labels) > 1:
-                raise InputError(f"{folder}: {len(labels)} files match the label pattern "
-                                 f"phantom.labels = '{cfg['phantom']['labels']}'; make it "
-                                 "match one.")
-            site, scanner = _site_scanner(folder, cfg)
-            s = Session(sub_dir.name, ses_dir.name, folder, site, scanner,
+                raise InputError(f"{ses_dir}: {len(labels)} files match the label pattern "
+                                 f"phantom.labels = '{cfg['phantom']['labels']}' "
+                                 f"({', '.join(p.name for p in labels)}); make it match one.")
+            site, scanner = _site_scanner(names, cfg)
+            s = Session(sub_dir.name, ses_dir.name, ses_dir, site, scanner,
                         str(labels[0]) if labels else None)
             for model, m in cfg["models"].items():
                 files = [p for p in names if fnmatch.fnmatch(p.name, m["pattern"])

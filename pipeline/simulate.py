@@ -43,8 +43,8 @@ import numpy as np
 
 from pipeline import phantom
 from pipeline.errors import InputError
-from pipeline.outputs import (atomic_write_json, atomic_write_nifti, atomic_write_tsv,
-                              ensure_dir, package_version)
+from pipeline.outputs import (atomic_write_json, atomic_write_nifti, atomic_write_text,
+                              atomic_write_tsv, ensure_dir, package_version)
 
 FOV_MM = 200.0
 SLICE_MM = 5.0
@@ -66,9 +66,11 @@ MEGRE_TE = [0.003, 0.008, 0.015, 0.025, 0.040, 0.060]
 MEGRE_FLIP = 20.0
 MEGRE_TR = 0.08
 
-# Independent random streams inside a session (order fixed: part of the output contract).
+# Independent random streams inside a session (order fixed: part of the output contract);
+# a series' noise stream is named by its BIDS suffix.
 _STREAMS = ("geometry", "IRT1", "VFA", "TB1DAM", "MESE", "MEGRE")
-SERIES = ("IRT1", "VFA", "TB1DAM", "MESE", "MEGRE")
+ACQ_CLOCK = "07:30:00"      # invented time of day of every simulated session
+BIDS_VERSION = "1.10.0"
 
 LIMITS = {"sessions": (1, 60), "slices": (1, 64), "matrix": (40, 512)}
 
@@ -181,32 +183,105 @@ def session_state(index: int, options: SimOptions) -> SessionState:
                         t2=t2, t2s=t2s)
 
 
+@dataclass(frozen=True)
+class SimSeries:
+    """One simulated series as BIDS raw data holds it: one 3D file per value of ``key``.
+
+    ``signals`` are noise-free and signed, ``(x, y, z, n)``, zero outside the phantom,
+    volumes in acquisition order (the order of ``values``), which is also the order
+    of the index entity ``<entity>-1 … <entity>-n``.
+    """
+
+    suffix: str           # BIDS suffix, also the noise stream's name (IRT1, VFA, ...)
+    datatype: str         # BIDS datatype folder: anat, or fmap for B1 mapping
+    entity: str           # BIDS index entity of the volumes: inv, flip or echo
+    key: str              # varying sidecar key
+    values: list[float]   # one per volume (s or degrees)
+    sidecar: dict         # keys shared by every volume (BIDS units)
+    description: str      # SeriesDescription
+    signals: np.ndarray
+
+
+def _inside(st: SessionState, signal: Callable[..., np.ndarray]) -> np.ndarray:
+    """Evaluate ``signal(t1, t2, t2s, pd, b1)`` inside the phantom; zero in air."""
+    m = st.inside
+    sig = signal(st.t1[m], st.t2[m], st.t2s[m], st.pd[m], st.b1[m])
+    full = np.zeros(m.shape + (sig.shape[-1],))
+    full[m] = sig
+    return full
+
+
+# One function per series kind (signals from fitting.signals / fitting.epg only). To add a
+# kind: write a function returning a SimSeries, append it to SERIES_KINDS and its suffix
+# to _STREAMS (at the end, so the existing series keep their noise).
+
+def ir_series(st: SessionState) -> SimSeries:
+    """Inversion recovery, magnitude, finite TR, adiabatic inversion of efficiency ``eff``."""
+    from fitting.signals import ir_signal
+    return SimSeries("IRT1", "anat", "inv", "InversionTime", _round(IR_TI),
+                     {"RepetitionTime": IR_TR, "FlipAngle": 90.0, "MRAcquisitionType": "2D"},
+                     "inversion recovery",
+                     _inside(st, lambda t1, t2, t2s, pd, b1: ir_signal(
+                         IR_TI, t1, pd, eff=st.inversion_efficiency, tr=IR_TR,
+                         alpha_deg=90.0 * b1)))
+
+
+def vfa_series(st: SessionState) -> SimSeries:
+    """Spoiled gradient echo at several flip angles (BIDS qMRI VFA keys)."""
+    from fitting.signals import spgr_signal
+    return SimSeries("VFA", "anat", "flip", "FlipAngle", _round(VFA_FLIPS),
+                     {"RepetitionTime": VFA_TR, "RepetitionTimeExcitation": VFA_TR,
+                      "PulseSequenceType": "spoiled gradient echo",
+                      "MRAcquisitionType": "3D"},
+                     "variable flip angle",
+                     _inside(st, lambda t1, t2, t2s, pd, b1: spgr_signal(VFA_FLIPS, t1, pd,
+                                                                         VFA_TR, b1)))
+
+
+def dam_series(st: SessionState) -> SimSeries:
+    """Double angle α, 2α (B1 mapping: BIDS puts it in fmap/)."""
+    from fitting.signals import dam_signals
+    return SimSeries("TB1DAM", "fmap", "flip", "FlipAngle", [DAM_ALPHA, 2.0 * DAM_ALPHA],
+                     {"RepetitionTime": DAM_TR, "MRAcquisitionType": "2D"},
+                     "double angle B1",
+                     _inside(st, lambda t1, t2, t2s, pd, b1: dam_signals(DAM_ALPHA, b1, pd, t1,
+                                                                         DAM_TR)))
+
+
+def mese_series(st: SessionState) -> SimSeries:
+    """CPMG multi-echo spin echo by extended phase graphs, full recovery (TR ≥ 4·T1)."""
+    from fitting.epg import cpmg_echoes
+    return SimSeries("MESE", "anat", "echo", "EchoTime",
+                     _round(MESE_ESP * (np.arange(MESE_ECHOES) + 1)),
+                     {"RepetitionTime": MESE_TR, "FlipAngle": 90.0, "RefocusingFlipAngle": 180.0,
+                      "MRAcquisitionType": "2D"},
+                     "multi-echo spin echo",
+                     _inside(st, lambda t1, t2, t2s, pd, b1: cpmg_echoes(
+                         MESE_ECHOES, MESE_ESP, t2, t1, b1=b1, refocus_deg=180.0,
+                         excite_deg=90.0, m0=pd)))
+
+
+def megre_series(st: SessionState) -> SimSeries:
+    """Multi-echo spoiled gradient echo: steady state at TE = 0, then T2* decay."""
+    from fitting.signals import mono_exp, spgr_signal
+    return SimSeries("MEGRE", "anat", "echo", "EchoTime", _round(MEGRE_TE),
+                     {"RepetitionTime": MEGRE_TR, "FlipAngle": MEGRE_FLIP,
+                      "MRAcquisitionType": "3D"},
+                     "multi-echo gradient echo",
+                     _inside(st, lambda t1, t2, t2s, pd, b1: mono_exp(
+                         MEGRE_TE, t2s, spgr_signal([MEGRE_FLIP], t1, pd, MEGRE_TR, b1)[:, 0])))
+
+
+SERIES_KINDS: tuple[Callable[[SessionState], SimSeries], ...] = (
+    ir_series, vfa_series, dam_series, mese_series, megre_series)
+
+
 def clean_signals(st: SessionState) -> dict[str, np.ndarray]:
-    """Noise-free (signed) signals of every series, ``(x, y, z, n)``; zero outside the phantom.
+    """Noise-free (signed) signals of every series by suffix, ``(x, y, z, n)``.
 
     Volumes are in acquisition order (the order of the protocol lists above).
     """
-    from fitting.epg import cpmg_echoes
-    from fitting.signals import dam_signals, ir_signal, mono_exp, spgr_signal
-
-    m = st.inside
-    t1, t2, t2s, pd, b1 = st.t1[m], st.t2[m], st.t2s[m], st.pd[m], st.b1[m]
-    per_series = {
-        "IRT1": ir_signal(IR_TI, t1, pd, eff=st.inversion_efficiency, tr=IR_TR,
-                          alpha_deg=90.0 * b1),
-        "VFA": spgr_signal(VFA_FLIPS, t1, pd, VFA_TR, b1),
-        "TB1DAM": dam_signals(DAM_ALPHA, b1, pd, t1, DAM_TR),
-        "MESE": cpmg_echoes(MESE_ECHOES, MESE_ESP, t2, t1, b1=b1, refocus_deg=180.0,
-                            excite_deg=90.0, m0=pd),
-        # Spoiled steady state at TE = 0, then T2* decay over the echoes.
-        "MEGRE": mono_exp(MEGRE_TE, t2s, spgr_signal([MEGRE_FLIP], t1, pd, MEGRE_TR, b1)[:, 0]),
-    }
-    out = {}
-    for name, sig in per_series.items():
-        full = np.zeros(m.shape + (sig.shape[-1],))
-        full[m] = sig
-        out[name] = full
-    return out
+    return {s.suffix: s.signals for s in (kind(st) for kind in SERIES_KINDS)}
 
 
 def rician_magnitude(clean: np.ndarray, sigma: float, rng: np.random.Generator) -> np.ndarray:
@@ -229,6 +304,12 @@ def _round(values) -> list[float]:
     return [round(float(v), 6) for v in values]
 
 
+def series_paths(outdir: str | Path, index: int, suffix: str) -> list[Path]:
+    """The NIfTI files of series ``suffix`` (e.g. ``"IRT1"``) of session ``index``."""
+    ses_dir = Path(outdir) / f"sub-{phantom.SUBJECT_LABEL}" / f"ses-{session_label(index)}"
+    return sorted(ses_dir.glob(f"*/*_{suffix}.nii.gz"))
+
+
 def write_session(outdir: Path, index: int, options: SimOptions,
                   progress: Callable[[int], None] | None = None) -> list[Path]:
     """Simulate and write one session; returns the files written."""
@@ -236,48 +317,31 @@ def write_session(outdir: Path, index: int, options: SimOptions,
     _, affine, _ = grid(options)
     sub = f"sub-{phantom.SUBJECT_LABEL}"
     ses = f"ses-{st.label}"
-    anat = ensure_dir(outdir / sub / ses / "anat")
     stem = f"{sub}_{ses}"
-    clean = clean_signals(st)
     written: list[Path] = []
 
-    def put(name: str, data: np.ndarray, sidecar: dict | None) -> None:
-        path = anat / f"{name}.nii.gz"
+    def put(folder: Path, name: str, data: np.ndarray, sidecar: dict | None) -> None:
+        path = folder / f"{name}.nii.gz"
         atomic_write_nifti(path, data, affine)
         written.append(path)
         if sidecar is not None:
-            written.append(atomic_write_json(anat / f"{name}.json", sidecar))
+            written.append(atomic_write_json(folder / f"{name}.json", sidecar))
 
-    for series in SERIES:
-        sig = clean[series]
-        sigma = 0.0 if math.isinf(options.snr) else float(np.abs(sig).max()) / options.snr
-        mag = rician_magnitude(sig, sigma, _rng(options.seed, index, series))
-        if series == "IRT1":
-            put(f"{stem}_IRT1", mag, {**_common_sidecar(st, sigma, "inversion recovery"),
-                                      "InversionTime": _round(IR_TI), "RepetitionTime": IR_TR,
-                                      "FlipAngle": 90.0})
-        elif series == "VFA":
-            put(f"{stem}_VFA", mag, {**_common_sidecar(st, sigma, "variable flip angle"),
-                                     "FlipAngle": _round(VFA_FLIPS), "RepetitionTime": VFA_TR})
-        elif series == "TB1DAM":
-            for k, flip in enumerate((DAM_ALPHA, 2.0 * DAM_ALPHA)):
-                put(f"{stem}_flip-{k + 1}_TB1DAM", mag[..., k],
-                    {**_common_sidecar(st, sigma, "double angle B1"), "FlipAngle": flip,
-                     "RepetitionTime": DAM_TR})
-        elif series == "MESE":
-            put(f"{stem}_MESE", mag, {**_common_sidecar(st, sigma, "multi-echo spin echo"),
-                                      "EchoTime": _round(MESE_ESP * (np.arange(MESE_ECHOES) + 1)),
-                                      "RepetitionTime": MESE_TR, "FlipAngle": 90.0,
-                                      "RefocusingFlipAngle": 180.0})
-        else:
-            put(f"{stem}_MEGRE", mag, {**_common_sidecar(st, sigma, "multi-echo gradient echo"),
-                                       "EchoTime": _round(MEGRE_TE), "RepetitionTime": MEGRE_TR,
-                                       "FlipAngle": MEGRE_FLIP})
+    for kind in SERIES_KINDS:
+        s = kind(st)
+        sigma = 0.0 if math.isinf(options.snr) else float(np.abs(s.signals).max()) / options.snr
+        mag = rician_magnitude(s.signals, sigma, _rng(options.seed, index, s.suffix))
+        folder = ensure_dir(outdir / sub / ses / s.datatype)
+        common = {**_common_sidecar(st, sigma, s.description), **s.sidecar}
+        for k, value in enumerate(s.values):
+            put(folder, f"{stem}_{s.entity}-{k + 1}_{s.suffix}", mag[..., k],
+                {**common, s.key: value})
         if progress:
             progress(1)
 
     import pandas as pd
-    put(f"{stem}_dseg", st.labels, None)
+    anat = ensure_dir(outdir / sub / ses / "anat")
+    put(anat, f"{stem}_dseg", st.labels, None)
     written.append(atomic_write_tsv(anat / f"{stem}_dseg.tsv", pd.DataFrame(
         {"index": [v.label for v in phantom.VIALS], "name": [v.name for v in phantom.VIALS]})))
 
@@ -312,9 +376,54 @@ def truth_table(st: SessionState):
     return pd.DataFrame(rows)
 
 
+README_TEXT = f"""\
+# {phantom.PHANTOM_NAME} (simulated)
+
+Simulated sessions of the relaxline demo phantom, an INVENTED test object (12 doped-gel
+vials in a water-filled cylinder), written by `relaxline simulate`. Not data of any real
+phantom, scanner or person. Site and scanner names are invented.
+
+Every series is BIDS qMRI raw data: one 3D image per inversion time (`inv-`), flip angle
+(`flip-`) or echo (`echo-`), with its sidecar giving that value in BIDS units (seconds,
+degrees). Series: inversion recovery (`IRT1`), variable flip angle (`VFA`), multi-echo
+spin echo (`MESE`), multi-echo gradient echo (`MEGRE`) in `anat/`; the double-angle B1
+series (`TB1DAM`) in `fmap/`.
+
+Beside the BIDS data (listed in `.bidsignore`):
+- `anat/*_dseg.nii.gz` / `_dseg.tsv`: the vial label map of each session on the scan
+  grid (the simulation's truth, used as the ROI definition);
+- `phantom/`: the reference table, the vial layout and each session's ground truth.
+
+`sub-{phantom.SUBJECT_LABEL}_sessions.tsv` gives each session's phantom temperature.
+
+For quality assurance and research only; not a medical device.
+"""
+BIDSIGNORE = "phantom\n*_dseg.nii.gz\n*_dseg.tsv\n"
+
+
+def _sessions_table(path: Path, states: list[SessionState]):
+    """``sub-<label>_sessions.tsv`` rows for ``states``, merged with rows already there
+    for other sessions (a rerun with fewer sessions keeps the others' rows)."""
+    import pandas as pd
+    rows = pd.DataFrame([{"session_id": f"ses-{st.label}",
+                          "acq_time": f"{st.label[:4]}-{st.label[4:6]}-{st.label[6:]}T"
+                                      f"{ACQ_CLOCK}",
+                          "phantom_temperature": st.temperature} for st in states])
+    if path.is_file():
+        old = pd.read_csv(path, sep="\t", dtype=str)
+        if "session_id" in old.columns:
+            old = old[~old["session_id"].isin(rows["session_id"])]
+            rows = pd.concat([old.astype(object), rows.astype(object)], ignore_index=True)
+    return rows.sort_values("session_id", kind="stable").reset_index(drop=True)
+
+
 def simulate(outdir: str | Path, options: SimOptions,
              progress: Callable[[int], None] | None = None) -> list[Path]:
-    """Write ``options.sessions`` sessions plus the phantom files into ``outdir``."""
+    """Write ``options.sessions`` sessions plus the phantom files into ``outdir``.
+
+    ``outdir`` becomes a BIDS raw dataset (``dataset_description.json``, README,
+    ``.bidsignore``, ``sub-<label>_sessions.tsv``) that the official validator accepts.
+    """
     options.validate()
     outdir = Path(outdir)
     if outdir.exists() and not outdir.is_dir():
@@ -323,11 +432,22 @@ def simulate(outdir: str | Path, options: SimOptions,
     ensure_dir(outdir)
     written = [atomic_write_json(outdir / "dataset_description.json", {
         "Name": f"{phantom.PHANTOM_NAME} (simulated, invented phantom)",
-        "BIDSVersion": "1.9.0", "DatasetType": "raw",
-        "GeneratedBy": [{"Name": "relaxline simulate", "Version": package_version()}]})]
+        "BIDSVersion": BIDS_VERSION, "DatasetType": "raw", "License": "CC0",
+        "GeneratedBy": [{"Name": "relaxline simulate", "Version": package_version(),
+                         "Description": "simulated sessions of an invented phantom"}]}),
+        atomic_write_text(outdir / "README.md", README_TEXT),
+        atomic_write_text(outdir / ".bidsignore", BIDSIGNORE)]
     pdir = ensure_dir(outdir / "phantom")
     written.append(atomic_write_tsv(pdir / "reference.tsv", phantom.reference_table()))
     written.append(atomic_write_tsv(pdir / "layout.tsv", phantom.layout_table()))
     for i in range(options.sessions):
         written += write_session(outdir, i, options, progress)
+    sub = f"sub-{phantom.SUBJECT_LABEL}"
+    table = outdir / sub / f"{sub}_sessions.tsv"
+    written.append(atomic_write_tsv(table, _sessions_table(
+        table, [session_state(i, options) for i in range(options.sessions)])))
+    written.append(atomic_write_json(table.with_suffix(".json"), {
+        "acq_time": {"Description": "date and time of the session (invented clock time)"},
+        "phantom_temperature": {"Description": "phantom temperature during the session",
+                                "Units": "oC"}}))
     return written

@@ -35,7 +35,8 @@ import numpy as np
 
 from pipeline.errors import EXIT_OK, EXIT_QC_FAIL, InputError
 # configuration and discovery live in their own modules; the rules reach them through here
-from pipeline.sessions import CHUNK, MANIFEST, Plan, SeriesJob, Session, plan, slab_bounds  # noqa: F401
+from pipeline.sessions import (CHUNK, MANIFEST, Plan, SeriesJob, Session, datatypes,  # noqa: F401
+                               plan, slab_bounds)
 from pipeline.wfconfig import (SCHEMA, load, model_options, read_config,  # noqa: F401
                                validate_config)
 

@@ -19,7 +19,7 @@ import numpy as np
 import pytest
 
 from pipeline.cli import main
-from seriesio import write_3d_set, write_4d, write_json, write_nifti
+from seriesio import combine_4d, write_3d_set, write_4d, write_json, write_nifti
 
 P = "sub-relaxlinedemo_ses-20261101_"
 
@@ -29,6 +29,7 @@ def sim(tmp_path_factory) -> Path:
     root = tmp_path_factory.mktemp("sim")
     assert main(["simulate", str(root), "--sessions", "1", "--slices", "1",
                  "--matrix", "48"]) == 0
+    combine_4d(root / "sub-relaxlinedemo" / "ses-20261101")   # the 4D-with-list form
     return root
 
 
@@ -42,7 +43,8 @@ class Kit:
         self.out = tmp / "out"           # must hold no final-named file afterwards
 
     def s(self, name: str) -> str:
-        return str(self.anat / f"{P}{name}.nii.gz")
+        folder = self.anat.with_name("fmap") if "TB1DAM" in name else self.anat
+        return str(folder / f"{P}{name}.nii.gz")
 
     def grid(self, name: str = "VFA"):
         img = nib.load(self.s(name))
@@ -53,7 +55,7 @@ class Kit:
         d = self.tmp / "in"
         d.mkdir(exist_ok=True)
         shutil.copy(self.s(name), d / f"{name}.nii.gz")
-        sc = json.loads((self.anat / f"{P}{name}.json").read_text())
+        sc = json.loads(Path(self.s(name)[: -len(".nii.gz")] + ".json").read_text())
         write_json(d / f"{name}.json", change(sc) if change else sc)
         return str(d / f"{name}.nii.gz")
 

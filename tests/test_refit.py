@@ -16,7 +16,7 @@ from fitting import region as R
 from fitting.signals import ir_signal, mono_exp
 from fitting.spec import get_model
 from pipeline.cli import main
-from seriesio import write_4d
+from seriesio import combine_4d, write_4d
 
 TI = np.array([0.035, 0.07, 0.12, 0.2, 0.3, 0.45, 0.65, 0.9, 1.3, 1.9])
 TR = 2.5
@@ -142,6 +142,7 @@ def session(tmp_path_factory):
     assert main(["simulate", str(root), "--sessions", "1", "--slices", "1",
                  "--matrix", "48"]) == 0
     anat = next(root.glob("sub-*/ses-*/anat"))
+    combine_4d(anat.parent)   # refit takes the 4D-with-list form here
     stem = next(anat.glob("*_IRT1.nii.gz")).name[: -len("_IRT1.nii.gz")]
     truth = pd.read_csv(next((root / "phantom").glob("truth_*.tsv")), sep="\t")
     return anat, stem, truth

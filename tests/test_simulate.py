@@ -17,7 +17,8 @@ from pipeline import phantom
 from pipeline.cli import main
 from pipeline.series import load_grid_map, read_series
 from pipeline.simulate import (DAM_ALPHA, IR_TI, MEGRE_TE, MESE_ECHOES, MESE_ESP, VFA_FLIPS,
-                               VFA_TR, SimOptions, session_label, simulate)
+                               VFA_TR, SimOptions, series_paths, session_label,
+                               simulate)
 
 REPO = Path(__file__).resolve().parents[1]
 SUB = f"sub-{phantom.SUBJECT_LABEL}"
@@ -49,15 +50,19 @@ def test_same_seed_same_bytes_different_seed_different(tmp_path):
     simulate(tmp_path / "b", SimOptions(seed=5, **small))
     simulate(tmp_path / "c", SimOptions(seed=6, **small))
     a, b, c = (_files(tmp_path / k) for k in "abc")
-    assert len(a) == 2 * (14 + 3) + 3 and a.keys() == b.keys() == c.keys()
+    # per session: 56 volumes + sidecars, dseg image + table, 3 truth files; dataset:
+    # description, README, .bidsignore, sessions table + sidecar, reference, layout
+    n_vol = len(IR_TI) + len(VFA_FLIPS) + 2 + MESE_ECHOES + len(MEGRE_TE)
+    assert len(a) == 2 * (2 * n_vol + 2 + 3) + 7 and a.keys() == b.keys() == c.keys()
     assert a == b
-    images = [k for k in a if k.endswith(".nii.gz") and "/anat/" in k and "dseg" not in k]
-    assert len(images) == 2 * 6
+    images = [k for k in a if k.startswith("sub-") and k.endswith(".nii.gz") and "dseg" not in k]
+    assert len(images) == 2 * n_vol
     assert all(a[k] != c[k] for k in images)
     # Session k does not depend on how many sessions were asked for.
     simulate(tmp_path / "d", SimOptions(seed=5, sessions=1, matrix=40, slices=2))
     d = _files(tmp_path / "d")
-    assert all(d[k] == a[k] for k in d if "phantom/" not in k or "truth" in k)
+    assert all(d[k] == a[k] for k in d if ("phantom/" not in k or "truth" in k)
+               and "_sessions.tsv" not in k)
 
 
 def test_writes_into_outdir_without_touching_other_files(tmp_path):
@@ -73,20 +78,21 @@ def test_writes_into_outdir_without_touching_other_files(tmp_path):
 def test_series_read_back_with_keys_values_and_sorting(demo):
     anat, stem = _anat(demo, 0)
     truth = json.loads((demo / "phantom" / f"truth_ses-{session_label(0)}.json").read_text())
-    ir = read_series([anat / f"{stem}_IRT1.nii.gz"], "InversionTime")
+    ir = read_series(series_paths(demo, 0, "IRT1"), "InversionTime")
     np.testing.assert_allclose(ir.values, sorted(IR_TI))
     assert ir.meta["RepetitionTime"] == 2.5 and ir.meta["FlipAngle"] == 90.0
-    vfa = read_series([anat / f"{stem}_VFA.nii.gz"], "FlipAngle")
+    vfa = read_series(series_paths(demo, 0, "VFA"), "FlipAngle")
     np.testing.assert_allclose(vfa.values, sorted(VFA_FLIPS))
     assert VFA_FLIPS != sorted(VFA_FLIPS)  # written in acquisition order: sorting is exercised
-    dam = read_series([anat / f"{stem}_flip-2_TB1DAM.nii.gz", anat / f"{stem}_flip-1_TB1DAM.nii.gz"],
+    fmap = anat.parent / "fmap"   # BIDS: B1 mapping series are field maps
+    dam = read_series([fmap / f"{stem}_flip-2_TB1DAM.nii.gz", fmap / f"{stem}_flip-1_TB1DAM.nii.gz"],
                       "FlipAngle")
     np.testing.assert_allclose(dam.values, [DAM_ALPHA, 2 * DAM_ALPHA])
     assert dam.stem == f"{stem}_TB1DAM"
-    mese = read_series([anat / f"{stem}_MESE.nii.gz"], "EchoTime")
+    mese = read_series(series_paths(demo, 0, "MESE"), "EchoTime")
     np.testing.assert_allclose(mese.values, MESE_ESP * np.arange(1, MESE_ECHOES + 1))
     assert mese.meta["RefocusingFlipAngle"] == 180.0
-    megre = read_series([anat / f"{stem}_MEGRE.nii.gz"], "EchoTime")
+    megre = read_series(series_paths(demo, 0, "MEGRE"), "EchoTime")
     np.testing.assert_allclose(megre.values, MEGRE_TE)
     for s in (ir, vfa, dam, mese, megre):
         assert s.shape == (80, 80, 3)
@@ -113,7 +119,7 @@ def test_label_map_on_grid_matches_layout_and_truth(demo):
     for k in range(2):
         anat, stem = _anat(demo, k)
         ses = f"ses-{session_label(k)}"
-        ir = read_series([anat / f"{stem}_IRT1.nii.gz"], "InversionTime")
+        ir = read_series(series_paths(demo, k, "IRT1"), "InversionTime")
         labels = load_grid_map(anat / f"{stem}_dseg.nii.gz", ir, what="label map").astype(int)
         b1 = load_grid_map(demo / "phantom" / f"truth_{ses}_TB1map.nii.gz", ir, what="B1 map")
         assert set(np.unique(labels)) == set(range(13))
@@ -142,7 +148,7 @@ def test_noise_free_images_equal_truth(tmp_path):
     # Ties the truth table, truth B1 map and label map to the image values.
     simulate(tmp_path, SimOptions(sessions=1, matrix=40, slices=1, snr=math.inf))
     anat, stem = _anat(tmp_path, 0)
-    vfa = read_series([anat / f"{stem}_VFA.nii.gz"], "FlipAngle")
+    vfa = read_series(series_paths(tmp_path, 0, "VFA"), "FlipAngle")
     labels = load_grid_map(anat / f"{stem}_dseg.nii.gz", vfa).astype(int)
     b1 = load_grid_map(tmp_path / "phantom" / f"truth_ses-{session_label(0)}_TB1map.nii.gz", vfa)
     truth = pd.read_csv(tmp_path / "phantom" / f"truth_ses-{session_label(0)}.tsv", sep="\t")
@@ -152,7 +158,7 @@ def test_noise_free_images_equal_truth(tmp_path):
         want = spgr_signal(vfa.values, row.T1, row.PD, VFA_TR, b1[sel])
         np.testing.assert_allclose(data[sel], want, rtol=2e-5)
     assert np.all(data[0, 0] == 0)  # air corner: no signal without noise
-    sidecar = json.loads((anat / f"{stem}_VFA.json").read_text())
+    sidecar = json.loads((anat / f"{stem}_flip-1_VFA.json").read_text())
     assert sidecar["SimulationNoiseSigma"] == 0
 
 
@@ -166,8 +172,8 @@ def test_air_noise_is_rayleigh(demo):
     # Magnitude of zero-mean complex Gaussian noise is Rayleigh = Rice with ν = 0
     # (Rice 1944, Bell Syst Tech J 23:282; Gudbjartsson & Patz 1995, Magn Reson Med 34:910).
     anat, stem = _anat(demo, 0)
-    mese = read_series([anat / f"{stem}_MESE.nii.gz"], "EchoTime")
-    sigma = _sigma(anat, f"{stem}_MESE")
+    mese = read_series(series_paths(demo, 0, "MESE"), "EchoTime")
+    sigma = _sigma(anat, f"{stem}_echo-1_MESE")
     x, y = np.meshgrid(*(np.arange(80) * 2.5 - 98.75,) * 2, indexing="ij")
     air = np.hypot(x, y) > phantom.CYLINDER_RADIUS_MM + 8.0  # shift ≤ 3 mm, margin for safety
     m = mese.read()[air][:, :, ::4].ravel() / sigma
@@ -185,8 +191,8 @@ def test_vial_noise_is_rician_with_known_nu(demo):
     # gives uniform values if the magnitudes are Rician (Gudbjartsson & Patz 1995).
     anat, stem = _anat(demo, 0)
     ses = f"ses-{session_label(0)}"
-    mese = read_series([anat / f"{stem}_MESE.nii.gz"], "EchoTime")
-    sigma = _sigma(anat, f"{stem}_MESE")
+    mese = read_series(series_paths(demo, 0, "MESE"), "EchoTime")
+    sigma = _sigma(anat, f"{stem}_echo-1_MESE")
     labels = load_grid_map(anat / f"{stem}_dseg.nii.gz", mese).astype(int)
     b1 = load_grid_map(demo / "phantom" / f"truth_{ses}_TB1map.nii.gz", mese)
     t = pd.read_csv(demo / "phantom" / f"truth_{ses}.tsv", sep="\t").set_index("label").loc[1]
@@ -241,7 +247,7 @@ def test_truth_follows_temperature_coefficients_and_drift(tmp_path):
     temps = []
     for k in range(3):
         anat, stem = _anat(tmp_path, k)
-        temp = json.loads((anat / f"{stem}_MESE.json").read_text())["PhantomTemperature"]
+        temp = json.loads((anat / f"{stem}_echo-1_MESE.json").read_text())["PhantomTemperature"]
         temps.append(temp)
         truth = pd.read_csv(tmp_path / "phantom" / f"truth_ses-{session_label(k)}.tsv",
                             sep="\t").set_index("label")
@@ -260,8 +266,8 @@ def test_cli_writes_and_reports(tmp_path, capsys):
     assert main(["simulate", str(tmp_path), "--sessions", "1", "--matrix", "40",
                  "--slices", "1", "--seed", "3", "--snr", "50"]) == 0
     assert "wrote 1 session(s)" in capsys.readouterr().out
-    anat, stem = _anat(tmp_path, 0)
-    assert nib.load(anat / f"{stem}_IRT1.nii.gz").shape == (40, 40, 1, len(IR_TI))
+    ir = series_paths(tmp_path, 0, "IRT1")
+    assert len(ir) == len(IR_TI) and all(nib.load(p).shape == (40, 40, 1) for p in ir)
 
 
 @pytest.mark.parametrize("opts, words", [

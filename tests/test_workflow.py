@@ -25,6 +25,7 @@ import yaml
 from pipeline import workflow as W
 from pipeline.cli import main
 from pipeline.errors import InputError
+from pipeline.simulate import series_paths
 
 ROOT = Path(__file__).resolve().parents[1]
 SAMPLE = ROOT / "sample_config" / "config.yaml"
@@ -163,8 +164,7 @@ def test_history_series_key_drops_session():
 
 def test_chunked_fit_identical_to_unsplit(sim3, tmp_path):
     """z-slab chunk jobs + gather give the same bytes as one `relaxline fit`."""
-    anat = sim3 / "sub-relaxlinedemo" / "ses-20261101" / "anat"
-    series = [str(anat / "sub-relaxlinedemo_ses-20261101_IRT1.nii.gz")]
+    series = [str(p) for p in series_paths(sim3, 0, "IRT1")]
     assert main(["fit", "ir", *series, "--out", str(tmp_path / "whole"), "--jobs", "1"]) == 0
     chunks = []
     for i, (z0, z1) in enumerate(W.slab_bounds(2, 1600, 1600)):
@@ -186,8 +186,7 @@ def test_chunked_fit_identical_to_unsplit(sim3, tmp_path):
 def test_model_options_reach_the_fit_job(sim3, tmp_path):
     """`models.mese-mono.plateau/skip_echoes` give the maps of `relaxline fit --plateau
     --skip-echoes 1`, through the chunked path too."""
-    anat = sim3 / "sub-relaxlinedemo" / "ses-20261101" / "anat"
-    series = [str(anat / "sub-relaxlinedemo_ses-20261101_MESE.nii.gz")]
+    series = [str(p) for p in series_paths(sim3, 0, "MESE")]
     assert main(["fit", "mese-mono", *series, "--out", str(tmp_path / "cli"), "--plateau",
                  "--skip-echoes", "1"]) == 0
     cfg = {"models": {"mese-mono": {"pattern": "x", "plateau": True, "skip_echoes": 1}}}
@@ -280,8 +279,8 @@ def test_e2e_outputs_agree_with_commands(e2e, sim3, tmp_path):
     ses = out / "sub-relaxlinedemo" / "ses-20261101"
     anat = e2e["root"] / "rawdata" / "sub-relaxlinedemo" / "ses-20261101" / "anat"
     # maps: the (chunked) workflow fit equals `relaxline fit` byte for byte
-    ir_in = str(anat / "sub-relaxlinedemo_ses-20261101_IRT1.nii.gz")
-    assert main(["fit", "ir", ir_in, "--out", str(tmp_path / "ir"), "--jobs", "1"]) == 0
+    ir_in = [str(p) for p in series_paths(e2e["root"] / "rawdata", 0, "IRT1")]
+    assert main(["fit", "ir", *ir_in, "--out", str(tmp_path / "ir"), "--jobs", "1"]) == 0
     for p in (tmp_path / "ir").glob("*.nii.gz"):
         assert p.read_bytes() == (ses / "maps" / "ir" / p.name).read_bytes(), p.name
     # vfa got the session's dam B1 map
@@ -409,7 +408,7 @@ def test_e2e_slurm_profile_gives_the_same_maps(e2e, sim3):
         shutil.copytree(root / "rawdata" / "sub-relaxlinedemo" / ses, raw / ses)
     bad = raw / "ses-20261103"
     shutil.copytree(sim3 / "sub-relaxlinedemo" / "ses-20261103", bad)
-    cut = bad / "anat" / "sub-relaxlinedemo_ses-20261103_IRT1.nii.gz"
+    cut = bad / "anat" / "sub-relaxlinedemo_ses-20261103_inv-4_IRT1.nii.gz"
     cut.write_bytes(cut.read_bytes()[: cut.stat().st_size // 2])   # header intact, data cut
     config = _e2e_config(root, sim3, "slurm")
     cfg = yaml.safe_load(config.read_text())

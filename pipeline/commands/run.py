@@ -96,8 +96,9 @@ def run_workflow(config: str | Path, cores: int | None = None, profile: str | No
     plan = workflow.plan(cfg)                # discovery errors before any job
     if not plan.sessions:
         d = cfg["discovery"]
+        kinds = ",".join(workflow.datatypes(cfg))
         raise InputError(f"{config}: key `input_dir`: no session under {cfg['input_dir']} "
-                         f"({d['subject_glob']}/{d['session_glob']}/{d['datatype']}/) has a "
+                         f"({d['subject_glob']}/{d['session_glob']}/{{{kinds}}}/) has a "
                          f"series matching any `models.*.pattern`.")
     from pipeline.outputs import ensure_dir
     out = ensure_dir(cfg["output_dir"])

@@ -6,10 +6,14 @@ import argparse
 HELP = "Write demo sessions of the invented relaxline demo phantom as NIfTI series"
 DESCRIPTION = """\
 Simulate sessions of the relaxline demo phantom (an INVENTED phantom: 12 gel vials,
-T1 0.1-2.5 s, T2 0.01-0.6 s, in a water-filled cylinder) as BIDS-like NIfTI series:
-OUTDIR/sub-relaxlinedemo/ses-<date>/anat/ with _IRT1, _VFA, _flip-1/2_TB1DAM, _MESE,
-_MEGRE series, a vial label map (_dseg), and OUTDIR/phantom/ with reference.tsv,
-layout.tsv and the per-session truth (truth_ses-<date>.tsv/.json, true B1 map).
+T1 0.1-2.5 s, T2 0.01-0.6 s, in a water-filled cylinder) as a BIDS raw dataset that
+the official BIDS validator accepts: OUTDIR/sub-relaxlinedemo/ses-<date>/anat/ with one
+3D image and sidecar per inversion time, flip angle or echo (_inv-<n>_IRT1,
+_flip-<n>_VFA, _echo-<n>_MESE, _echo-<n>_MEGRE), fmap/ with _flip-1/2_TB1DAM (double
+angle B1), a vial label map (anat/_dseg); dataset_description.json, README.md,
+.bidsignore, sub-relaxlinedemo_sessions.tsv (phantom temperature per session), and
+OUTDIR/phantom/ with reference.tsv, layout.tsv and the per-session truth
+(truth_ses-<date>.tsv/.json, true B1 map).
 
 Sessions differ by phantom temperature, a small phantom motion and an optional drift.
 Noise is complex Gaussian (magnitude stored: Rician); sigma = largest noise-free
@@ -34,14 +38,14 @@ def run(args: argparse.Namespace) -> int:
     import time
 
     from pipeline.progress import Progress
-    from pipeline.simulate import SERIES, SimOptions, simulate
+    from pipeline.simulate import SERIES_KINDS, SimOptions, simulate
 
     opts = SimOptions(sessions=args.sessions, seed=args.seed, snr=args.snr,
                       drift_pct=args.drift, slices=args.slices, matrix=args.matrix)
     opts.validate()
     t0 = time.monotonic()
     files = simulate(args.outdir, opts,
-                     progress=Progress(opts.sessions * len(SERIES), "simulate"))
+                     progress=Progress(opts.sessions * len(SERIES_KINDS), "simulate"))
     print(f"relaxline simulate: wrote {opts.sessions} session(s), {len(files)} files to "
           f"{args.outdir} in {time.monotonic() - t0:.1f} s")
     return 0

@@ -1,0 +1,83 @@
+"""BIDS: `relaxline simulate` writes a raw dataset the official validator accepts, and the
+reader and the workflow's discovery take its one-file-per-volume series from anat/ and fmap/."""
+from __future__ import annotations
+
+import json
+
+import pandas as pd
+
+from bidscheck import summary, validate
+from pipeline import phantom
+from pipeline.series import read_series
+from pipeline.sessions import plan
+from pipeline.simulate import (IR_TI, MESE_ECHOES, VFA_FLIPS, VFA_TR, SimOptions, series_paths,
+                               session_label, simulate)
+from pipeline.wfconfig import resolve_paths, validate_config
+from seriesio import write_3d_set
+
+SUB = f"sub-{phantom.SUBJECT_LABEL}"
+
+
+def test_simulated_raw_dataset_is_valid_bids(tmp_path):
+    # The BIDS specification's own validator (bids-validator-deno) is the reference.
+    simulate(tmp_path, SimOptions(sessions=2, matrix=40, slices=1, seed=2))
+    errors, _ = validate(tmp_path)
+    assert errors == [], summary(errors)
+    ses = tmp_path / SUB / f"ses-{session_label(0)}"
+    assert len(list((ses / "anat").glob("*_inv-*_IRT1.nii.gz"))) == len(IR_TI)
+    assert len(list((ses / "anat").glob("*_echo-*_MESE.nii.gz"))) == MESE_ECHOES
+    assert sorted(p.name for p in (ses / "fmap").glob("*.nii.gz")) == [
+        f"{SUB}_ses-{session_label(0)}_flip-{k}_TB1DAM.nii.gz" for k in (1, 2)]
+    vfa = json.loads((ses / "anat" / f"{SUB}_ses-{session_label(0)}_flip-1_VFA.json").read_text())
+    # BIDS qMRI: VFA needs PulseSequenceType and RepetitionTimeExcitation (s), one FlipAngle
+    assert vfa["RepetitionTimeExcitation"] == VFA_TR and vfa["FlipAngle"] == VFA_FLIPS[0]
+    assert vfa["PulseSequenceType"]
+
+
+def test_sessions_table_holds_each_sessions_temperature(tmp_path):
+    simulate(tmp_path, SimOptions(sessions=3, matrix=40, slices=1))
+    table = pd.read_csv(tmp_path / SUB / f"{SUB}_sessions.tsv", sep="\t")
+    for k in range(3):
+        truth = json.loads((tmp_path / "phantom" / f"truth_ses-{session_label(k)}.json")
+                           .read_text())
+        row = table[table.session_id == f"ses-{session_label(k)}"].iloc[0]
+        assert row.phantom_temperature == truth["temperature"]
+    # a rerun with fewer sessions keeps the rows of the sessions it does not rewrite
+    simulate(tmp_path, SimOptions(sessions=1, matrix=40, slices=1))
+    again = pd.read_csv(tmp_path / SUB / f"{SUB}_sessions.tsv", sep="\t")
+    pd.testing.assert_frame_equal(again, table)
+
+
+def test_split_series_read_in_value_order(tmp_path):
+    simulate(tmp_path, SimOptions(sessions=1, matrix=40, slices=1))
+    vfa = read_series(series_paths(tmp_path, 0, "VFA"), "FlipAngle")
+    assert vfa.values.tolist() == sorted(VFA_FLIPS)
+    assert vfa.stem == f"{SUB}_ses-{session_label(0)}_VFA"
+    assert vfa.meta["RepetitionTime"] == VFA_TR
+
+
+def test_repetition_time_excitation_stands_in_for_repetition_time(tmp_path):
+    import numpy as np
+    paths = write_3d_set(tmp_path, "sub-a_VFA", np.ones((2, 2, 1, 3), np.float32), "FlipAngle",
+                         [3.0, 9.0, 15.0], {"RepetitionTimeExcitation": 0.012}, entity="flip")
+    assert read_series(paths, "FlipAngle").meta["RepetitionTime"] == 0.012
+    ms = write_3d_set(tmp_path / "ms", "sub-a_VFA", np.ones((2, 2, 1, 3), np.float32),
+                      "FlipAngle", [3.0, 9.0, 15.0], {"RepetitionTimeExcitation": 12.0},
+                      entity="flip")
+    assert read_series(ms, "FlipAngle", time_unit="ms").meta["RepetitionTime"] == 0.012
+
+
+def test_discovery_finds_series_in_anat_and_fmap(tmp_path):
+    simulate(tmp_path / "raw", SimOptions(sessions=1, matrix=40, slices=1))
+    cfg = resolve_paths(validate_config({
+        "input_dir": "raw", "output_dir": "out",
+        "models": {"ir": {"pattern": "*_IRT1.nii.gz"}, "dam": {"pattern": "*_TB1DAM.nii.gz"},
+                   "vfa": {"pattern": "*_VFA.nii.gz", "b1": "dam"}}}), tmp_path)
+    (s,) = plan(cfg).sessions
+    jobs = {j.model: j for j in s.series}
+    assert len(jobs["ir"].inputs) == len(IR_TI) and len(jobs["vfa"].inputs) == len(VFA_FLIPS)
+    assert all("/fmap/" in p for p in jobs["dam"].inputs) and len(jobs["dam"].inputs) == 2
+    assert s.labels.endswith("_dseg.nii.gz") and (s.site, s.scanner) == ("northfield-lab", "bay2")
+    # only anat/ searched: no dam series, so vfa's `b1: dam` has no source
+    anat_only = {**cfg, "discovery": {**cfg["discovery"], "datatype": "anat"}}
+    assert "dam" not in {j.model for j in plan(anat_only).sessions[0].series}
