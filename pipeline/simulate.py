@@ -219,7 +219,9 @@ def ir_series(st: SessionState) -> SimSeries:
     """Inversion recovery, magnitude, finite TR, adiabatic inversion of efficiency ``eff``."""
     from fitting.signals import ir_signal
     return SimSeries("IRT1", "anat", "inv", "InversionTime", _round(IR_TI),
-                     {"RepetitionTime": IR_TR, "FlipAngle": 90.0, "MRAcquisitionType": "2D"},
+                     {"RepetitionTime": IR_TR, "FlipAngle": 90.0, "MRAcquisitionType": "2D",
+                      "PulseSequenceType": "inversion recovery spin echo",
+                      "ScanningSequence": "IR", "SequenceVariant": "NONE"},
                      "inversion recovery",
                      _inside(st, lambda t1, t2, t2s, pd, b1: ir_signal(
                          IR_TI, t1, pd, eff=st.inversion_efficiency, tr=IR_TR,
@@ -232,6 +234,7 @@ def vfa_series(st: SessionState) -> SimSeries:
     return SimSeries("VFA", "anat", "flip", "FlipAngle", _round(VFA_FLIPS),
                      {"RepetitionTime": VFA_TR, "RepetitionTimeExcitation": VFA_TR,
                       "PulseSequenceType": "spoiled gradient echo",
+                      "ScanningSequence": "GR", "SequenceVariant": "SP",
                       "MRAcquisitionType": "3D"},
                      "variable flip angle",
                      _inside(st, lambda t1, t2, t2s, pd, b1: spgr_signal(VFA_FLIPS, t1, pd,
@@ -242,7 +245,9 @@ def dam_series(st: SessionState) -> SimSeries:
     """Double angle α, 2α (B1 mapping: BIDS puts it in fmap/)."""
     from fitting.signals import dam_signals
     return SimSeries("TB1DAM", "fmap", "flip", "FlipAngle", [DAM_ALPHA, 2.0 * DAM_ALPHA],
-                     {"RepetitionTime": DAM_TR, "MRAcquisitionType": "2D"},
+                     {"RepetitionTime": DAM_TR, "MRAcquisitionType": "2D",
+                      "PulseSequenceType": "spin echo", "ScanningSequence": "SE",
+                      "SequenceVariant": "NONE"},
                      "double angle B1",
                      _inside(st, lambda t1, t2, t2s, pd, b1: dam_signals(DAM_ALPHA, b1, pd, t1,
                                                                          DAM_TR)))
@@ -254,7 +259,8 @@ def mese_series(st: SessionState) -> SimSeries:
     return SimSeries("MESE", "anat", "echo", "EchoTime",
                      _round(MESE_ESP * (np.arange(MESE_ECHOES) + 1)),
                      {"RepetitionTime": MESE_TR, "FlipAngle": 90.0, "RefocusingFlipAngle": 180.0,
-                      "MRAcquisitionType": "2D"},
+                      "MRAcquisitionType": "2D", "PulseSequenceType": "multi-echo spin echo "
+                      "(CPMG)", "ScanningSequence": "SE", "SequenceVariant": "NONE"},
                      "multi-echo spin echo",
                      _inside(st, lambda t1, t2, t2s, pd, b1: cpmg_echoes(
                          MESE_ECHOES, MESE_ESP, t2, t1, b1=b1, refocus_deg=180.0,
@@ -266,7 +272,8 @@ def megre_series(st: SessionState) -> SimSeries:
     from fitting.signals import mono_exp, spgr_signal
     return SimSeries("MEGRE", "anat", "echo", "EchoTime", _round(MEGRE_TE),
                      {"RepetitionTime": MEGRE_TR, "FlipAngle": MEGRE_FLIP,
-                      "MRAcquisitionType": "3D"},
+                      "MRAcquisitionType": "3D", "PulseSequenceType": "multi-echo spoiled "
+                      "gradient echo", "ScanningSequence": "GR", "SequenceVariant": "SP"},
                      "multi-echo gradient echo",
                      _inside(st, lambda t1, t2, t2s, pd, b1: mono_exp(
                          MEGRE_TE, t2s, spgr_signal([MEGRE_FLIP], t1, pd, MEGRE_TR, b1)[:, 0])))
@@ -293,8 +300,12 @@ def rician_magnitude(clean: np.ndarray, sigma: float, rng: np.random.Generator) 
 
 
 def _common_sidecar(st: SessionState, sigma: float, desc: str) -> dict:
+    # the BIDS hardware keys say truthfully where the images come from: a simulation
     return {"MagneticFieldStrength": phantom.FIELD_T, "PhantomTemperature": st.temperature,
             "Site": SITE, "Scanner": SCANNER, "SeriesDescription": desc,
+            "InstitutionName": SITE, "StationName": SCANNER,
+            "Manufacturer": "none (simulated by relaxline)",
+            "ManufacturersModelName": "relaxline simulate", "SoftwareVersions": package_version(),
             "SimulationNoiseSigma": round(sigma, 8),
             "GeneratedBy": f"relaxline simulate {package_version()} ({phantom.PHANTOM_NAME}, "
                            f"invented)"}
