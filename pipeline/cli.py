@@ -15,7 +15,7 @@ from typing import Sequence
 from pipeline.errors import EXIT_BAD_INPUT, RelaxlineError
 
 # Order is the order shown by --help.
-COMMANDS = ["simulate", "fit", "refit", "qc", "run", "demo", "design"]
+COMMANDS = ["simulate", "ingest", "fit", "refit", "qc", "run", "demo", "design"]
 
 
 def _version() -> str:

@@ -128,13 +128,25 @@ def resolve_paths(cfg: dict, base: str | Path | None = None) -> dict:
     for k in ("reference", "tolerances", "layout"):
         if ph.get(k):
             ph[k] = absolute(ph[k], root)
+    if out.get("dicom", {}).get("drop_dir"):
+        out["dicom"]["drop_dir"] = absolute(out["dicom"]["drop_dir"], root)
     hist = out.setdefault("history", {})
     hist["database"] = absolute(hist.get("database", "history.sqlite"), Path(out["output_dir"]))
     return out
 
 
-def check_paths(cfg: dict, source: str = "config") -> None:
-    """Paths the config names must exist (before any job runs)."""
+def check_paths(cfg: dict, source: str = "config", create_input: bool = False) -> None:
+    """Paths the config names must exist (before any job runs).
+
+    A missing ``input_dir`` is created when DICOM conversion fills it (a ``dicom.drop_dir``
+    is configured, or ``create_input``)."""
+    drop = cfg.get("dicom", {}).get("drop_dir")
+    if drop and not Path(drop).is_dir():
+        raise InputError(f"{source}: key `dicom.drop_dir`: folder {drop} not found; point it "
+                         "at the folder the scanner exports DICOM files to.")
+    if (create_input or drop) and not Path(cfg["input_dir"]).exists():
+        from pipeline.outputs import ensure_dir
+        ensure_dir(cfg["input_dir"])
     if not Path(cfg["input_dir"]).is_dir():
         raise InputError(f"{source}: key `input_dir`: folder {cfg['input_dir']} not found; "
                          "point it at the tree holding the sub-*/ses-* folders.")
@@ -152,12 +164,15 @@ def check_paths(cfg: dict, source: str = "config") -> None:
             raise InputError(f"{source}: key `phantom.tolerances`: {exc}") from None
 
 
-def load(path: str | Path | None = None, cfg: dict | None = None) -> dict:
-    """Read (or take), validate, resolve and check a config: what ``run`` and the Snakefile use."""
+def load(path: str | Path | None = None, cfg: dict | None = None,
+         create_input: bool = False) -> dict:
+    """Read (or take), validate, resolve and check a config: what ``run`` and the Snakefile use.
+
+    ``create_input``: create a missing ``input_dir`` (when DICOM conversion will fill it)."""
     source = str(path) if path is not None else "config"
     if cfg is None:
         cfg = read_config(path)
         cfg.setdefault("config_dir", str(Path(path).resolve().parent))
     cfg = resolve_paths(validate_config(cfg, source))
-    check_paths(cfg, source)
+    check_paths(cfg, source, create_input=create_input)
     return cfg

@@ -188,7 +188,10 @@ def session_table(summary: dict) -> "pd.DataFrame":
         t.insert(0, "model", model)
         t["series"] = [history_series(model, str(st_), summary["ses"]) for st_ in t["series"]]
         parts.append(t)
-    return pd.concat(parts, ignore_index=True) if parts else pd.DataFrame()
+    # no statistics (a session without label map or layout: maps only): an empty table
+    # with the key columns, so the history holds the session with no rows
+    return pd.concat(parts, ignore_index=True) if parts else \
+        pd.DataFrame(columns=["model", "series", "map", "label"])
 
 
 def step_record(database: str, summary_path: str, out: str) -> None:

@@ -2,16 +2,15 @@
 from __future__ import annotations
 
 import json
-import shutil
 import subprocess
-import sys
 from pathlib import Path
+
+from pipeline.ingest import find_tool
 
 
 def validator() -> str:
     """The validator's executable: beside this Python (the venv), else on PATH."""
-    here = Path(sys.executable).parent / "bids-validator-deno"
-    exe = str(here) if here.is_file() else shutil.which("bids-validator-deno")
+    exe = find_tool("bids-validator-deno")
     if exe is None:
         raise AssertionError("bids-validator-deno is not installed; it is in the test extra: "
                              "pip install -e '.[test]'")

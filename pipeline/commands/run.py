@@ -25,6 +25,10 @@ Options not listed here go to Snakemake unchanged (e.g. -n for a dry run,
 --keep-going, --forcerun qc). For a SLURM cluster: --profile
 sample_config/profiles/slurm (needs the snakemake-executor-plugin-slurm package).
 
+With a `dicom` section naming a drop_dir, the new DICOM series there are first
+converted into input_dir (as `relaxline ingest` does; a series converted once is not
+converted again), so a nightly run goes from the scanner's export to the report.
+
 Exit status: 0 all well; 1 a QC failure or a drift-rule rejection in the newest
 session of a site/scanner (see status.json and the report); 2 bad config or input
 (checked before any job runs) or a failed job."""
@@ -93,6 +97,8 @@ def run_workflow(config: str | Path, cores: int | None = None, profile: str | No
 
     check_options(cores, profile)
     cfg = workflow.load(config)              # schema, names the key; paths exist
+    from pipeline.ingest import ingest_for_run
+    dicom_failed = ingest_for_run(cfg, stream)   # new DICOM exports -> input_dir
     plan = workflow.plan(cfg)                # discovery errors before any job
     if not plan.sessions:
         d = cfg["discovery"]
@@ -143,6 +149,10 @@ def run_workflow(config: str | Path, cores: int | None = None, profile: str | No
         print(f"relaxline run: report: {report}", file=stream)
     if summary:
         print(f"relaxline run: attention: {summary}", file=stream)
+    if dicom_failed:
+        print("relaxline run: error: some DICOM series could not be converted (see the "
+              "messages above); the others were fitted.", file=stream)
+        return max(status, EXIT_BAD_INPUT)
     return status
 
 
