@@ -53,6 +53,8 @@ class Session:
     scanner: str
     labels: str | None
     series: list[SeriesJob] = field(default_factory=list)
+    temperature: float | None = None       # °C from the BIDS sessions file, if it gives one
+    temperature_source: str = ""           # e.g. "sub-x_sessions.tsv (phantom_temperature)"
 
     @property
     def label(self) -> str:
@@ -136,6 +138,59 @@ def datatypes(cfg: dict) -> list[str]:
     return [d] if isinstance(d, str) else list(d)
 
 
+def session_temperatures(sub_dir: Path, column: str) -> tuple[dict[str, float], str]:
+    """Phantom temperatures (°C) per ``ses-`` folder from the BIDS sessions file.
+
+    Reads ``sub-<label>/sub-<label>_sessions.tsv`` (BIDS: one row per session, first
+    column ``session_id``); ``column`` holds the temperature in °C, described in the
+    file's JSON sidecar (``sub-<label>_sessions.json``: ``{column: {"Description": ...,
+    "Units": "degC"}}``). Empty cells and ``n/a`` mean "not measured" (the sidecars or the
+    config fallback then apply). Returns ({ses-folder: °C}, file name); an empty mapping
+    when the file or the column is absent.
+    """
+    import csv
+    tsv = sub_dir / f"{sub_dir.name}_sessions.tsv"
+    if not tsv.is_file():
+        return {}, ""
+    side = tsv.with_suffix(".json")
+    if side.is_file():
+        try:
+            meta = json.loads(side.read_text(encoding="utf-8"))
+        except (OSError, UnicodeDecodeError, ValueError) as exc:
+            raise InputError(f"{side}: not a readable JSON sidecar ({exc}).") from None
+        units = (meta.get(column) or {}).get("Units") if isinstance(meta, dict) and \
+            isinstance(meta.get(column), dict) else None
+        if units is not None and str(units).replace("°", "deg").lower() not in \
+                ("degc", "degree celsius", "degrees celsius", "celsius", "c"):
+            raise InputError(f"{side}: key `{column}.Units` is {units!r}; the phantom "
+                             "temperature column must be in degrees Celsius (\"degC\").")
+    try:
+        with tsv.open(encoding="utf-8", newline="") as fh:
+            rows = list(csv.DictReader(fh, delimiter="\t"))
+    except (OSError, UnicodeDecodeError, csv.Error) as exc:
+        raise InputError(f"{tsv}: cannot read the BIDS sessions file ({exc}).") from None
+    if not rows or column not in rows[0]:
+        return {}, ""
+    if "session_id" not in rows[0]:
+        raise InputError(f"{tsv}: no `session_id` column; a BIDS sessions file lists each "
+                         "session as ses-<label> in its first column, session_id.")
+    out = {}
+    for i, r in enumerate(rows, start=2):
+        text = (r.get(column) or "").strip()
+        if text in ("", "n/a"):
+            continue
+        try:
+            t = float(text)
+        except ValueError:
+            t = float("nan")
+        if not (-20.0 <= t <= 60.0):
+            raise InputError(f"{tsv}: line {i}, column `{column}`: {text!r} is not a phantom "
+                             "temperature in °C (expected a number from -20 to 60, or n/a "
+                             "when not measured).")
+        out[str(r["session_id"]).strip()] = t
+    return out, tsv.name
+
+
 def plan(cfg: dict) -> Plan:
     """Find the sessions of ``input_dir`` and the fit jobs of each (reads headers only)."""
     from pipeline.series import _load_image
@@ -143,7 +198,9 @@ def plan(cfg: dict) -> Plan:
     root = Path(cfg["input_dir"])
     only = set(d.get("sessions") or [])
     sessions = []
+    column = cfg["phantom"]["temperature_column"]
     for sub_dir in sorted(p for p in root.glob(d["subject_glob"]) if p.is_dir()):
+        temps, temps_file = session_temperatures(sub_dir, column)
         for ses_dir in sorted(p for p in sub_dir.glob(d["session_glob"]) if p.is_dir()):
             if only and ses_dir.name not in only:
                 continue
@@ -159,6 +216,9 @@ def plan(cfg: dict) -> Plan:
             site, scanner = _site_scanner(names, cfg)
             s = Session(sub_dir.name, ses_dir.name, ses_dir, site, scanner,
                         str(labels[0]) if labels else None)
+            if ses_dir.name in temps:
+                s.temperature = temps[ses_dir.name]
+                s.temperature_source = f"{temps_file} ({column})"
             for model, m in cfg["models"].items():
                 files = [p for p in names if fnmatch.fnmatch(p.name, m["pattern"])
                          and p not in labels and re.search(r"\.nii(\.gz)?$", p.name)]

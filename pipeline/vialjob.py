@@ -17,7 +17,8 @@ from pathlib import Path
 import numpy as np
 
 from pipeline.errors import InputError
-from pipeline.qcjob import MapFile, LabelSource, discover_maps, open_source_series, session_of
+from pipeline.qcjob import MapFile, LabelSource, discover_maps, session_of
+from pipeline.qcrender import open_source_series
 
 # Images that show vial contrast: the proton-density-like M0 map first (it finds the
 # phantom), then relaxation maps whose contrast complements it.
@@ -83,17 +84,41 @@ def localisation_images(group: list[MapFile]) -> tuple[list[np.ndarray], list[st
     return images, used
 
 
+def contrast_maps(group: list[MapFile], reference) -> list[tuple[np.ndarray, dict[int, float]]]:
+    """(map, {label: reference value}) for each relaxation map of a grid that the reference
+    table gives values for: what decides vial identity on a symmetric layout."""
+    from qc.reference import MAP_QUANTITY
+    out = []
+    for mf in group:
+        q = MAP_QUANTITY.get(mf.suffix)
+        if reference is None or q is None or not reference.has(q):
+            continue
+        ref = reference.at_temperature(q, None)
+        vals = {int(r.label): float(r.reference) for r in ref.itertuples()
+                if np.isfinite(float(r.reference))}
+        if vals:
+            out.append((mf.data(), vals))
+    return out
+
+
 def place_vials(maps_dir: str | Path, layout_path: str | Path, margin_mm: float,
-                session: str | None = None) -> list[GridPlacement]:
+                session: str | None = None, reference_path: str | Path | None = None,
+                mirror: bool = True) -> list[GridPlacement]:
     """Localise the layout's vials on every voxel grid found in ``maps_dir``.
+
+    With a reference table, the relaxation maps' vial values decide between placements
+    the geometry cannot tell apart (a symmetric layout); ``mirror=False`` searches
+    unflipped placements only.
 
     Raises :class:`qc.localise.PhantomNotFoundError` (bad input) or
     :class:`qc.localise.PoorMatchError` (a QC failure; ``.placement`` holds what was found).
     """
     from qc.layout import read_layout
     from qc.localise import LocalisationError, PoorMatchError, localise
+    from qc.reference import Reference
 
     layout = read_layout(layout_path)
+    reference = Reference.load(reference_path) if reference_path is not None else None
     grids: dict[str, list[MapFile]] = {}
     for mf in discover_maps(maps_dir):
         grids.setdefault(_grid_key(mf), []).append(mf)
@@ -105,7 +130,8 @@ def place_vials(maps_dir: str | Path, layout_path: str | Path, margin_mm: float,
             name = f"{name}_grid-{len(out) + 1}"
         where = f"{group[0].path.parent} ({', '.join(used)})"
         try:
-            pl = localise(images, group[0].affine, layout, margin_mm)
+            pl = localise(images, group[0].affine, layout, margin_mm, allow_mirror=mirror,
+                          contrast=contrast_maps(group, reference))
         except PoorMatchError as exc:
             err = PoorMatchError(f"{where}: {exc}", exc.placement)
             err.grid = GridPlacement(name, key, group[0].affine, images[0], exc.placement,
@@ -173,13 +199,16 @@ def report_section(placements: list[GridPlacement], layout_path: str | Path) -> 
 
 
 def run_qc_with_layout(maps_dir: str | Path, out_dir: str | Path, layout_path: str | Path,
-                       margin_mm: float, session: str | None = None, **run_qc_options):
+                       margin_mm: float, session: str | None = None, mirror: bool = True,
+                       **run_qc_options):
     """:func:`pipeline.qcjob.run_qc` with the vials placed from a layout (workflow and CLI).
 
     Writes the label map and overlay after the QC outputs. A poor placement raises
     :class:`qc.localise.PoorMatchError` — a QC failure for the caller to report (exit 1) —
     after writing the rejected placement's overlay, whose path the message names.
-    ``run_qc_options`` are passed on (reference_path, config, temperature, erode_mm, ...).
+    ``mirror``: also try mirror-flipped placements. ``run_qc_options`` are passed on
+    (reference_path, config, temperature, erode_mm, ...); the reference also decides vial
+    identity on a symmetric layout.
     """
     import math
 
@@ -189,7 +218,8 @@ def run_qc_with_layout(maps_dir: str | Path, out_dir: str | Path, layout_path: s
     if not math.isfinite(margin_mm) or margin_mm < 0:
         raise InputError(f"--margin-mm must be a non-negative margin in mm, got {margin_mm}.")
     try:
-        grids = place_vials(maps_dir, layout_path, margin_mm, session)
+        grids = place_vials(maps_dir, layout_path, margin_mm, session,
+                            run_qc_options.get("reference_path"), mirror)
     except PoorMatchError as exc:
         grid = getattr(exc, "grid", None)
         if grid is None:

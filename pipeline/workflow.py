@@ -113,14 +113,31 @@ def step_chunk(model: str, inputs: Sequence[str], z0: int, z1: int, out: str,
 
 def qc_settings(cfg: dict, s: Session) -> dict:
     """What the QC job of session ``s`` needs (passed as a rule parameter, so a change
-    reruns exactly the jobs it affects)."""
+    reruns exactly the jobs it affects: the layout's options only where it places vials,
+    the temperature only of its session)."""
     ph = cfg["phantom"]
-    return {"sub": s.sub, "ses": s.ses, "session": s.label, "site": s.site,
-            "scanner": s.scanner, "labels": s.labels, "labels_pattern": ph["labels"],
-            "folder": str(s.folder), "reference": ph.get("reference"),
-            "tolerances": ph.get("tolerances"), "erode_mm": ph.get("erode_mm", 0.0),
-            "layout": ph.get("layout"), "margin_mm": ph.get("margin_mm", 2.0),
-            "figures": cfg["report"]["figures"]}
+    out = {"sub": s.sub, "ses": s.ses, "session": s.label, "site": s.site,
+           "scanner": s.scanner, "labels": s.labels, "labels_pattern": ph["labels"],
+           "folder": str(s.folder), "reference": ph.get("reference"),
+           "tolerances": ph.get("tolerances"), "erode_mm": ph.get("erode_mm", 0.0),
+           "layout": None if s.labels else ph.get("layout"),
+           "figures": cfg["report"]["figures"],
+           "temperature": s.temperature, "temperature_source": s.temperature_source}
+    if out["layout"]:
+        out["margin_mm"] = ph.get("margin_mm", 2.0)
+        out["mirror_search"] = ph.get("mirror_search", True)
+    return out
+
+
+def qc_inputs(cfg: dict, plan_: Plan, wc) -> dict[str, list[str]]:
+    """Inputs of a session's QC job: its fit manifests and the files that judge them (the
+    reference, tolerances, label map, and the layout where it places the vials), so
+    editing any of them reruns the QC jobs it affects and nothing else."""
+    s = plan_.session(wc.sub, wc.ses)
+    ph = cfg["phantom"]
+    judge = [ph[k] for k in ("reference", "tolerances") if ph.get(k)]
+    judge += [s.labels] if s.labels else ([ph["layout"]] if ph.get("layout") else [])
+    return {"manifests": [j.manifest() for j in s.series], "judge": judge}
 
 
 def step_qc(settings: dict, manifests: Sequence[str], out: str) -> None:
@@ -149,6 +166,9 @@ def step_qc(settings: dict, manifests: Sequence[str], out: str) -> None:
         models = []
     options = dict(reference_path=s["reference"], config=s["tolerances"],
                    session=s["session"], erode_mm=s["erode_mm"], figures=s["figures"])
+    if s.get("temperature") is not None:
+        options.update(temperature=s["temperature"],
+                       temperature_source=s["temperature_source"])
     for model in models:
         maps_dir = Path(manifests[0]).parent.parent / model
         if s["labels"]:
@@ -157,7 +177,8 @@ def step_qc(settings: dict, manifests: Sequence[str], out: str) -> None:
         else:
             try:
                 res = run_qc_with_layout(maps_dir, qc_root / model, s["layout"],
-                                         s["margin_mm"], **options)
+                                         s["margin_mm"], mirror=s.get("mirror_search", True),
+                                         **options)
             except PoorMatchError as exc:
                 summary["models"][model] = {"roi_stats": None, "counts": {"fail": 1},
                                             "warnings": [f"vial placement: {exc}"],
@@ -185,7 +206,7 @@ def session_table(summary: dict) -> "pd.DataFrame":
         if not m["roi_stats"]:  # vial placement failed: no statistics
             continue
         t = pd.read_csv(m["roi_stats"], sep="\t")
-        t.insert(0, "model", model)
+        t["model"] = model
         t["series"] = [history_series(model, str(st_), summary["ses"]) for st_ in t["series"]]
         parts.append(t)
     # no statistics (a session without label map or layout: maps only): an empty table
@@ -355,26 +376,36 @@ def _cmd(step: str, args: Sequence[str], log: Sequence[str]) -> str:
 
 
 def fit_inputs(cfg: dict, plan_: Plan, wc, chunks: bool = True) -> dict[str, list[str]]:
-    """Inputs of a fit (or chunk) job: the series, its chunk files, the dam manifest."""
+    """Inputs of a fit (or chunk) job: the series and its JSON sidecars (an edited
+    acquisition parameter reruns the fit), its chunk files, the dam manifest."""
+    from pipeline.series import sidecar_path
     job = plan_.job(wc.sub, wc.ses, wc.model, wc.stem)
     src = plan_.b1_source(cfg, job)
-    out = {"series": job.inputs, "b1": [src.manifest()] if src else []}
+    sidecars = [str(sidecar_path(p)) for p in job.inputs if sidecar_path(p).is_file()]
+    out = {"series": job.inputs, "sidecars": sidecars, "b1": [src.manifest()] if src else []}
     if chunks:
         out["chunks"] = job.chunk_files()
     return out
+
+
+def fit_params(cfg: dict, job_model: str) -> dict:
+    """The settings that change a fit's result (a rule parameter: a change reruns the fits
+    of that model only)."""
+    m = cfg["models"][job_model]
+    return {"engine": m.get("engine", cfg["fit"]["engine"]), "time_unit": m.get("time_unit", "s"),
+            "b1": m.get("b1"), "options": model_options(cfg, job_model)}
 
 
 def fit_command(cfg: dict, plan_: Plan, step: str, wc, input, output, threads: int,
                 log) -> str:
     """Shell command of a ``fit`` or ``chunk`` job (a separate process per job)."""
     job = plan_.job(wc.sub, wc.ses, wc.model, wc.stem)
-    m = cfg["models"][job.model]
+    fp = fit_params(cfg, job.model)
     args = ["--model", job.model, "--inputs", *input.series,
-            "--engine", m.get("engine", cfg["fit"]["engine"]), "--threads", threads,
-            "--time-unit", m.get("time_unit", "s")]
+            "--engine", fp["engine"], "--threads", threads, "--time-unit", fp["time_unit"]]
     if input.b1:
         args += ["--b1-manifest", input.b1[0]]
-    opts = model_options(cfg, job.model)
+    opts = fp["options"]
     if opts:
         args += ["--options", json.dumps(opts, sort_keys=True)]
     if step == "chunk":

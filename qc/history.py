@@ -1,7 +1,8 @@
 """History database of ROI statistics across sessions (design §6).
 
 One SQLite file holds every session's ROI statistics keyed by
-``(site, scanner, session, series, map, label)``. Recording a session is one
+``(site, scanner, session, model, series, map, label)``: each fitted model is its own
+history series (``mese`` and ``mese-mono`` fit the same images but are judged apart). Recording a session is one
 transaction that first deletes the session's rows and then inserts the new
 ones, so a rerun *replaces* a session instead of duplicating it, and a crash
 mid-way leaves the previous state intact (SQLite's atomic commit).
@@ -10,6 +11,10 @@ The database runs in write-ahead-log mode so the trend job can read while a
 session job writes; writers wait (``busy_timeout``) rather than fail when two
 session jobs finish at once. WAL needs a local file system: on a cluster keep the
 database on a node-local or properly locking shared disk (not plain NFS).
+
+Schema versions: 1 had no ``model`` column (the key lacked it); opening such a file
+migrates it in one transaction (:func:`migrate`), taking each row's model from the
+``model:`` prefix of its series key and keeping every row.
 """
 from __future__ import annotations
 
@@ -21,16 +26,16 @@ import pandas as pd
 
 from fitting.errors import RelaxlineError
 
-KEY = ("site", "scanner", "session", "series", "map", "label")
+KEY = ("site", "scanner", "session", "model", "series", "map", "label")
 # roi_stats.tsv columns kept in the history (design §6), after the key.
-STATS = ("name", "n_voxels", "mean", "sd", "median", "iqr", "cv_pct", "reference",
+STATS = ("name", "n_voxels", "mean", "sd", "median", "iqr", "cv_pct", "units", "reference",
          "reference_at_temperature", "bias_pct", "tolerance_pct", "status")
-EXTRA = ("subject", "temperature", "recorded_at")
+EXTRA = ("subject", "temperature", "temperature_source", "recorded_at")
 COLUMNS = KEY + STATS + EXTRA
-_TEXT = {"site", "scanner", "session", "series", "map", "name", "status", "subject",
-         "recorded_at"}
+_TEXT = {"site", "scanner", "session", "model", "series", "map", "name", "units", "status",
+         "subject", "temperature_source", "recorded_at"}
 _INT = {"label", "n_voxels"}
-SCHEMA_VERSION = 1
+SCHEMA_VERSION = 2
 BUSY_TIMEOUT_MS = 120_000
 
 
@@ -38,11 +43,13 @@ def _sql_type(col: str) -> str:
     return "TEXT" if col in _TEXT else "INTEGER" if col in _INT else "REAL"
 
 
+def _table_sql(name: str) -> str:
+    cols = ", ".join(f"{c} {_sql_type(c)}{' NOT NULL' if c in KEY else ''}" for c in COLUMNS)
+    return f"CREATE TABLE IF NOT EXISTS {name} ({cols}, PRIMARY KEY ({', '.join(KEY)}))"
+
+
 _CREATE = f"""
-CREATE TABLE IF NOT EXISTS roi_history (
-    {", ".join(f"{c} {_sql_type(c)}{' NOT NULL' if c in KEY else ''}" for c in COLUMNS)},
-    PRIMARY KEY ({", ".join(KEY)})
-);
+{_table_sql("roi_history")};
 CREATE TABLE IF NOT EXISTS sessions (
     site TEXT NOT NULL, scanner TEXT NOT NULL, session TEXT NOT NULL,
     subject TEXT, source TEXT, n_rows INTEGER, recorded_at TEXT,
@@ -62,9 +69,14 @@ def connect(path: str | Path) -> sqlite3.Connection:
         conn.execute(f"PRAGMA busy_timeout={BUSY_TIMEOUT_MS}")
         mode = conn.execute("PRAGMA journal_mode=WAL").fetchone()[0]
         conn.execute("PRAGMA synchronous=NORMAL")  # durable enough with WAL, much faster
+        fresh = not conn.execute("SELECT 1 FROM sqlite_master WHERE name='roi_history'"
+                                 ).fetchone()
         conn.executescript(_CREATE)
-        conn.execute("INSERT OR IGNORE INTO meta VALUES ('schema_version', ?)",
-                     (str(SCHEMA_VERSION),))
+        if fresh:
+            conn.execute("INSERT OR IGNORE INTO meta VALUES ('schema_version', ?)",
+                         (str(SCHEMA_VERSION),))
+        else:
+            migrate(conn)
     except sqlite3.DatabaseError as exc:
         raise RelaxlineError(f"{path}: cannot open the history database ({exc}). If it is "
                              "not a relaxline history file, point `history.database` in the "
@@ -77,6 +89,51 @@ def connect(path: str | Path) -> sqlite3.Connection:
     return conn
 
 
+def model_of_series(series: str) -> str:
+    """The model of a history series key ``model:stem`` ('' for a bare stem)."""
+    return series.split(":", 1)[0] if ":" in series else ""
+
+
+def migrate(conn: sqlite3.Connection) -> int:
+    """Bring an older history database to :data:`SCHEMA_VERSION`, keeping every row.
+
+    Version 1 lacked the ``model`` column (and ``units``, ``temperature_source``). The
+    table is rebuilt with the new key in one transaction: rows are copied with the model
+    taken from the series key's ``model:`` prefix; the row count is checked before the
+    commit, so a failure leaves the old table untouched. Returns the rows migrated (0 when
+    already current).
+    """
+    cols = [r[1] for r in conn.execute("PRAGMA table_info(roi_history)")]
+    if "model" in cols:
+        return 0
+    conn.execute("BEGIN IMMEDIATE")
+    try:
+        cols = [r[1] for r in conn.execute("PRAGMA table_info(roi_history)")]
+        if "model" in cols:   # another process migrated it meanwhile
+            conn.execute("ROLLBACK")
+            return 0
+        n = conn.execute("SELECT COUNT(*) FROM roi_history").fetchone()[0]
+        conn.execute("DROP TABLE IF EXISTS roi_history_new")
+        conn.execute(_table_sql("roi_history_new"))
+        keep = [c for c in COLUMNS if c in cols]
+        conn.execute(
+            f"INSERT INTO roi_history_new (model, {', '.join(keep)}) SELECT "
+            "CASE WHEN instr(series, ':') > 0 THEN substr(series, 1, instr(series, ':') - 1) "
+            f"ELSE '' END, {', '.join(keep)} FROM roi_history")
+        if conn.execute("SELECT COUNT(*) FROM roi_history_new").fetchone()[0] != n:
+            raise RelaxlineError("history migration lost rows; the database was left as it "
+                                 "was.")
+        conn.execute("DROP TABLE roi_history")
+        conn.execute("ALTER TABLE roi_history_new RENAME TO roi_history")
+        conn.execute("INSERT OR REPLACE INTO meta VALUES ('schema_version', ?)",
+                     (str(SCHEMA_VERSION),))
+        conn.execute("COMMIT")
+    except BaseException:
+        conn.execute("ROLLBACK")
+        raise
+    return n
+
+
 def _rows(df: pd.DataFrame, site: str, scanner: str, session: str, subject: str | None,
           temperature: float | None, when: str) -> list[tuple]:
     missing = [c for c in ("series", "map", "label") if c not in df.columns]
@@ -86,6 +143,8 @@ def _rows(df: pd.DataFrame, site: str, scanner: str, session: str, subject: str 
     out = df.copy()
     out["site"], out["scanner"], out["session"] = site, scanner, session
     out["subject"], out["recorded_at"] = subject, when
+    if "model" not in out.columns:
+        out["model"] = [model_of_series(str(v)) for v in out["series"]]
     if "temperature" not in out.columns:
         out["temperature"] = temperature
     for c in COLUMNS:
@@ -95,7 +154,7 @@ def _rows(df: pd.DataFrame, site: str, scanner: str, session: str, subject: str 
     if dup.any():
         first = out.loc[dup, list(KEY)].iloc[0].to_dict()
         raise RelaxlineError(f"ROI statistics of session {session} repeat the key {first}; "
-                             "each (series, map, label) may appear once per session.")
+                             "each (model, series, map, label) may appear once per session.")
 
     def conv(c: str, v):
         if v is None or (isinstance(v, float) and np.isnan(v)) or v is pd.NA:
@@ -115,7 +174,8 @@ def record_session(db: str | Path, stats: pd.DataFrame, *, site: str, scanner: s
     Parameters
     ----------
     db : path of the SQLite file (created if missing).
-    stats : ROI statistics with at least ``series, map, label`` and the design §6 columns.
+    stats : ROI statistics with at least ``series, map, label`` and the design §6 columns;
+        ``model`` (else taken from a ``model:`` prefix of ``series``).
     site, scanner, session : the session's identity (part of the key).
     subject, temperature, source : stored alongside for the report.
 

@@ -33,7 +33,12 @@ Method
    positions of the winner not shared by the runner-up (and vice versa) the runner-up's
    mean evidence divided by the winner's must stay below ``max_ambiguity``. A layout
    that a rotation or flip maps onto itself has no differing positions: ambiguity 1.
-   Failing either is :class:`PoorMatchError` (a QC failure, never a silent misplacement).
+   **Contrast decides a geometric tie**: given quantitative maps with reference values
+   (``contrast``), the tied placements are ranked by the Spearman rank correlation of
+   the placed vials' medians with the reference values (Spearman 1904, Am J Psychol
+   15:72); the best is taken when ρ ≥ 0.8 and it beats the next by 0.3.
+   Failing the score, or an unresolved tie, is :class:`PoorMatchError` (a QC failure,
+   never a silent misplacement).
 5. **Regions**: a disc of radius ``radius_mm − margin_mm`` around each placed centre (a
    voxel belongs to it when its centre lies inside), on every phantom slice (slices where
    the phantom covers at least half its largest cross-section) or, for rows with
@@ -54,22 +59,16 @@ import numpy as np
 import pandas as pd
 from scipy import ndimage, optimize
 
-from fitting.errors import RelaxlineError
 from qc.figures import to_png
 from qc.layout import check_layout
+from qc.vialimage import (GAP, LocalisationError, PhantomNotFoundError,  # noqa: F401
+                          _as_stack, _contrast_slice, _Group, _ncc, _place, _render,
+                          _spacing, find_phantom)
 
 MIN_SCORE = 0.35        # refined Pearson r below this: no convincing vial pattern
 MAX_AMBIGUITY = 0.7     # runner-up evidence / best evidence above this: identities unclear
-GAP = 2.5                # gap between a vial and its template ring, in blur widths
-MIN_CONTRAST = 0.03     # log-contrast that counts as fully visible even in noiseless data
-
-
-class LocalisationError(RelaxlineError):
-    """Vials could not be localised."""
-
-
-class PhantomNotFoundError(LocalisationError):
-    """No phantom that could hold the layout is in the image (bad input: exit 2)."""
+MIN_RANK_RHO = 0.8      # contrast decides only with this rank agreement with the reference
+RANK_MARGIN = 0.3       # ... and this much better than the next placement
 
 
 class PoorMatchError(LocalisationError):
@@ -117,228 +116,14 @@ class Placement:
     margin_mm: float
     overlay_slice: int = 0
     voxel_mm: tuple[float, float, float] = (1.0, 1.0, 1.0)
+    identity: str = ""      # how vial identities were decided when geometry could not
 
     def summary(self) -> str:
         return (f"rotation {self.angle_deg:+.1f} deg{', mirrored' if self.mirrored else ''}, "
                 f"centre at voxel ({self.centre_ij[0]:.1f}, {self.centre_ij[1]:.1f}), "
                 f"match score {self.score:.2f} (minimum {MIN_SCORE}), "
-                f"ambiguity {self.ambiguity:.2f} (maximum {MAX_AMBIGUITY})")
-
-
-# ----------------------------------------------------------------------------- helpers
-
-def _spacing(affine: np.ndarray) -> tuple[float, float, float]:
-    a = np.asarray(affine, float)
-    if a.shape != (4, 4) or not np.all(np.isfinite(a)):
-        raise LocalisationError("the image affine must be a finite 4x4 matrix.")
-    d = np.linalg.norm(a[:3, :3], axis=0)
-    if np.any(d <= 0):
-        raise LocalisationError("the image affine has a zero voxel size; check the NIfTI header.")
-    return float(d[0]), float(d[1]), float(d[2])
-
-
-def _as_stack(images) -> list[np.ndarray]:
-    if isinstance(images, np.ndarray):
-        images = [images]
-    out = []
-    for im in images:
-        a = np.asarray(im, dtype=np.float64)
-        while a.ndim > 3 and a.shape[-1] == 1:
-            a = a[..., 0]
-        if a.ndim == 2:
-            a = a[..., None]
-        if a.ndim != 3:
-            raise LocalisationError(f"localisation needs 2D or 3D images, got shape {a.shape}.")
-        out.append(np.where(np.isfinite(a), a, 0.0))
-    if not out:
-        raise LocalisationError("no image given to localise the vials on.")
-    if any(a.shape != out[0].shape for a in out):
-        raise LocalisationError("the images used for localisation are not on one grid: "
-                                f"shapes {[a.shape for a in out]}.")
-    return out
-
-
-def _otsu(values: np.ndarray, bins: int = 256) -> float:
-    """Otsu's threshold: maximise the between-class variance (Otsu 1979)."""
-    lo, hi = np.percentile(values, [0.0, 99.9])
-    hist, edges = np.histogram(np.clip(values, lo, hi), bins=bins, range=(lo, hi))
-    mids = 0.5 * (edges[1:] + edges[:-1])
-    w0 = np.cumsum(hist)
-    w1 = w0[-1] - w0
-    m0 = np.cumsum(hist * mids)
-    mu0 = m0 / np.maximum(w0, 1)
-    mu1 = (m0[-1] - m0) / np.maximum(w1, 1)
-    between = (w0 * w1 * (mu0 - mu1) ** 2)[:-1]
-    # a gap between the modes gives a plateau of equal maxima: take its middle
-    top = np.flatnonzero(between >= between.max() * (1 - 1e-12))
-    return float(0.5 * (edges[top[0] + 1] + edges[top[-1] + 1]))
-
-
-def _rot(angle_deg: float, mirrored: bool) -> np.ndarray:
-    t = np.deg2rad(angle_deg)
-    r = np.array([[np.cos(t), -np.sin(t)], [np.sin(t), np.cos(t)]])
-    return r @ np.diag([1.0, -1.0]) if mirrored else r
-
-
-def _place(p_mm: np.ndarray, angle_deg: float, mirrored: bool, centre: np.ndarray) -> np.ndarray:
-    """Layout points (n, 2) in the phantom frame -> in-plane image mm (n, 2)."""
-    return centre + p_mm @ _rot(angle_deg, mirrored).T
-
-
-# ----------------------------------------------------------------------- the phantom
-
-def find_phantom(image: np.ndarray, spacing: tuple[float, float, float],
-                 footprint_mm: float) -> np.ndarray:
-    """Boolean mask of the phantom (largest bright object, holes filled per slice).
-
-    Raises :class:`PhantomNotFoundError` when no object is large enough to hold a disc of
-    radius ``footprint_mm`` (the layout's extent).
-    """
-    dx, dy, _ = spacing
-    vals = image[np.isfinite(image)]
-    if vals.size == 0 or np.ptp(vals) <= 0:
-        raise PhantomNotFoundError("the image is constant (no phantom in it); check that the "
-                                   "right image was given.")
-    fg = image > _otsu(vals)
-    fg = ndimage.binary_opening(fg, structure=np.ones((3, 3, 1), bool))
-    lab, n = ndimage.label(fg)
-    need = 0.7 * np.pi * footprint_mm ** 2
-    if n == 0:
-        biggest = 0.0
-        mask = np.zeros_like(fg)
-    else:
-        sizes = ndimage.sum_labels(fg, lab, index=np.arange(1, n + 1))
-        mask = lab == (1 + int(np.argmax(sizes)))
-        for k in range(mask.shape[2]):
-            mask[..., k] = ndimage.binary_fill_holes(mask[..., k])
-        biggest = float(mask.sum(axis=(0, 1)).max()) * dx * dy
-    if biggest < need:
-        raise PhantomNotFoundError(
-            f"no phantom found: the largest object in the image covers {biggest:.0f} mm^2 in "
-            f"one slice, but the layout needs a phantom at least {2 * footprint_mm:.0f} mm "
-            f"across (about {need:.0f} mm^2). Is the phantom inside the field of view, is "
-            "this the right image (not noise only), and is this the right layout?")
-    return mask
-
-
-# -------------------------------------------------------------- vial-contrast image
-
-def _robust_quadratic(u: np.ndarray, v: np.ndarray, y: np.ndarray, floor: float,
-                      iters: int = 10) -> np.ndarray:
-    """Quadratic fill trend fitted by IRLS with Tukey bisquare weights.
-
-    The residual scale is re-estimated each pass from the current inliers only (never
-    below ``floor``, the noise level), so the fit settles on the fill even when vials
-    cover nearly half of the slice and would inflate an all-pixel scale estimate.
-    """
-    su, sv = max(np.ptp(u), 1e-9), max(np.ptp(v), 1e-9)
-    uu, vv = (u - u.mean()) / su, (v - v.mean()) / sv
-    a = np.stack([np.ones_like(uu), uu, vv, uu * uu, uu * vv, vv * vv], axis=1)
-    w = np.ones_like(y)
-    for _ in range(iters):
-        aw = a * w[:, None]
-        coef = np.linalg.solve(aw.T @ a + 1e-9 * np.eye(a.shape[1]), aw.T @ y)
-        res = y - a @ coef
-        scale = max(1.4826 * np.median(np.abs(res[w > 0.5])), floor)
-        z = res / (4.685 * scale)   # the usual bisquare tuning constant
-        w_new = np.where(np.abs(z) < 1, (1 - z * z) ** 2, 0.0)
-        if (w_new > 0.5).sum() < a.shape[1] * 5:
-            break
-        w = w_new
-    return a @ coef
-
-
-def _contrast_slice(img: np.ndarray, mask: np.ndarray, inner: np.ndarray, sigma_px: tuple,
-                    ) -> np.ndarray:
-    """Vial-contrast F in [0, 1) on one slice (0 outside ``inner``)."""
-    out = np.zeros(img.shape)
-    if inner.sum() < 20:
-        return out
-    inside = img[mask]
-    pos = inside > 0
-    if pos.mean() > 0.95:
-        floor = 1e-3 * np.median(inside[pos])
-        y = np.log(np.maximum(img, floor))
-    else:   # signed data (e.g. a map with negative values): relative linear contrast
-        y = img / (np.median(np.abs(inside)) + 1e-12)
-    # neighbour differences give the noise level of the unsmoothed slice
-    d = np.diff(y, axis=0)[mask[1:] & mask[:-1]]
-    noise = 1.4826 * np.median(np.abs(d - np.median(d))) / np.sqrt(2) if d.size else 0.0
-    noise *= 1.0 / np.sqrt(4 * np.pi * sigma_px[0] * sigma_px[1])  # after Gaussian smoothing
-    m = mask.astype(float)
-    num = ndimage.gaussian_filter(y * m, sigma_px, mode="constant")
-    den = ndimage.gaussian_filter(m, sigma_px, mode="constant")
-    ys = np.where(den > 1e-6, num / np.maximum(den, 1e-6), 0.0)
-    ii, jj = np.nonzero(inner)
-    trend = _robust_quadratic(ii.astype(float), jj.astype(float), ys[inner], noise)
-    scale = max(4.0 * noise, MIN_CONTRAST)
-    out[inner] = np.tanh(np.abs(ys[inner] - trend) / scale)
-    return out
-
-
-# ------------------------------------------------------------------- the template
-
-def _ramp(x: np.ndarray, sigma: float) -> np.ndarray:
-    """Smooth step from 0 to 1 around x = 0: a linear ramp with the slope of Φ(x/σ) at 0."""
-    return np.clip(x / (sigma * np.sqrt(2 * np.pi)) + 0.5, 0.0, 1.0)
-
-
-def _profile(r: float | np.ndarray, d: np.ndarray, sigma: float) -> np.ndarray:
-    """One vial of the template: its disc minus an equal-area ring around it.
-
-    The ring makes each vial's template sum to zero, so the match rewards a vial that
-    stands out from its *surroundings* (a smooth shading residual scores nothing) and
-    penalises a placement half a radius off, which keeps distinct placements apart. The
-    ring starts ``GAP`` blur widths outside the vial so the blurred edge is not counted.
-    """
-    r_in = r + GAP * sigma
-    r_out = np.sqrt(r_in ** 2 + r ** 2)
-    return _ramp(r - d, sigma) - (_ramp(r_out - d, sigma) - _ramp(r_in - d, sigma))
-
-
-def _render(shape: tuple[int, int], spacing2: tuple[float, float], centres: np.ndarray,
-            radii: np.ndarray, sigma_mm: float) -> np.ndarray:
-    """Sum of blurred discs Φ((r − d)/σ) on a 2D grid (each within its bounding box)."""
-    dx, dy = spacing2
-    t = np.zeros(shape)
-    for (cu, cv), r in zip(centres, radii):
-        ext = np.sqrt((r + GAP * sigma_mm) ** 2 + r ** 2) + 2 * sigma_mm
-        i0, i1 = max(int(np.floor((cu - ext) / dx)), 0), min(int(np.ceil((cu + ext) / dx)) + 1, shape[0])
-        j0, j1 = max(int(np.floor((cv - ext) / dy)), 0), min(int(np.ceil((cv + ext) / dy)) + 1, shape[1])
-        if i0 >= i1 or j0 >= j1:
-            continue
-        du = np.arange(i0, i1)[:, None] * dx - cu
-        dv = np.arange(j0, j1)[None, :] * dy - cv
-        t[i0:i1, j0:j1] += _profile(r, np.hypot(du, dv), sigma_mm)
-    return t
-
-
-@dataclass
-class _Group:
-    rows: np.ndarray        # indices into the layout
-    slices: list[int]
-    feature: np.ndarray     # 2D, zero-mean inside mask, 0 outside
-    mask: np.ndarray        # 2D bool
-    fvals: np.ndarray       # (N,) feature at mask pixels (zero-mean)
-    raw: np.ndarray         # (N,) feature at mask pixels before centring
-
-
-def _ncc(groups: list[_Group], spacing2: tuple[float, float], p_mm: np.ndarray,
-         radii: np.ndarray, angle: float, mirrored: bool, centre: np.ndarray,
-         sigma_t: float) -> float:
-    """Pearson correlation of feature and template over the phantom, all groups pooled."""
-    num = ff = tt = 0.0
-    for g in groups:
-        t = _render(g.mask.shape, spacing2, _place(p_mm[g.rows], angle, mirrored, centre),
-                    radii[g.rows], sigma_t)
-        # feature is zero outside the mask and sums to zero inside, so
-        # sum_mask F (T - mean T) = sum F T and sum_mask (T - mean T)^2 = S2 - S1^2 / N
-        tm = t * g.mask
-        w = len(g.slices)
-        num += w * float(np.vdot(g.feature, t))
-        ff += w * float(g.fvals @ g.fvals)
-        tt += w * float(np.vdot(tm, t) - tm.sum() ** 2 / len(g.fvals))
-    return num / np.sqrt(ff * tt) if ff > 0 and tt > 0 else 0.0
+                f"ambiguity {self.ambiguity:.2f} (maximum {MAX_AMBIGUITY})"
+                + (f"; {self.identity}" if self.identity else ""))
 
 
 # --------------------------------------------------------------------- public API
@@ -346,7 +131,8 @@ def _ncc(groups: list[_Group], spacing2: tuple[float, float], p_mm: np.ndarray,
 def localise(images: np.ndarray | Sequence[np.ndarray], affine: np.ndarray,
              layout: pd.DataFrame, margin_mm: float = 1.0, *, allow_mirror: bool = True,
              search_mm: float = 12.0, min_score: float = MIN_SCORE,
-             max_ambiguity: float = MAX_AMBIGUITY) -> Placement:
+             max_ambiguity: float = MAX_AMBIGUITY,
+             contrast: Sequence[tuple[np.ndarray, dict[int, float]]] = ()) -> Placement:
     """Place the layout's vials on an image grid.
 
     Parameters
@@ -360,6 +146,12 @@ def localise(images: np.ndarray | Sequence[np.ndarray], affine: np.ndarray,
     allow_mirror : also consider the phantom's mirror image (flip); turn off for a layout
         that is mirror-symmetric but whose labels are not.
     search_mm : how far the phantom centre may lie from the bright object's centroid.
+    contrast : (quantitative map on the grid, {label: reference value}) pairs, e.g. the
+        T1 map with the reference T1 of each vial. When several placements fit the
+        geometry about equally (a rotation- or mirror-symmetric layout), the one whose
+        vial medians agree best in rank with the reference (Spearman's ρ, averaged over
+        the maps) is chosen, if ρ ≥ ``MIN_RANK_RHO`` and beats the next by
+        ``RANK_MARGIN``; otherwise the placement stays ambiguous (PoorMatchError).
 
     Returns
     -------
@@ -501,20 +293,19 @@ def localise(images: np.ndarray | Sequence[np.ndarray], affine: np.ndarray,
         return -float(res.fun), float(res.x[0]), mir, np.array(res.x[1:])
 
     top = refine(best)
-    score, angle, mirrored, centre = top
-    # runner-up: the best distinct coarse candidates, refined; one that climbs back into
-    # the winning pose is the same placement, not a rival
-    rival, rival_score, tried = None, 0.0, 0
+    # runner-ups: the best distinct coarse candidates, refined; one that climbs back into
+    # the winning pose (or another runner-up) is the same placement, not a rival
+    rivals: list[tuple] = []
+    seen = [best]
     for cand in coarse[1:]:
-        if tried == 3:
+        if len(seen) > (7 if contrast else 3):
             break
-        if not distinct(cand, best) or (rival is not None and not distinct(cand, rival)):
+        if any(not distinct(cand, c) for c in seen):
             continue
-        tried += 1
+        seen.append(cand)
         ref = refine(cand)
-        if distinct(ref, top) and ref[0] > rival_score:
-            rival, rival_score = ref, ref[0]
-    angle = float((angle + 180.0) % 360.0 - 180.0)
+        if distinct(ref, top) and all(distinct(ref, r) for r in rivals):
+            rivals.append(ref)
 
     def evidence(pts: np.ndarray) -> np.ndarray:
         """Per-vial contrast (disc mean minus ring mean of F) at placed centres."""
@@ -531,19 +322,66 @@ def localise(images: np.ndarray | Sequence[np.ndarray], affine: np.ndarray,
                 out[n] = float(g.feature[disc].mean() - g.feature[ring].mean())
         return out
 
-    # ambiguity: compare the vial evidence only where the two placements differ (vial
-    # positions of one not shared by the other); shared positions say nothing
+    def ambiguity_of(a: tuple, b: tuple) -> float:
+        """Evidence of ``b`` over that of ``a``, only where the two placements differ (vial
+        positions of one not shared by the other); shared positions say nothing."""
+        pa, pb = _place(p_mm, a[1], a[2], a[3]), _place(p_mm, b[1], b[2], b[3])
+        gap = np.hypot(pa[:, None, 0] - pb[None, :, 0], pa[:, None, 1] - pb[None, :, 1])
+        own, theirs = gap.min(axis=1) >= 0.5 * radii, gap.min(axis=0) >= 0.5 * radii
+        e_a = float(np.nanmean(evidence(pa)[own])) if own.any() else 0.0
+        e_b = float(np.nanmean(evidence(pb)[theirs])) if theirs.any() else e_a
+        return float(np.clip(max(e_b, 0.0) / e_a, 0, 9.99)) if e_a > 0 else 1.0
+
+    def rank_agreement(pose: tuple) -> float:
+        """Mean Spearman rank correlation of the placed vials' map medians with their
+        reference values (over the ``contrast`` maps); -1 when nothing to compare."""
+        from scipy.stats import spearmanr
+        pts_ = _place(p_mm, pose[1], pose[2], pose[3])
+        rhos = []
+        for img, ref in contrast:
+            vol = np.asarray(img, float).reshape(shape)
+            med, want = [], []
+            for n in range(len(lay)):
+                lab = int(labels_arr[n])
+                sl = [k for k, rows in rows_on.items() if n in rows]
+                if lab not in ref or not sl:
+                    continue
+                disc_n = np.hypot(ii - pts_[n, 0], jj - pts_[n, 1]) <= region_r[n]
+                v = vol[..., sl][disc_n]
+                v = v[np.isfinite(v)]
+                if v.size:
+                    med.append(float(np.median(v)))
+                    want.append(float(ref[lab]))
+            if len(med) >= 4:   # constant values (no contrast) agree with nothing
+                rho = spearmanr(med, want).statistic if np.ptp(med) > 0 and \
+                    np.ptp(want) > 0 else 0.0
+                rhos.append(float(rho) if np.isfinite(rho) else 0.0)
+        return float(np.mean(rhos)) if rhos else -1.0
+
+    ambiguities = [ambiguity_of(top, r) for r in rivals]
+    ambiguity = max(ambiguities, default=0.0)
+    identity = ""
+    if ambiguity > max_ambiguity and contrast:
+        # geometry cannot tell these placements apart: the vials' values can
+        ties = [top] + [r for r, a in zip(rivals, ambiguities) if a > max_ambiguity]
+        rho = [rank_agreement(t) for t in ties]
+        order = np.argsort(rho)[::-1]
+        first, second = rho[order[0]], rho[order[1]]
+        identity = (f"{len(ties)} placements fit the layout's geometry about equally; rank "
+                    f"correlation of the vials' values with the reference: best {first:.2f}, "
+                    f"next {second:.2f}")
+        if first >= MIN_RANK_RHO and first - second >= RANK_MARGIN:
+            top = ties[int(order[0])]
+            identity = f"vial identities from contrast ({identity})"
+            ambiguity_decided = True
+        else:
+            ambiguity_decided = False
+    else:
+        ambiguity_decided = ambiguity <= max_ambiguity
+    score, angle, mirrored, centre = top
+    angle = float((angle + 180.0) % 360.0 - 180.0)
     pts = _place(p_mm, angle, mirrored, centre)
     ev = evidence(pts)
-    ambiguity = 0.0
-    if rival is not None:
-        rpts = _place(p_mm, rival[1], rival[2], rival[3])
-        gap = np.hypot(pts[:, None, 0] - rpts[None, :, 0], pts[:, None, 1] - rpts[None, :, 1])
-        own = gap.min(axis=1) >= 0.5 * radii
-        theirs = gap.min(axis=0) >= 0.5 * radii
-        e_best = float(np.nanmean(ev[own])) if own.any() else 0.0
-        e_rival = float(np.nanmean(evidence(rpts)[theirs])) if theirs.any() else e_best
-        ambiguity = float(np.clip(max(e_rival, 0.0) / e_best, 0, 9.99)) if e_best > 0 else 1.0
 
     # ---- regions
     labels = np.zeros(shape, np.int16)
@@ -587,7 +425,7 @@ def localise(images: np.ndarray | Sequence[np.ndarray], affine: np.ndarray,
                           shift_mm=(float(centre[0] - centroid[0]), float(centre[1] - centroid[1])),
                           score=float(score), ambiguity=float(ambiguity),
                           margin_mm=float(margin_mm), overlay_slice=overlay_k,
-                          voxel_mm=(dx, dy, dz))
+                          voxel_mm=(dx, dy, dz), identity=identity)
 
     if outside_fov:
         raise PhantomNotFoundError(
@@ -599,14 +437,20 @@ def localise(images: np.ndarray | Sequence[np.ndarray], affine: np.ndarray,
             f"vial localisation failed: the image does not show the layout's vial pattern "
             f"convincingly ({placement.summary()}). Check that the layout belongs to this "
             "phantom and look at the overlay; or give a label map instead.", placement)
-    if ambiguity > max_ambiguity:
+    if not ambiguity_decided:
+        rival = rivals[int(np.argmax(ambiguities))]
         hint = (" The layout looks symmetric under a mirror flip; if the phantom cannot be "
-                "mirrored in practice, disable mirror search." if rival is not None and rival[2] != mirrored
-                else " The layout may be (nearly) symmetric under rotation; vial identities "
+                "placed mirrored in practice, turn mirror search off (`relaxline qc "
+                "--no-mirror`, config key `phantom.mirror_search: false`)."
+                if rival[2] != mirrored else
+                " The layout may be (nearly) symmetric under rotation; vial identities "
                 "need an asymmetric feature in the layout.")
+        contrast_note = (f" Contrast did not decide either: {identity}." if identity else
+                         " No quantitative map with reference values was available to "
+                         "tell the vials apart by their values.")
         raise PoorMatchError(
             f"vial localisation is ambiguous: a different placement matches almost as well "
-            f"({placement.summary()}).{hint}", placement)
+            f"({placement.summary()}).{hint}{contrast_note}", placement)
     poor = [int(labels_arr[n]) for n in range(len(lay)) if inside_frac[n] < 0.9]
     if poor:
         raise PoorMatchError(

@@ -124,3 +124,45 @@ def test_not_a_database(tmp_path):
 
 def test_missing_file_loads_empty(tmp_path):
     assert history.load_history(tmp_path / "none.sqlite").empty
+
+
+def test_model_is_part_of_the_key(tmp_path):
+    # mese and mese-mono fit the same series: one row each, told apart by the model
+    db = tmp_path / "h.sqlite"
+    both = pd.concat([_stats(2).assign(model="mese", map="T2map"),
+                      _stats(2).assign(model="mese-mono", map="T2map")])
+    assert history.record_session(db, both, site="A", scanner="S1", session="1") == 4
+    h = history.load_history(db)
+    assert sorted(h["model"].unique()) == ["mese", "mese-mono"]
+
+
+def test_version_1_database_is_migrated_without_losing_rows(tmp_path):
+    """A database written before the model column existed (schema 1) opens as schema 2:
+    every row kept, the model taken from the series key's `model:` prefix."""
+    db = tmp_path / "old.sqlite"
+    v1 = ["site", "scanner", "session", "series", "map", "label", "name", "n_voxels", "mean",
+          "sd", "median", "iqr", "cv_pct", "reference", "reference_at_temperature",
+          "bias_pct", "tolerance_pct", "status", "subject", "temperature", "recorded_at"]
+    conn = sqlite3.connect(db)
+    conn.executescript(
+        f"CREATE TABLE roi_history ({', '.join(v1)}, PRIMARY KEY (site, scanner, session, "
+        "series, map, label)); CREATE TABLE meta (key TEXT PRIMARY KEY, value TEXT); "
+        "INSERT INTO meta VALUES ('schema_version', '1');")
+    rows = [("A", "S", s, series, "T2map", lab) + (None,) * 2 + (0.1 * lab,) + (None,) * 12
+            for s in ("1", "2") for series in ("mese:sub-p_MESE", "mese-mono:sub-p_MESE",
+                                               "IRT1") for lab in (1, 2)]
+    conn.executemany(f"INSERT INTO roi_history ({', '.join(v1)}) VALUES "
+                     f"({', '.join('?' * len(v1))})", rows)
+    conn.commit()
+    conn.close()
+    h = history.load_history(db)
+    assert len(h) == len(rows) == 12
+    assert h.groupby("model").size().to_dict() == {"": 4, "mese": 4, "mese-mono": 4}
+    conn = sqlite3.connect(db)
+    assert conn.execute("SELECT value FROM meta WHERE key='schema_version'").fetchone()[0] \
+        == str(history.SCHEMA_VERSION)
+    conn.close()
+    # new sessions go in next to the migrated ones
+    history.record_session(db, _stats(2).assign(model="ir"), site="A", scanner="S",
+                           session="3")
+    assert len(history.load_history(db)) == 14

@@ -19,7 +19,8 @@ import pytest
 
 from fitting.errors import RelaxlineError
 from qc.layout import LayoutError, check_layout, read_layout
-from qc.localise import (LocalisationError, PhantomNotFoundError, PoorMatchError, _otsu,
+from qc.vialimage import _otsu
+from qc.localise import (LocalisationError, PhantomNotFoundError, PoorMatchError,
                          localise, overlay_png)
 
 VOX = 1.5
@@ -158,6 +159,44 @@ def test_symmetric_layout_is_ambiguous():
     img, aff, *_ = make_phantom((3.0, -2.0), 20.0, layout=sym, values=[0.5, 1.5, 0.7, 1.3])
     with pytest.raises(PoorMatchError, match="ambiguous"):
         localise(img, aff, sym, MARGIN)
+
+
+MIRROR_LAYOUT = pd.DataFrame({   # symmetric under x -> -x: a flip maps it onto itself
+    "label": [1, 2, 3, 4, 5, 6], "x_mm": [0.0, -32, 32, -22, 22, 0],
+    "y_mm": [40.0, 10, 10, -32, -32, -8], "radius_mm": [9.0] * 6})
+MIRROR_T1 = [1.0, 0.3, 2.0, 0.5, 1.6, 1.2]     # mirror partners far apart in rank
+
+
+@pytest.mark.parametrize("angle,mirror", [(12.0, False), (-25.0, True)])
+def test_mirror_symmetric_layout_placed_by_contrast(angle, mirror):
+    """Geometry cannot tell a mirror-symmetric layout from its flip; the vials' T1 values
+    against the reference can (rank correlation), so every vial lands on its own disc."""
+    img, aff, truth, pts = make_phantom((4.0, -3.0), angle, mirror, layout=MIRROR_LAYOUT,
+                                        values=[0.6, 1.4, 0.8, 1.3, 0.7, 1.5])
+    t1map, *_ = make_phantom((4.0, -3.0), angle, mirror, layout=MIRROR_LAYOUT,
+                             values=MIRROR_T1, fill=2.8, snr=100, b1=False)
+    ref = dict(zip(MIRROR_LAYOUT["label"], MIRROR_T1))
+    with pytest.raises(PoorMatchError, match="ambiguous"):   # geometry alone: a toss-up
+        localise([img, t1map], aff, MIRROR_LAYOUT, MARGIN)
+    pl = localise([img, t1map], aff, MIRROR_LAYOUT, MARGIN, contrast=[(t1map, ref)])
+    # the truth is the construction itself: each label's region inside its own vial disc
+    for lab in MIRROR_LAYOUT["label"]:
+        assert dice(pl.labels == lab, truth == lab) > 0.9, lab
+    assert pl.ambiguity > 0.7 and "vial identities from contrast" in pl.identity
+    # without mirror search only the unflipped placement is considered
+    if not mirror:
+        assert localise([img, t1map], aff, MIRROR_LAYOUT, MARGIN,
+                        allow_mirror=False).ambiguity < 0.7
+
+
+def test_symmetric_layout_undecided_by_contrast_still_fails():
+    # a 4-fold symmetric layout whose vials all share one value: nothing decides
+    sym = pd.DataFrame({"label": [1, 2, 3, 4], "x_mm": [30.0, 0, -30, 0],
+                        "y_mm": [0, 30.0, 0, -30], "radius_mm": [9.0] * 4})
+    img, aff, *_ = make_phantom((3.0, -2.0), 20.0, layout=sym, values=[0.5, 0.5, 0.5, 0.5])
+    with pytest.raises(PoorMatchError, match="Contrast did not decide") as err:
+        localise(img, aff, sym, MARGIN, contrast=[(img, {1: 1.0, 2: 1.0, 3: 1.0, 4: 1.0})])
+    assert err.value.placement is not None
 
 
 def test_margin_larger_than_vial_is_rejected():

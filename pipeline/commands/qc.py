@@ -17,8 +17,11 @@ sidecars, else `temperature` in --config; without one, temperature-dependent ref
 values are used uncorrected and the report says so.
 
 Vials come from --labels, or (without --labels) are placed automatically from the phantom
---layout on the M0 map (or the source series' mean) plus the relaxation maps; a placement
-that does not match the layout convincingly is a QC failure (exit 1, overlay written).
+--layout on the M0 map (or the source series' mean) plus the relaxation maps; when a
+symmetric layout fits several placements equally, the one whose vial T1/T2 values agree in
+rank with the --reference is taken (--no-mirror: no flipped placements). A placement that
+does not match the layout convincingly, or a tie nothing decides, is a QC failure (exit 1,
+overlay written).
 
 Without --reference (scan sessions) only statistics are written and status is n/a,
 unless --config gives `ranges`: an acceptable [low, high] of a region's mean per label and
@@ -43,6 +46,10 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
     p.add_argument("--margin-mm", metavar="MM", type=float, default=2.0,
                    help="with --layout: each vial region is the vial disc shrunk by this "
                         "margin (partial volume at the walls); default 2")
+    p.add_argument("--no-mirror", dest="mirror", action="store_false",
+                   help="with --layout: do not try mirror-flipped placements (for a phantom "
+                        "that cannot be placed upside down; config key "
+                        "phantom.mirror_search)")
     p.add_argument("--reference", metavar="F.tsv",
                    help="reference table (TSV: label, name, T1, T2, T1_sd, T2_sd, temperature, "
                         "field, T1_coef, T2_coef); omit for scan sessions")
@@ -88,7 +95,7 @@ def run(args: argparse.Namespace) -> int:
         from qc.localise import PoorMatchError
         try:
             result = run_qc_with_layout(args.maps_dir, args.out, args.layout, args.margin_mm,
-                                        **options)
+                                        mirror=args.mirror, **options)
         except PoorMatchError as exc:
             print(f"relaxline qc: QC failure: {exc}", file=sys.stderr)
             return EXIT_QC_FAIL

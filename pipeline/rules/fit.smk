@@ -10,6 +10,8 @@ rule fit_chunk:
         temp(W.CHUNK),
     log:
         "logs/{sub}/{ses}/fit_{model}_{stem}_chunk-{chunk}.log",
+    params:
+        fit=lambda wc: W.fit_params(CFG, wc.model),
     threads: CFG["fit"]["threads"]
     resources:
         mem_mb=CFG["fit"]["mem_mb"],
@@ -25,6 +27,8 @@ rule fit:
         W.MANIFEST,
     log:
         "logs/{sub}/{ses}/fit_{model}_{stem}.log",
+    params:
+        fit=lambda wc: W.fit_params(CFG, wc.model),
     threads: CFG["fit"]["threads"]
     resources:
         mem_mb=CFG["fit"]["mem_mb"],

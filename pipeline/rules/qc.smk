@@ -4,7 +4,7 @@
 
 rule qc:
     input:
-        lambda wc: [j.manifest() for j in PLAN.session(wc.sub, wc.ses).series],
+        unpack(lambda wc: W.qc_inputs(CFG, PLAN, wc)),
     output:
         W.QC_SUMMARY,
     log:
@@ -15,7 +15,7 @@ rule qc:
         mem_mb=2000,
         runtime=30,
     run:
-        shell(W.step_command("qc", params.settings, input, output, log))
+        shell(W.step_command("qc", params.settings, input.manifests, output, log))
 
 
 rule record:
