@@ -201,6 +201,19 @@ def resolve_temperature(option: float | None, maps: list[MapFile],
     return None, "none"
 
 
+B1_FOLD_KEY = "B1Folded"   # TB1map sidecar key (bool) the mese fit records its fold in
+
+
+def mese_b1_fold(sidecar: dict[str, Any]) -> str:
+    """The row note of a mese B1 (refocusing-efficiency estimate) with its fold as recorded
+    in the TB1map sidecar (:data:`B1_FOLD_KEY`)."""
+    from qc.report import MESE_B1_FOLDED
+    fold = sidecar.get(B1_FOLD_KEY)
+    what = (MESE_B1_FOLDED if fold is True else f"not {MESE_B1_FOLDED}" if fold is False
+            else "fold not recorded")
+    return f"refocusing-efficiency estimate, {what}"
+
+
 def field_strength(maps: list[MapFile]) -> float | None:
     for mf in maps:
         for sc in [mf.sidecar, *source_sidecars(mf)]:
@@ -330,6 +343,8 @@ def compute(maps: list[MapFile], label_source: LabelSource, reference=None, tole
                 elif r.n_excluded > 0:
                     n.append(f"{r.n_excluded} voxel(s) excluded (fit not usable)")
                 notes.append("; ".join(n))
+            if mf.suffix == "TB1map" and df["model"].iloc[0] == "mese" if len(df) else False:
+                notes = [f"{mese_b1_fold(mf.sidecar)}" + (f"; {n}" if n else "") for n in notes]
             df["note"] = notes
             rows.append(df)
             absent = sorted(lab for lab, per_map in tol.ranges.items()

@@ -85,6 +85,14 @@ class SimOptions:
     drift_pct: float = 0.0
     slices: int = 3
     matrix: int = 80
+    step_vial: int = 0          # vial label with a step change (0: none) ...
+    step_pct: float = 0.0       # ... of its T1 and T2 by this percentage ...
+    step_from: int = 1          # ... from this session on (1-based)
+
+    def vial_factor(self, index: int, label: int) -> float:
+        """Extra factor on a vial's T1/T2 in session ``index`` (0-based): the step change."""
+        return 1.0 + self.step_pct / 100.0 if (label == self.step_vial and
+                                               index + 1 >= self.step_from) else 1.0
 
     def validate(self) -> None:
         for name, (lo, hi) in LIMITS.items():
@@ -96,6 +104,13 @@ class SimOptions:
         if not (self.snr > 0):  # also rejects NaN; inf means noise-free
             raise InputError(f"--snr must be positive (inf for noise-free images), "
                              f"got {self.snr:g}.")
+        if self.step_vial and (self.step_vial not in [v.label for v in phantom.VIALS] or
+                               not (math.isfinite(self.step_pct) and abs(self.step_pct) < 50)
+                               or self.step_from < 1):
+            raise InputError(f"--step must be VIAL:PCT:FROM with a vial label of the demo "
+                             f"phantom (1-{len(phantom.VIALS)}), a percentage between -50 and "
+                             "50 and the first stepped session (from 1), got "
+                             f"{self.step_vial}:{self.step_pct:g}:{self.step_from}.")
         if not (math.isfinite(self.drift_pct) and abs(self.drift_pct) < 50.0):
             raise InputError(f"--drift must be a percentage per session between -50 and 50, "
                              f"got {self.drift_pct:g}.")
@@ -147,6 +162,7 @@ class SessionState:
     inversion_efficiency: float
     drift_factor: float
     labels: np.ndarray   # int16 (x, y, z)
+    vial_factors: dict   # label -> step factor on T1/T2 (1 = none)
     inside: np.ndarray   # bool, inside the cylinder
     b1: np.ndarray       # (x, y, z)
     pd: np.ndarray       # (x, y, z), 0 in air
@@ -174,12 +190,14 @@ def session_state(index: int, options: SimOptions) -> SessionState:
         sel = (labels == comp.label) & inside
         c_t1, c_t2 = comp.at(temperature)
         if comp.label:  # drift ages the gels, not the fill
-            c_t1, c_t2 = c_t1 * drift, c_t2 * drift
+            f = drift * options.vial_factor(index, comp.label)
+            c_t1, c_t2 = c_t1 * f, c_t2 * f
         pd[sel], t1[sel], t2[sel] = comp.pd, c_t1, c_t2
         t2s[sel] = 1.0 / (1.0 / c_t2 + comp.r2_prime)
     return SessionState(label=session_label(index), temperature=temperature, shift_mm=shift,
                         rotation_deg=rotation, inversion_efficiency=eff, drift_factor=drift,
-                        labels=labels, inside=inside, b1=b1_field(x, y, z), pd=pd, t1=t1,
+                        vial_factors={v.label: options.vial_factor(index, v.label)
+                                      for v in phantom.VIALS}, labels=labels, inside=inside, b1=b1_field(x, y, z), pd=pd, t1=t1,
                         t2=t2, t2s=t2s)
 
 
@@ -378,7 +396,8 @@ def truth_table(st: SessionState):
     for v in phantom.VIALS:
         sel = st.labels == v.label
         t1, t2 = v.at(st.temperature)
-        t1, t2 = t1 * st.drift_factor, t2 * st.drift_factor
+        f = st.drift_factor * st.vial_factors.get(v.label, 1.0)
+        t1, t2 = t1 * f, t2 * f
         rows.append({"label": v.label, "name": v.name, "temperature": st.temperature,
                      "drift_factor": st.drift_factor, "T1": t1, "T2": t2,
                      "T2star": 1.0 / (1.0 / t2 + v.r2_prime), "PD": v.pd,

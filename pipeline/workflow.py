@@ -40,10 +40,11 @@ from pipeline.sessions import (CHUNK, MANIFEST, Plan, SeriesJob, Session, dataty
 from pipeline.wfconfig import (SCHEMA, load, model_options, read_config,  # noqa: F401
                                validate_config)
 
+from pipeline.reportjob import DRIFT, REPORT, SESSION_PAGE, STATUS  # noqa: E402,F401
+
 SNAKEFILE = Path(__file__).with_name("Snakefile")
 QC_SUMMARY = "{sub}/{ses}/qc/session.json"
 RECORDED = "{sub}/{ses}/qc/history.json"
-REPORT, STATUS, DRIFT = "report.html", "status.json", "trend/drift.tsv"
 
 
 # ---- steps run by the rules -------------------------------------------------------------
@@ -184,12 +185,55 @@ def step_qc(settings: dict, manifests: Sequence[str], out: str) -> None:
                                             "warnings": [f"vial placement: {exc}"],
                                             "exit_status": EXIT_QC_FAIL}
                 continue
-        counts = res.table["status"].value_counts().to_dict()
-        summary["models"][model] = {"roi_stats": str(qc_root / model / "roi_stats.tsv"),
-                                    "counts": {k: int(v) for k, v in counts.items()},
-                                    "warnings": res.warnings, "exit_status": res.exit_code}
+        summary["models"][model] = model_summary(res.table, qc_root / model, res.warnings,
+                                                 res.exit_code)
     summary["fail"] = any(m["counts"].get("fail", 0) for m in summary["models"].values())
+    write_session_page(summary, qc_root / SESSION_PAGE)
     atomic_write_json(out, summary)
+
+
+def model_summary(table, qc_dir: Path, warnings: list[str], exit_code: int) -> dict:
+    """One model's entry in a session summary: counts, failing and warning vials by name,
+    temperature and its source."""
+    from qc.report import vial_finding
+    counts = table["status"].value_counts().to_dict()
+    temps = table[["temperature", "temperature_source"]].dropna(subset=["temperature"])
+    return {"roi_stats": str(qc_dir / "roi_stats.tsv"),
+            "counts": {k: int(v) for k, v in counts.items()},
+            "failing": [vial_finding(r) for r in table[table["status"] == "fail"].itertuples()],
+            "warning_vials": [vial_finding(r) for r in
+                              table[table["status"] == "warn"].itertuples()],
+            "temperature": float(temps["temperature"].iloc[0]) if len(temps) else None,
+            "temperature_source": str(temps["temperature_source"].iloc[0]) if len(temps)
+            else "none: reference values uncorrected",
+            "warnings": warnings, "exit_status": exit_code}
+
+
+def write_session_page(summary: dict, path: Path) -> None:
+    """One page for the session with every model's table, linking each model's detailed
+    report (figures, curves, noise, provenance)."""
+    import pandas as pd
+    from pipeline.outputs import atomic_write_text
+    from qc.report import build_report, esc
+    tables = [pd.read_csv(m["roi_stats"], sep="\t") for m in summary["models"].values()
+              if m["roi_stats"]]
+    table = pd.concat(tables, ignore_index=True) if tables else pd.DataFrame(columns=["status"])
+    links = "".join(
+        f'<li><a href="{esc(model)}/report.html">{esc(model)}</a>: figures, signal curves, '
+        "noise and provenance</li>" if m["roi_stats"] else
+        f"<li>{esc(model)}: {esc('; '.join(m['warnings']))}</li>"
+        for model, m in summary["models"].items())
+    temps = {f"{m['temperature']:g} °C ({m['temperature_source']})" if m.get("temperature")
+             is not None else m.get("temperature_source", "") for m in
+             summary["models"].values()}
+    page = build_report(table, title=f"relaxline session {summary['sub']}/{summary['ses']}",
+                        summary={"session": summary["session"],
+                                 "site / scanner": f"{summary['site']} / {summary['scanner']}",
+                                 "phantom temperature": "; ".join(sorted(temps)) or "–",
+                                 "models": ", ".join(summary["models"]) or "–"},
+                        warnings=[summary["note"]] if summary.get("note") else (),
+                        extra_sections=[("Per-model reports", f"<ul>{links}</ul>")])
+    atomic_write_text(path, page)
 
 
 def history_series(model: str, stem: str, ses: str) -> str:
@@ -232,138 +276,9 @@ def step_record(database: str, summary_path: str, out: str) -> None:
                             "session": summary["session"]})
 
 
-def report_settings(cfg: dict) -> dict:
-    """What the report job needs (a rule parameter)."""
-    return {"database": cfg["history"]["database"], "drift": cfg["drift"],
-            "title": cfg["report"]["title"]}
-
-
-def drift_settings(d: dict):
-    """:class:`qc.drift.DriftSettings` from the config's ``drift`` section."""
-    from qc.drift import DriftSettings
-    return DriftSettings(baseline_sessions=d["baseline_sessions"],
-                         baseline=tuple(d["baseline"]) or None, rules=tuple(d["rules"]),
-                         warning_trigger=d["warning_trigger"], min_sd_pct=d["min_sd_pct"],
-                         reference_pct=d["reference_pct"],
-                         reference_consecutive=d["reference_consecutive"], value=d["value"])
-
-
-def step_report(cfg: dict, summaries: Sequence[str], report: str, status: str,
-                drift_tsv: str) -> None:
-    """Drift rules over the whole history, trend figures, the report and status.json."""
-    import pandas as pd
-    from pipeline.outputs import atomic_write_bytes, atomic_write_json, atomic_write_text, \
-        atomic_write_tsv
-    from qc import drift, trend
-    from qc.history import load_history
-    from qc.report import build_report
-    settings = drift_settings(cfg["drift"])
-    hist = load_history(cfg["database"])
-    scored, violations = drift.evaluate(hist, settings)
-    trend_dir = Path(drift_tsv).parent
-    atomic_write_tsv(trend_dir / "scored.tsv", scored)
-    figures = trend.trend_figures(scored, violations, settings.value) if not hist.empty else {}
-    for key, png in figures.items():
-        name = re.sub(r"[^0-9A-Za-z._-]+", "-", "_".join(str(k) for k in key))
-        atomic_write_bytes(trend_dir / f"{name}.png", png)
-    current = drift.current_rejections(violations, hist)
-    base = drift.baseline_sessions(hist, settings)
-    note = "; ".join(f"{site}/{scanner}: baseline " +
-                     (f"{len(b)} session(s) {b[0]} to {b[-1]}" if b else
-                      f"not yet established (needs {settings.baseline_sessions} sessions "
-                      "or the configured baseline list); drift rules other than ref-pct "
-                      "wait for it")
-                     for (site, scanner), b in base.items()) or "no history yet"
-    sess = [json.loads(Path(p).read_text(encoding="utf-8")) for p in summaries]
-    latest = _latest(sess)
-    qc_fail_latest = _latest_fails(sess)
-    rows = []
-    for s in sess:
-        for model, m in s["models"].items():
-            c = m["counts"]
-            link = _relative_link(Path(m["roi_stats"]).with_name("report.html"),
-                                  Path(report).parent) if m["roi_stats"] else ""
-            rows.append({"site": s["site"], "scanner": s["scanner"], "session": s["session"],
-                         "subject": s["sub"], "model": model, "pass": c.get("pass", 0),
-                         "warn": c.get("warn", 0), "fail": c.get("fail", 0),
-                         "n/a": c.get("n/a", 0),
-                         "qc report": link or "; ".join(m["warnings"]), "_href": link})
-    sessions_df = pd.DataFrame(rows)
-    exit_status = EXIT_QC_FAIL if (len(current) or qc_fail_latest) else EXIT_OK
-    atomic_write_tsv(drift_tsv, violations)
-    newest = [s for s in sess if not s["models"] or f"{s['sub']}/{s['ses']}" in latest]
-    table = pd.concat([pd.read_csv(m["roi_stats"], sep="\t") for s in newest
-                       for m in s["models"].values() if m["roi_stats"]]
-                      or [pd.DataFrame(columns=["status"])],
-                      ignore_index=True)
-    warnings = [f"QC failure in the newest session {x}" for x in qc_fail_latest]
-    warnings += [f"drift rule {r.rule} rejects {r.site}/{r.scanner} session {r.session}, "
-                 f"{r.series} {r.map} label {r.label}: {r.detail}" for r in current.itertuples()]
-    warnings += [f"{s['sub']}/{s['ses']}: {s['note']}" for s in sess if s.get("note")]
-    warnings += [f"{s['sub']}/{s['ses']} {model}: {w}" for s in sess if
-                 f"{s['sub']}/{s['ses']}" in latest
-                 for model, m in s["models"].items() if not m["roi_stats"]
-                 for w in m["warnings"]]
-    shown = [c for c in sessions_df.columns if c != "_href"]
-    sections = [("Sessions", trend.html_table(sessions_df, shown, {"qc report": "_href"})
-                 if not sessions_df.empty else "<p>No session.</p>"),
-                ("History and drift", trend.history_section_html(scored, violations, figures,
-                                                                 note))]
-    page = build_report(table, title=cfg["title"], summary={
-        "sessions": len(sess), "newest": ", ".join(sorted(latest)),
-        "history database": cfg["database"], "drift rules": ", ".join(settings.rules)},
-        warnings=warnings, extra_sections=sections)
-    atomic_write_text(report, page)
-    atomic_write_json(status, {
-        "exit_status": exit_status, "sessions": len(sess),
-        "qc_fail_latest": qc_fail_latest,
-        "drift_rejections_latest": current[["site", "scanner", "session", "series", "map",
-                                            "label", "rule"]].to_dict("records")
-        if len(current) else [],
-        "drift_rejections_total": int((violations["severity"] == "reject").sum())
-        if len(violations) else 0,
-        "report": str(Path(report).resolve()), "database": cfg["database"]})
-
-
-def _relative_link(target: Path, base: Path) -> str:
-    """``target`` relative to ``base`` ("/"-separated), so the link keeps working wherever
-    the output tree is moved or opened from disk; '' when no relative path exists."""
-    try:
-        return Path(os.path.relpath(target, base)).as_posix()
-    except ValueError:   # another drive (Windows): leave the cell as text
-        return ""
-
-
-def _latest(summaries: list[dict]) -> set[str]:
-    """``sub/ses`` of the newest session of each site/scanner."""
-    latest: dict[tuple[str, str], dict] = {}
-    for s in summaries:
-        k = (s["site"], s["scanner"])
-        if k not in latest or s["session"] > latest[k]["session"]:
-            latest[k] = s
-    return {f"{s['sub']}/{s['ses']}" for s in latest.values()}
-
-
-def _latest_fails(summaries: list[dict]) -> list[str]:
-    """Newest sessions (of their site/scanner) with a QC fail."""
-    newest = _latest(summaries)
-    return sorted(f"{s['sub']}/{s['ses']}" for s in summaries
-                  if s["fail"] and f"{s['sub']}/{s['ses']}" in newest)
-
-
-def run_status(output_dir: str | Path) -> tuple[int, str]:
-    """Exit status and a one-line summary from a finished run's ``status.json``."""
-    p = Path(output_dir) / STATUS
-    if not p.is_file():
-        return EXIT_OK, ""
-    st_ = json.loads(p.read_text(encoding="utf-8"))
-    parts = []
-    if st_.get("qc_fail_latest"):
-        parts.append("QC failure in " + ", ".join(st_["qc_fail_latest"]))
-    if st_.get("drift_rejections_latest"):
-        parts.append(f"{len(st_['drift_rejections_latest'])} drift-rule rejection(s) in the "
-                     "newest session(s)")
-    return int(st_.get("exit_status", 0)), "; ".join(parts)
+# the report step and the run's verdict live in pipeline.reportjob (re-exported here)
+from pipeline.reportjob import (drift_settings, report_settings, run_status,  # noqa: E402,F401
+                                step_report)
 
 
 # ---- the commands the rules run ---------------------------------------------------------

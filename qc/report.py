@@ -37,6 +37,7 @@ h1{font-size:1.6em;margin:.2em 0}h2{font-size:1.25em;border-bottom:2px solid #cc
 .banner.pass{background:#e6f4ea;border-color:#1b7837}.banner.warn{background:#fff4e0;
  border-color:#b35806}.banner.fail{background:#fde8e8;border-color:#b2182b}
 .banner.na{background:#f0f0f0;border-color:#666}
+ul.fired{font-size:1.05em;margin:4px 0 10px}ul.fired li{margin:2px 0}
 .caution{background:#f4f4f4;border-left:6px solid #444;padding:8px 12px;margin:10px 0}
 .warnings{background:#fff8e1;border-left:6px solid #b35806;padding:8px 12px;margin:10px 0}
 .warnings li{margin:3px 0}
@@ -118,11 +119,13 @@ def results_table(table: pd.DataFrame) -> str:
     if table.empty or not {"series", "map", "label"} <= set(table.columns):
         return "<p>No ROI statistics.</p>"
     parts = []
-    for (series, m), g in table.groupby(["series", "map"], sort=False):
+    t = table if "model" in table else table.assign(model="")
+    t = t.assign(model=t["model"].astype(object).where(t["model"].notna(), "").astype(str))
+    for (model, series, m), g in t.groupby(["model", "series", "map"], sort=False):
         units = str(g["units"].iloc[0]) if "units" in g else "s"
         k, u = display_scale(m, units)
-        uu = f" ({u})" if u else ""
-        title = MAP_TITLE.get(m, m)
+        uu = f" ({u})" if u else " (ratio)" if m == "TB1map" else ""
+        title = MAP_TITLE.get(m, m) + (f" — model {model}" if model else "")
         has_ref = g["reference_at_temperature"].notna().any()
         has_rng = "range_low" in g and g["range_low"].notna().any()
         head = ["vial", "name", "n used", "n excl.", f"mean{uu}", f"SD{uu}", f"median{uu}",
@@ -162,9 +165,42 @@ def results_table(table: pd.DataFrame) -> str:
         ths = "".join(f'<th class="{"t" if h in ("name", "note") else ""}">{esc(h)}</th>'
                       for h in head)
         parts.append(f"<h3>{esc(title)} — <span class=\"mono\">{esc(series)}</span></h3>"
-                     f"<table><thead><tr>{ths}</tr></thead><tbody>{''.join(rows)}</tbody>"
+                     + (f'<p class="caution">{esc(mese_b1_note(g))}</p>'
+                        if model == "mese" and m == "TB1map" else "")
+                     + f"<table><thead><tr>{ths}</tr></thead><tbody>{''.join(rows)}</tbody>"
                      "</table>")
     return "\n".join(parts)
+
+
+MESE_B1_NOTE = (
+    "This B1 is a by-product of the mese (extended phase graph) T2 fit: an estimate of the "
+    "refocusing efficiency (actual over nominal refocusing angle), not a transmit-field "
+    "measurement, so it is expected to differ from a dedicated B1 map such as dam's. "
+    "The echo train of an angle α and of 360° − α are the same, so the estimate is "
+    "identifiable only up to a fold about 1")
+MESE_B1_FOLDED = "folded about 1"   # the note written into roi_stats.tsv by the QC
+
+
+def mese_b1_note(rows: pd.DataFrame) -> str:
+    """The words shown with a mese B1 table; the fold as the QC read it from the sidecar."""
+    notes = " ".join(str(n) for n in rows.get("note", pd.Series(dtype=str)).fillna(""))
+    if f"not {MESE_B1_FOLDED}" in notes:
+        fold = ("; this fit reports it unfolded (values above 1 possible), as recorded in "
+                "the TB1map sidecar.")
+    elif MESE_B1_FOLDED in notes:
+        fold = ("; this fit reports it folded, 1 − |1 − B1| (never above 1), as recorded in "
+                "the TB1map sidecar.")
+    else:
+        fold = "; whether this fit folded it is not recorded in the TB1map sidecar."
+    return (MESE_B1_NOTE + fold + " It is shown for inspection and not judged by the drift "
+            "rules.")
+
+
+def vial_finding(r: Any) -> dict:
+    """A failing or warning row as {map, vial, detail} (for summaries and the console)."""
+    name = str(r.name) if isinstance(r.name, str) and r.name else f"label {r.label}"
+    vial = name if name == f"label {r.label}" else f"{name} (label {r.label})"
+    return {"map": str(r.map), "vial": vial, "detail": _fail_text(r).split(": ", 1)[-1]}
 
 
 def _fail_text(r: Any) -> str:
@@ -221,7 +257,9 @@ def build_report(table: pd.DataFrame, *, title: str = "relaxline phantom QC",
                  provenance: Sequence[Mapping[str, Any]] = (),
                  warnings: Sequence[str] = (),
                  extra_sections: Sequence[tuple[str, str]] = (),
-                 footer: str = "") -> str:
+                 footer: str = "", headline: str | None = None,
+                 results_title: str = "Results per vial",
+                 sections_first: bool = False) -> str:
     """The report page as one HTML string.
 
     Parameters
@@ -236,6 +274,9 @@ def build_report(table: pd.DataFrame, *, title: str = "relaxline phantom QC",
     warnings : shown in a highlighted list near the top, never hidden.
     extra_sections : (title, trusted HTML fragment) pairs appended before provenance, for
         other stages (history, drift).
+    headline : trusted HTML replacing the status banner (the workflow's run verdict).
+    results_title : heading of the per-vial tables.
+    sections_first : put ``extra_sections`` right after the summary (before the tables).
     """
     st = overall_status(table)
     counts = table["status"].value_counts().to_dict() if len(table) else {}
@@ -259,16 +300,19 @@ def build_report(table: pd.DataFrame, *, title: str = "relaxline phantom QC",
            f"<meta name=\"viewport\" content=\"width=device-width, initial-scale=1\">"
            f"<title>{esc(title)}</title><style>{CSS}</style></head><body>",
            f"<h1>{esc(title)}</h1>",
+           headline if headline is not None else
            f'<div class="banner {cls}" role="status"><span class="big">'
            f"{STATUS_SYMBOL[st]} {STATUS_TEXT[st]}</span><span>{esc(verdict)}</span></div>",
-           fail_list,
+           "" if headline is not None else fail_list,
            f'<p class="caution"><strong>Caution.</strong> {esc(CAUTION)}</p>']
     if warnings:
         out.append('<div class="warnings"><strong>Warnings</strong><ul>'
                    + "".join(f"<li>{esc(w)}</li>" for w in warnings) + "</ul></div>")
     if summary:
         out.append("<h2>Session</h2>" + kv_table(summary))
-    out.append("<h2>Results per vial</h2>"
+    if sections_first:
+        out += [f"<h2>{esc(t)}</h2>{frag}" for t, frag in extra_sections]
+    out.append(f"<h2>{esc(results_title)}</h2>"
                "<p>Status: |bias| ≤ warn limit → PASS; ≤ fail limit → WARN; otherwise FAIL. "
                "Ref. corrected = reference value corrected to the phantom temperature; "
                "bias = (vial mean − ref. corrected) / ref. corrected. "
@@ -277,7 +321,8 @@ def build_report(table: pd.DataFrame, *, title: str = "relaxline phantom QC",
                "FAIL. "
                "SD, IQR and CV over the voxels used; voxels whose fit is not usable are "
                "excluded (n excl.). Fit SE = median voxelwise standard error. Times in ms "
-               "here; roi_stats.tsv holds seconds.</p>")
+               "throughout this report (tables, drift tables, trend axes); roi_stats.tsv and "
+               "drift.tsv hold SI seconds (their units column).</p>")
     out.append(results_table(table))
     sections: dict[str, list[Figure]] = {}
     for f in figures:
@@ -305,7 +350,7 @@ def build_report(table: pd.DataFrame, *, title: str = "relaxline phantom QC",
                        f"</strong> {esc(f.caption)}</figcaption></figure>")
     if noise_html:
         out.append("<h2>Noise and SNR</h2>" + noise_html)
-    for sec_title, frag in extra_sections:
+    for sec_title, frag in (() if sections_first else extra_sections):
         out.append(f"<h2>{esc(sec_title)}</h2>{frag}")
     out.append("<h2>Provenance</h2>" + provenance_html(provenance))
     out.append(f"<footer>{esc(footer)} {esc(CAUTION)}</footer></body></html>\n")

@@ -14,21 +14,19 @@ import math
 import numpy as np
 import pandas as pd
 
-from qc.figures import QUANTITY_LABEL, TIME_MAPS, _plt, to_png
+from qc.figures import QUANTITY_LABEL, _plt, display_scale, to_png
 from qc.report import img_tag
 
 PANEL_GROUP = ("site", "scanner", "series", "map")
 
 
-def y_label(map_name: str, value: str = "mean") -> str:
-    """Quantity, statistic and unit of the plotted values, e.g. "T2, ROI mean ± SD (s)".
-
-    The history holds values as stored in the maps (seconds for relaxation times, a ratio
-    for B1) and the figures plot them unscaled, so the unit is the stored one.
-    """
+def y_label(map_name: str, value: str = "mean", units: str = "s") -> str:
+    """Quantity, statistic and display unit of the plotted values, e.g. "T2, ROI mean ± SD
+    (ms)": the history holds SI values (seconds, a ratio for B1); figures show them in the
+    report's display units (:func:`qc.figures.display_scale`)."""
     q = QUANTITY_LABEL.get(map_name, map_name)
-    unit = " (s)" if map_name in TIME_MAPS else ""
-    return f"{q}, ROI {value} ± SD{unit}"
+    _, u = display_scale(map_name, units)
+    return f"{q}, ROI {value} ± SD{f' ({u})' if u else ''}"
 
 
 def trend_figure(scored: pd.DataFrame, violations: pd.DataFrame | None = None,
@@ -51,17 +49,25 @@ def trend_figure(scored: pd.DataFrame, violations: pd.DataFrame | None = None,
     fig, axes = plt.subplots(nrow, ncol, figsize=(3.2 * ncol, 2.4 * nrow + 0.6),
                              squeeze=False, sharex=True)
     mapname = str(scored["map"].iloc[0])
+    units = str(scored["units"].dropna().iloc[0]) if "units" in scored and \
+        scored["units"].notna().any() else "s"
+    k, _ = display_scale(mapname, units)
+    scored = scored.copy()
+    cols = [c for c in (value, "sd", "reference", "reference_at_temperature",
+                        "baseline_mean", "baseline_sd", "tracked") if c in scored]
+    ycol = "tracked" if "tracked" in scored else value     # what the rules follow
+    rcol = "reference" if ycol == "tracked" else "reference_at_temperature"
+    scored[cols] = scored[cols].astype(float) * k
     for ax in axes.flat[len(labels):]:
         ax.set_visible(False)
     for ax, lab in zip(axes.flat, labels):
         g = scored[scored["label"].astype(int) == lab].sort_values("session")
         x = np.array([xpos[s] for s in g["session"].astype(str)])
-        y = g[value].astype(float).to_numpy()
+        y = g[ycol].astype(float).to_numpy()
         sd = g["sd"].astype(float).to_numpy() if "sd" in g else np.zeros_like(y)
         ax.errorbar(x, y, yerr=sd, fmt="o-", color="#2166ac", ms=4, lw=1, capsize=2,
                     label="measured")
-        ref = g["reference_at_temperature"].astype(float).to_numpy() \
-            if "reference_at_temperature" in g else np.full_like(y, np.nan)
+        ref = g[rcol].astype(float).to_numpy() if rcol in g else np.full_like(y, np.nan)
         if np.isfinite(ref).any():
             ax.plot(x, ref, "k--", lw=1, label="reference")
             tol = g["tolerance_pct"].astype(float).to_numpy() \
@@ -84,7 +90,7 @@ def trend_figure(scored: pd.DataFrame, violations: pd.DataFrame | None = None,
                 for ses, rules in hit.groupby("session")["rule"]:
                     if ses not in xpos:
                         continue
-                    yv = float(g.loc[g["session"].astype(str) == ses, value].iloc[0])
+                    yv = float(g.loc[g["session"].astype(str) == ses, ycol].iloc[0])
                     ax.plot(xpos[ses], yv, marker, color=colour, ms=9, mfc="none", mew=1.5)
                     ax.annotate(",".join(sorted(set(rules))), (xpos[ses], yv), fontsize=6,
                                 xytext=(3, 5), textcoords="offset points", color=colour)
@@ -93,7 +99,9 @@ def trend_figure(scored: pd.DataFrame, violations: pd.DataFrame | None = None,
         ax.tick_params(labelsize=6)
         ax.set_xticks(range(len(sessions)))
         ax.set_xticklabels(sessions, rotation=60, ha="right", fontsize=6)
-    fig.supylabel(y_label(mapname, value), fontsize=8)
+    fig.supylabel(y_label(mapname, value, units)
+                  + ("\nreferred to the reference temperature" if ycol == "tracked" else ""),
+                  fontsize=8)
     fig.suptitle(title or mapname, fontsize=9)
     handles, names = axes.flat[0].get_legend_handles_labels()
     if handles:
@@ -110,7 +118,9 @@ def trend_figures(scored: pd.DataFrame, violations: pd.DataFrame, value: str = "
     for key, g in scored.groupby(list(PANEL_GROUP), sort=True):
         v = violations.merge(pd.DataFrame([key], columns=list(PANEL_GROUP)), how="inner") \
             if not violations.empty else violations
-        out[key] = trend_figure(g, v, value, title=" / ".join(str(k) for k in key))
+        judged = bool(g["monitored"].any()) if "monitored" in g else True
+        out[key] = trend_figure(g, v, value, title=" / ".join(str(k) for k in key)
+                                + ("" if judged else " (shown, not judged)"))
     return out
 
 
@@ -141,22 +151,18 @@ def html_table(df: pd.DataFrame, columns: list[str],
     return f"<table><thead><tr>{head}</tr></thead><tbody>{''.join(body)}</tbody></table>"
 
 
-def history_section_html(scored: pd.DataFrame, violations: pd.DataFrame,
-                         figures: dict[tuple, bytes], baseline_note: str) -> str:
-    """HTML fragment: drift-rule violations, baseline note and embedded trend figures."""
+def history_section_html(scored: pd.DataFrame, figures: dict[tuple, bytes],
+                         baseline_note: str) -> str:
+    """HTML fragment: baseline note, history size and the embedded trend figures (the
+    violations are tabled by :func:`qc.verdict.drift_html`)."""
     parts = [f"<p>{html.escape(baseline_note)}</p>"]
     n_sessions = scored[["site", "scanner", "session"]].drop_duplicates().shape[0] \
         if not scored.empty else 0
-    parts.append(f"<p>{n_sessions} session(s) in the history database.</p>")
-    if violations.empty:
-        parts.append("<p><strong>No drift rule fired.</strong></p>")
-    else:
-        rej = violations[violations["severity"] == "reject"]
-        parts.append(f"<p><strong>{len(rej)} rejection(s), "
-                     f"{len(violations) - len(rej)} warning(s).</strong></p>")
-        parts.append(html_table(violations, ["site", "scanner", "session", "series", "map",
-                                         "label", "name", "rule", "severity", "value", "z",
-                                         "detail"]))
+    parts.append(f"<p>{n_sessions} session(s) in the history database. Trend figures: the "
+                 "tracked value (vial statistic referred to the reference temperature) per "
+                 "session with the reference value and its tolerance band, the baseline "
+                 "mean and ±2/±3 SD control limits; squares mark warnings, crosses "
+                 "rejections.</p>")
     for key, png in figures.items():
         alt = " / ".join(str(k) for k in key)
         parts.append(f"<figure>{img_tag(png, f'trend {alt}')}<figcaption>{html.escape(alt)}"

@@ -66,7 +66,8 @@ def _history(values_by_label: dict[int, list[float]], reference: float = 1.0,
     for label, values in values_by_label.items():
         ses = sessions or [f"2026{i + 1:04d}" for i in range(len(values))]
         for s, v in zip(ses, values):
-            rows.append({"site": "A", "scanner": "S1", "session": s, "series": "IRT1",
+            rows.append({"site": "A", "scanner": "S1", "session": s, "model": "ir",
+                         "series": "IRT1",
                          "map": "T1map", "label": label, "name": f"vial{label}", "mean": v,
                          "reference": reference, "reference_at_temperature": reference})
     return pd.DataFrame(rows)

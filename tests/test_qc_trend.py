@@ -6,11 +6,12 @@ import pandas as pd
 from qc import trend
 
 
-def test_y_label_has_quantity_statistic_and_stored_unit():
-    # the history keeps seconds (as the maps store them) and the figure plots them unscaled
-    assert trend.y_label("T2map", "mean") == "T2, ROI mean ± SD (s)"
-    assert trend.y_label("T1map", "median") == "T1, ROI median ± SD (s)"
-    assert trend.y_label("T2starmap") == "T2*, ROI mean ± SD (s)"
+def test_y_label_has_quantity_statistic_and_display_unit():
+    # the history keeps seconds; the figures show the report's unit, ms (one convention
+    # everywhere a person reads)
+    assert trend.y_label("T2map", "mean") == "T2, ROI mean ± SD (ms)"
+    assert trend.y_label("T1map", "median") == "T1, ROI median ± SD (ms)"
+    assert trend.y_label("T2starmap") == "T2*, ROI mean ± SD (ms)"
     assert trend.y_label("TB1map") == "B1 (ratio), ROI mean ± SD"   # a ratio has no unit
 
 
@@ -29,4 +30,4 @@ def test_trend_figure_uses_the_label(monkeypatch):
                            "sd": [0.001, 0.001], "reference_at_temperature": [0.06, 0.06],
                            "tolerance_pct": [10.0, 10.0]})
     png = trend.trend_figure(scored, None, "mean")
-    assert png.startswith(b"\x89PNG") and seen == ["T2, ROI mean ± SD (s)"]
+    assert png.startswith(b"\x89PNG") and seen == ["T2, ROI mean ± SD (ms)"]

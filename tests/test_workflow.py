@@ -58,7 +58,7 @@ def test_sample_config_is_valid():
 
 def test_defaults_filled_and_paths_resolved(tmp_path):
     cfg = W.load(_write(tmp_path, _cfg(tmp_path)))
-    assert cfg["fit"]["engine"] == "fast" and cfg["drift"]["baseline_sessions"] == 5
+    assert cfg["fit"]["engine"] == "fast" and cfg["drift"]["baseline_sessions"] == 10
     assert cfg["input_dir"] == str((tmp_path / "in").resolve())
     assert cfg["history"]["database"] == str((tmp_path / "out" / "history.sqlite").resolve())
 
@@ -308,7 +308,7 @@ def test_e2e_outputs_agree_with_commands(e2e, sim3, tmp_path):
     assert np.allclose(row["mean"].to_numpy(), theirs.sort_values("label")["mean"].to_numpy(),
                        rtol=1e-6, equal_nan=True)
     assert (row["site"] == "northfield-lab").all()
-    assert "History and drift" in (out / "report.html").read_text()
+    assert "Drift rules" in (out / "report.html").read_text()
 
 
 @pytest.mark.slow
@@ -488,7 +488,11 @@ def test_report_exit_1_on_drift_rejection_in_newest_session(tmp_path):
     assert {"rule": "1-3s", "label": 1, "session": "20261105"}.items() <= \
         status["drift_rejections_latest"][0].items()
     html = (tmp_path / "out" / "report.html").read_text()
-    assert "1-3s" in html and "History and drift" in html
+    assert "1-3s" in html and "Drift rules" in html
+    # the headline states the verdict the exit status gives, naming rule, vial and map
+    head = html[html.index('<div class="banner'):html.index("<h2>")]
+    assert "DRIFT REJECTION" in head and "exit status 1" in head
+    assert "1-3s" in head and "v1 (label 1)" in head and "T1 (ir)" in head
     drift = pd.read_csv(tmp_path / "out" / "trend" / "drift.tsv", sep="\t")
     assert "1-3s" in set(drift["rule"])
     assert list((tmp_path / "out" / "trend").glob("*.png"))

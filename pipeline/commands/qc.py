@@ -108,6 +108,10 @@ def run(args: argparse.Namespace) -> int:
                         if counts.get(k))
     print(f"relaxline qc: {len(t)} vial/map rows ({summary}); wrote {args.out}/roi_stats.tsv "
           f"and report.html")
+    from qc.report import vial_finding
+    for r in t[t["status"] == "fail"].itertuples():
+        f = vial_finding(r)
+        print(f"relaxline qc: FAIL {f['map']} {f['vial']}: {f['detail']}")
     for w in result.warnings:
         print(f"relaxline qc: warning: {w}")
     return result.exit_code

@@ -29,9 +29,13 @@ With a `dicom` section naming a drop_dir, the new DICOM series there are first
 converted into input_dir (as `relaxline ingest` does; a series converted once is not
 converted again), so a nightly run goes from the scanner's export to the report.
 
-Exit status: 0 all well; 1 a QC failure or a drift-rule rejection in the newest
-session of a site/scanner (see status.json and the report); 2 bad config or input
-(checked before any job runs) or a failed job."""
+At the end it prints one line per session and model (pass/warn/fail counts, failing
+vials by name, drift rejections), the verdict with what fired, and the report path.
+
+Exit status: 0 all well (verdict PASS or WARN); 1 a QC failure or a drift-rule
+rejection in the newest session of a site/scanner (verdict FAIL or DRIFT REJECTION; see
+status.json and the report's headline); 2 bad config or input (checked before any job
+runs) or a failed job."""
 PASSTHROUGH = True
 # Snakemake options after which status.json does not describe this run's result
 _NO_STATUS = {"-n", "--dry-run", "--dryrun", "--lint", "--unlock", "--list-rules", "-l",
@@ -143,12 +147,12 @@ def run_workflow(config: str | Path, cores: int | None = None, profile: str | No
         return EXIT_BAD_INPUT
     if _NO_STATUS & set(extra):
         return 0
-    status, summary = workflow.run_status(out)
+    status, lines = workflow.run_status(out)
+    for line in lines:   # one per session and model, then the verdict (what cron mails)
+        print(f"relaxline run: {line}", file=stream)
     report = out / workflow.REPORT
     if report.is_file():
         print(f"relaxline run: report: {report}", file=stream)
-    if summary:
-        print(f"relaxline run: attention: {summary}", file=stream)
     if dicom_failed:
         print("relaxline run: error: some DICOM series could not be converted (see the "
               "messages above); the others were fitted.", file=stream)

@@ -29,6 +29,9 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
                    help="peak signal / noise sigma per series (default 100; inf = no noise)")
     p.add_argument("--drift", type=float, default=0.0, metavar="PCT",
                    help="vial T1/T2 drift in %% per session after the first (default 0)")
+    p.add_argument("--step", metavar="VIAL:PCT:FROM",
+                   help="a step change of one vial's T1 and T2 by PCT %% from session FROM "
+                        "(1-based) on, e.g. 7:5:12 (to try the drift rules)")
     p.add_argument("--slices", type=int, default=3, help="slices of 5 mm (default 3)")
     p.add_argument("--matrix", type=int, default=80,
                    help="in-plane matrix over a 200 mm field of view (default 80: 2.5 mm)")
@@ -40,8 +43,18 @@ def run(args: argparse.Namespace) -> int:
     from pipeline.progress import Progress
     from pipeline.simulate import SERIES_KINDS, SimOptions, simulate
 
+    from pipeline.errors import InputError
+    step = (0, 0.0, 1)
+    if args.step:
+        try:
+            v, pct, first = args.step.split(":")
+            step = (int(v), float(pct), int(first))
+        except ValueError:
+            raise InputError(f"--step must be VIAL:PCT:FROM, e.g. 7:5:12 (vial 7, +5 %, from "
+                             f"session 12), got {args.step!r}.") from None
     opts = SimOptions(sessions=args.sessions, seed=args.seed, snr=args.snr,
-                      drift_pct=args.drift, slices=args.slices, matrix=args.matrix)
+                      drift_pct=args.drift, slices=args.slices, matrix=args.matrix,
+                      step_vial=step[0], step_pct=step[1], step_from=step[2])
     opts.validate()
     t0 = time.monotonic()
     files = simulate(args.outdir, opts,
