@@ -144,7 +144,7 @@ def session_temperatures(sub_dir: Path, column: str) -> tuple[dict[str, float], 
     Reads ``sub-<label>/sub-<label>_sessions.tsv`` (BIDS: one row per session, first
     column ``session_id``); ``column`` holds the temperature in °C, described in the
     file's JSON sidecar (``sub-<label>_sessions.json``: ``{column: {"Description": ...,
-    "Units": "degC"}}``). Empty cells and ``n/a`` mean "not measured" (the sidecars or the
+    "Units": "oC"}}``). Empty cells and ``n/a`` mean "not measured" (the sidecars or the
     config fallback then apply). Returns ({ses-folder: °C}, file name); an empty mapping
     when the file or the column is absent.
     """
@@ -161,9 +161,9 @@ def session_temperatures(sub_dir: Path, column: str) -> tuple[dict[str, float], 
         units = (meta.get(column) or {}).get("Units") if isinstance(meta, dict) and \
             isinstance(meta.get(column), dict) else None
         if units is not None and str(units).replace("°", "deg").lower() not in \
-                ("degc", "degree celsius", "degrees celsius", "celsius", "c"):
+                ("oc", "degc", "degree celsius", "degrees celsius", "celsius", "c"):
             raise InputError(f"{side}: key `{column}.Units` is {units!r}; the phantom "
-                             "temperature column must be in degrees Celsius (\"degC\").")
+                             "temperature column must be in degrees Celsius (\"oC\", as BIDS writes it).")
     try:
         with tsv.open(encoding="utf-8", newline="") as fh:
             rows = list(csv.DictReader(fh, delimiter="\t"))

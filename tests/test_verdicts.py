@@ -48,6 +48,8 @@ def history(tmp_path_factory):
     sessions = sorted(p.name for p in (sim / "sub-relaxlinedemo").glob("ses-*"))
     for ses in sessions[:N_FREE]:
         shutil.copytree(sim / "sub-relaxlinedemo" / ses, raw / ses)
+    for f in (sim / "sub-relaxlinedemo").glob("*_sessions.*"):   # phantom temperatures
+        shutil.copy(f, raw / f.name)
     (root / "tol.yaml").write_text("maps:\n  T1map: {warn_pct: 7.5, fail_pct: 15}\n")
     cfg = {"input_dir": "rawdata", "output_dir": "results",
            "models": {"ir": {"pattern": "*_IRT1.nii.gz"}},
@@ -68,6 +70,9 @@ def test_drift_free_history_passes(history):
     assert "PASS" in head and "exit status 0" in head
     status = json.loads((history["out"] / "status.json").read_text())
     assert status["verdict"] == "pass" and status["drift_rejections_total"] == 0
+    # the temperature came from the BIDS sessions file, and the report says so
+    page = (history["out"] / "report.html").read_text()
+    assert "sub-relaxlinedemo_sessions.tsv (phantom_temperature)" in page
     # console: one line per session and model, then the verdict, then the report path
     lines = [ln for ln in history["log"].splitlines() if re.search(r"ses-\d+ ir: ", ln)]
     assert len(lines) == N_FREE and all("pass" in ln for ln in lines)
@@ -88,10 +93,10 @@ def test_dry_run_after_edits_lists_exactly_the_affected_jobs(history):
         jobs["_sessions"] = sorted(set(re.findall(r"ses=(ses-\d+)", log)))
         return jobs
 
-    side = next((raw / history["sessions"][0] / "anat").glob("*_IRT1.json"))
+    side = sorted((raw / history["sessions"][0] / "anat").glob("*_IRT1.json"))[0]
     keep, st = side.read_text(), side.stat()
     meta = json.loads(keep)
-    meta["InversionTime"] = [t * 1.1 for t in meta["InversionTime"]]
+    meta["InversionTime"] = meta["InversionTime"] * 1.1
     side.write_text(json.dumps(meta))
     jobs = planned()
     assert {k: v for k, v in jobs.items() if k != "_sessions"} == \
