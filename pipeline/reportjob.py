@@ -98,9 +98,12 @@ def _findings(sess: list[dict], latest: set[str], current, warn_latest) -> tuple
             for f in m.get("warning_vials", []):
                 warns.append(Finding("warn", s["session"], model, f["map"], f["vial"],
                                      "tolerance", f["detail"]))
+    rejected = {(f.session, f.model, f.map, f.vial) for f in rej}   # no 1-2s echo of these
     warns += [Finding("warn", str(r.session), str(r.model), str(r.map),
                       vial_name(r.name, r.label), str(r.rule), str(r.detail))
-              for r in warn_latest.itertuples()]
+              for r in warn_latest.itertuples()
+              if (str(r.session), str(r.model), str(r.map), vial_name(r.name, r.label))
+              not in rejected]
     return rej, fails, warns
 
 
