@@ -159,3 +159,47 @@ def test_current_rejections_only_latest_session():
 def test_unknown_rule_rejected():
     with pytest.raises(ValueError, match="unknown drift rule"):
         DriftSettings(rules=("1-5s",))
+
+
+# ---- false-rejection rates against the normal distribution ------------------------------
+
+RULE_RATES = {  # rule -> (check on z, in-control firing rate per value)
+    "1-3s": (lambda z: drift.beyond(z, 3), lambda sf: 2 * sf(3)),
+    "2-2s": (lambda z: drift.consecutive_beyond(z, 2, 2), lambda sf: 2 * sf(2) ** 2),
+    "4-1s": (lambda z: drift.consecutive_beyond(z, 4, 1), lambda sf: 2 * sf(1) ** 4),
+}
+
+
+def test_false_rejection_rate_of_each_rule_matches_the_normal_distribution():
+    """In control (i.i.d. standard normal z), each rule fires at the rate the normal
+    distribution gives: 1-3s 2(1 − Φ(3)); 2-2s 2(1 − Φ(2))²; 4-1s 2(1 − Φ(1))⁴
+    (Westgard et al. 1981, Clin Chem 27:493 for the rules; Φ from scipy.stats). The
+    machinery `tools/drift_false_alarms.py` measures the default rule set with."""
+    from scipy.stats import norm
+    z = np.random.default_rng(2026).standard_normal(4_000_000)
+    for rule, (check, rate) in RULE_RATES.items():
+        p = rate(norm.sf)
+        hits = int(check(z)[3:].sum())       # from the 4th value on, every rule is defined
+        n = z.size - 3
+        assert abs(hits / n - p) < 4 * np.sqrt(p / n), (rule, hits / n, p)   # 4 SE
+
+
+def test_evaluate_fires_exactly_where_the_rules_do_on_an_in_control_history():
+    """evaluate() on a history whose baseline has mean/SD known exactly rejects exactly the
+    judged values the rule functions flag (so the measured rates above carry over)."""
+    rng = np.random.default_rng(7)
+    n_base, n_judged = 20, 400
+    sessions = [f"2{i:07d}" for i in range(n_base + n_judged)]
+    values, zs = {}, {}
+    for lab in range(1, 7):
+        base = rng.standard_normal(n_base)
+        base = (base - base.mean()) / base.std(ddof=1)   # baseline mean 0, SD 1 exactly
+        zs[lab] = np.concatenate([base, rng.standard_normal(n_judged)])
+        values[lab] = list(1.0 + 0.01 * zs[lab])
+    h = _history(values, sessions=sessions)
+    for rule, (check, _) in RULE_RATES.items():
+        s = DriftSettings(baseline=tuple(sessions[:n_base]), min_sd_pct=0, rules=(rule,))
+        _, v = drift.evaluate(h, s)
+        expected = sorted((sessions[i], lab) for lab, z in zs.items()
+                          for i in np.flatnonzero(check(z)) if i >= n_base)
+        assert sorted(zip(v["session"], v["label"])) == expected, rule
