@@ -18,7 +18,8 @@ pure background noise stays under with probability 0.999
 found; if the series has no recognisable background every voxel is fitted. Voxels
 with non-finite or all-zero data get BAD_DATA.
 
-Output names (``<stem>`` from the input): one map per parameter with the model's
+Output names (``<stem>``: :func:`pipeline.bidsderiv.derivative_stem` of the input's
+stem, e.g. ``sub-01_rec-ir``): one map per parameter with the model's
 suffix (``T1map``, ``M0map``, ``InvEffmap`` for the ir inversion efficiency,
 ``TB1map``), ``desc-stderr_<suffix>`` per parameter, ``desc-rmse_<primary suffix>``
 (root-mean-square residual √(RSS/M) in signal units, e.g. ``<stem>_desc-rmse_T1map``)
@@ -226,16 +227,22 @@ def _put(target: np.ndarray, oz: slice, slab_shape, idx: np.ndarray, values: np.
 
 def write_fit_outputs(arrays: Mapping[str, np.ndarray], series: Series, out_dir: str | Path,
                       model: str | ModelSpec, engine: str, options: Mapping[str, Any],
-                      notes: Sequence[str] = ()) -> list[Path]:
+                      notes: Sequence[str] = (), datatype_folders: bool = False) -> list[Path]:
     """Write every map of ``arrays`` (whole volume) with its JSON sidecar; returns paths.
 
     ``model`` and ``options`` as given to :func:`fit_arrays` (the spec is configured the
     same way, so the keys match). ``notes``: warnings about the fit every map's sidecar
-    carries under ``Warnings`` (``relaxline qc`` shows them in its report).
+    carries under ``Warnings`` (``relaxline qc`` shows them in its report). Names are the
+    BIDS-derivative ones of :func:`pipeline.bidsderiv.derivative_stem`; with
+    ``datatype_folders`` (the workflow) each map goes into ``out_dir/anat`` or
+    ``out_dir/fmap`` as BIDS wants, else all into ``out_dir``.
     """
+    from pipeline.bidsderiv import QUANTITY, datatype, derivative_stem, is_parametric
     spec = configure_model(_spec(model), options)
     prov = provenance(spec.name, engine, dict(options), series)
     units = {spec.outputs[k]: spec.unit(k) for k in spec.params}
+    stem = derivative_stem(series.stem, spec.name)
+    what = f"{spec.name} model fitted voxelwise to {series.stem}"
     paths = []
     for key in output_keys(spec):
         arr = arrays[key]
@@ -248,19 +255,28 @@ def write_fit_outputs(arrays: Mapping[str, np.ndarray], series: Series, out_dir:
         if desc == "fitstatus":
             u = "code"
             extra["StatusCodes"] = {str(c): name for c, name in st.NAMES.items()}
+            extra["Description"] = f"fit status code of each voxel (StatusCodes); {what}"
         elif desc == "rmse":
             u = "arbitrary"
-            extra["Description"] = "root-mean-square fit residual sqrt(RSS/M), signal units"
+            extra["Description"] = ("root-mean-square fit residual sqrt(RSS/M), signal units; "
+                                    + what)
         else:
             u = units[suffix]
+            quantity = QUANTITY.get(suffix, f"parameter {suffix[:-3] or suffix}")
+            extra["Description"] = f"{quantity}; {what}"
             if desc == "stderr":
-                extra["Description"] = ("standard error from the Jacobian at the solution; "
-                                        "noise from " + ("background" if options.get(
-                                            "noise_sigma") is not None else "residuals"))
+                extra["Description"] = ("standard error of the " + quantity + " from the "
+                                        "Jacobian at the solution; noise from " +
+                                        ("background" if options.get("noise_sigma") is not None
+                                         else "residuals") + "; " + what)
             if suffix == "InvEffmap":
                 extra["Description"] = ("inversion efficiency -cos(inversion angle): 1 ideal, "
-                                        "0 none (apparent; absorbs excitation errors too)")
-        paths.append(write_map(out_dir, series.stem, suffix, arr, series.affine, prov,
+                                        "0 none (apparent; absorbs excitation errors too); "
+                                        + what)
+        if is_parametric(suffix):
+            extra["SkullStripped"] = False   # BIDS: required on parametric maps
+        folder = Path(out_dir) / datatype(suffix) if datatype_folders else out_dir
+        paths.append(write_map(folder, stem, suffix, arr, series.affine, prov,
                                desc=desc, units=u, extra=extra))
     return paths
 
@@ -297,8 +313,12 @@ def fit_command(model: str, inputs: Sequence[str | Path], out: str | Path,
                 engine: str = "fast", jobs: int = 1, time_unit: str = "s",
                 stream: TextIO | None = None, show_progress: bool = True,
                 model_options: Mapping[str, Any] | None = None,
-                t1_map: str | Path | None = None) -> list[Path]:
+                t1_map: str | Path | None = None, datatype_folders: bool = False
+                ) -> list[Path]:
     """``relaxline fit``: validate everything, fit, then write all maps.
+
+    ``datatype_folders``: maps into ``out/anat`` and ``out/fmap`` (the workflow's
+    session folders), else all into ``out``.
 
     ``model_options``: model variants and noise model (``t1_fixed``, ``plateau``,
     ``skip_echoes``, ``noise``; :func:`fitting.spec.configure_model`). ``t1_map``: a
@@ -346,7 +366,8 @@ def fit_command(model: str, inputs: Sequence[str | Path], out: str | Path,
     notes = fit_notes(arrays, options, t1_arr)
     for note in notes:
         print(f"relaxline fit: warning: {note}.", file=stream)
-    return write_fit_outputs(arrays, series, out, model, engine, options, notes)
+    return write_fit_outputs(arrays, series, out, model, engine, options, notes,
+                             datatype_folders)
 
 
 def fit_notes(arrays: Mapping[str, np.ndarray], options: Mapping[str, Any],

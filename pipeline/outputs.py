@@ -146,12 +146,16 @@ def write_map(out_dir: str | Path, stem: str, suffix: str, array: np.ndarray,
 
 def provenance(model: str, engine: str, options: dict[str, Any], series) -> dict[str, Any]:
     """Provenance block for map sidecars: model, engine, options, version, input checksums."""
+    from pipeline.bidsderiv import source_uri
+    checksums = series.checksums() if series is not None else []
     return {
         "Model": model,
         "Engine": engine,
         "Options": options,
         "RelaxlineVersion": package_version(),
-        "Sources": series.checksums() if series is not None else [],
+        # BIDS URIs of the input files (design §6); SourceFiles: where they were and sha256
+        "Sources": [source_uri(c["path"]) for c in checksums],
+        "SourceFiles": checksums,
         "VaryingKey": getattr(series, "key", None),
         "VaryingValues": getattr(series, "values", np.zeros(0)).tolist(),
     }

@@ -94,28 +94,42 @@ def _read_json(path: Path) -> dict[str, Any]:
     return obj
 
 
-def discover_maps(maps_dir: str | Path) -> list[MapFile]:
-    """Parameter maps in ``maps_dir`` (``<stem>_<suffix>.nii[.gz]``, no ``desc-`` entity)."""
+def map_folders(maps_dir: str | Path) -> list[Path]:
+    """Where maps are looked for: ``maps_dir`` and its BIDS datatype folders ``anat/`` and
+    ``fmap/`` (a session folder of the workflow's results)."""
+    d = Path(maps_dir)
+    return [d] + [d / t for t in ("anat", "fmap") if (d / t).is_dir()]
+
+
+def discover_maps(maps_dir: str | Path, model: str | None = None) -> list[MapFile]:
+    """Parameter maps in ``maps_dir`` (``<stem>_<suffix>.nii[.gz]``, no ``desc-`` entity),
+    also in its ``anat/`` and ``fmap/`` folders; only those of ``model`` (sidecar ``Model``)
+    when given."""
     d = Path(maps_dir)
     if not d.is_dir():
         raise InputError(f"{d}: maps folder not found (MAPS_DIR is the --out folder of "
-                         "`relaxline fit`).")
+                         "`relaxline fit`, or a session folder of the workflow's results).")
+    files = {p.name: p for f in map_folders(d) for p in sorted(f.iterdir())}
+
+    def companion(name: str) -> Path | None:
+        return next((files[n] for n in (name + ".nii.gz", name + ".nii") if n in files), None)
+
     found = []
-    for p in sorted(d.iterdir()):
-        m = _MAP_NAME.match(p.name)
-        if not m or "_desc-" in p.name:
+    for name, p in sorted(files.items()):
+        m = _MAP_NAME.match(name)
+        if not m or "_desc-" in name:
             continue
         stem, suffix = m.group("stem"), m.group("suffix")
         side = sidecar_path(p)
         sidecar = _read_json(side) if side.is_file() else {}
-        status = next((q for q in (d / f"{stem}_desc-fitstatus_mask.nii.gz",
-                                   d / f"{stem}_desc-fitstatus_mask.nii") if q.is_file()), None)
-        stderr = next((q for q in (d / f"{stem}_desc-stderr_{suffix}.nii.gz",
-                                   d / f"{stem}_desc-stderr_{suffix}.nii") if q.is_file()), None)
-        found.append(MapFile(stem, suffix, p, sidecar, status, stderr))
+        if model is not None and sidecar.get("Model") != model:
+            continue
+        found.append(MapFile(stem, suffix, p, sidecar, companion(f"{stem}_desc-fitstatus_mask"),
+                             companion(f"{stem}_desc-stderr_{suffix}")))
     found.sort(key=lambda f: (f.stem, ALL_MAPS.index(f.suffix)))
     if not any(f.suffix in QC_MAPS for f in found):
-        raise InputError(f"{d}: no parameter maps found; expected files named "
+        of = f" of the {model} model" if model else ""
+        raise InputError(f"{d}: no parameter maps{of} found; expected files named "
                          f"<stem>_{{{','.join(QC_MAPS)}}}.nii.gz as written by `relaxline fit`.")
     return found
 
@@ -151,7 +165,8 @@ def source_paths(mf: MapFile) -> list[Path]:
     """Paths in the map sidecar's ``Sources``, resolved: as written (absolute or relative to
     the working folder), else relative to the maps folder or its parent."""
     out = []
-    for src in mf.sidecar.get("Sources") or []:
+    # SourceFiles: paths and sha256 (Sources holds BIDS URIs); older maps: Sources as paths
+    for src in mf.sidecar.get("SourceFiles") or mf.sidecar.get("Sources") or []:
         p = Path(src.get("path", "")) if isinstance(src, dict) else Path(str(src))
         if not p.is_absolute() and not p.exists():
             for base in (mf.path.parent, mf.path.parent.parent):
@@ -373,8 +388,10 @@ def run_qc(maps_dir: str | Path, out_dir: str | Path, label_source: LabelSource,
            temperature_source: str = "--temperature",
            labels_desc: str = "label map",
            extra_sections: Sequence[tuple[str, str]] = (),
-           extra_warnings: Sequence[str] = ()) -> QCResult:
+           extra_warnings: Sequence[str] = (), model: str | None = None) -> QCResult:
     """Full QC of one maps folder: compute, then write roi_stats.tsv, figures and report.
+
+    ``model``: only that model's maps (the workflow's session folders hold every model's).
 
     Everything is computed before anything is written, so bad input leaves no output.
     ``label_source`` gives the label map per map grid (:func:`labels_from_file`, or a
@@ -386,7 +403,7 @@ def run_qc(maps_dir: str | Path, out_dir: str | Path, label_source: LabelSource,
     from qc.tolerance import load_tolerances
 
     from pipeline.qcrender import render
-    maps = discover_maps(maps_dir)
+    maps = discover_maps(maps_dir, model)
     reference = Reference.load(reference_path) if reference_path is not None else None
     tol = load_tolerances(config)
     result = compute(maps, label_source, reference, tol, temperature, session, erode_mm,

@@ -241,8 +241,10 @@ def render(result: QCResult, reference, tol, out_figures: bool, erode_mm: float,
         summary["ranges"] = (f"{tol.source}: region mean inside [low, high] → pass, outside "
                              f"→ fail{margin}; only where no reference value applies. Ranges "
                              "are set by the local procedure.")
+    # the report shows the inputs' paths and sha256 (SourceFiles; older maps: Sources)
     provenance = [{"file": mf.path.name, **{k: mf.sidecar.get(k) for k in
-                  ("Model", "Engine", "Options", "RelaxlineVersion", "Sources")}}
+                  ("Model", "Engine", "Options", "RelaxlineVersion")},
+                   "Sources": mf.sidecar.get("SourceFiles") or mf.sidecar.get("Sources")}
                   for mf in result.maps if mf.suffix in QC_MAPS]
     import datetime
     footer = (f"relaxline {package_version()}, report generated "

@@ -16,7 +16,7 @@ from pathlib import Path
 
 from pipeline.errors import InputError
 
-MANIFEST = "{sub}/{ses}/maps/{model}/{stem}.fit.json"
+MANIFEST = "{sub}/{ses}/fits/{model}/{stem}.fit.json"   # maps: {sub}/{ses}/anat|fmap/
 CHUNK = "{sub}/{ses}/chunks/{model}/{stem}/chunk-{chunk}.npz"
 
 

@@ -103,7 +103,8 @@ def contrast_maps(group: list[MapFile], reference) -> list[tuple[np.ndarray, dic
 
 def place_vials(maps_dir: str | Path, layout_path: str | Path, margin_mm: float,
                 session: str | None = None, reference_path: str | Path | None = None,
-                mirror: bool = True) -> list[GridPlacement]:
+                mirror: bool = True, model: str | None = None
+                ) -> list[GridPlacement]:
     """Localise the layout's vials on every voxel grid found in ``maps_dir``.
 
     With a reference table, the relaxation maps' vial values decide between placements
@@ -120,7 +121,7 @@ def place_vials(maps_dir: str | Path, layout_path: str | Path, margin_mm: float,
     layout = read_layout(layout_path)
     reference = Reference.load(reference_path) if reference_path is not None else None
     grids: dict[str, list[MapFile]] = {}
-    for mf in discover_maps(maps_dir):
+    for mf in discover_maps(maps_dir, model):
         grids.setdefault(_grid_key(mf), []).append(mf)
     out = []
     for key, group in grids.items():
@@ -219,7 +220,8 @@ def run_qc_with_layout(maps_dir: str | Path, out_dir: str | Path, layout_path: s
         raise InputError(f"--margin-mm must be a non-negative margin in mm, got {margin_mm}.")
     try:
         grids = place_vials(maps_dir, layout_path, margin_mm, session,
-                            run_qc_options.get("reference_path"), mirror)
+                            run_qc_options.get("reference_path"), mirror,
+                            run_qc_options.get("model"))
     except PoorMatchError as exc:
         grid = getattr(exc, "grid", None)
         if grid is None:

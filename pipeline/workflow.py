@@ -6,10 +6,13 @@ the sessions and series (both re-exported here for the rules), and every rule
 runs one step of this module as ``python -m pipeline.workflow STEP ...``, so the
 logic lives (and is tested) here.
 
-Layout of the output folder (the Snakemake working directory)::
+Layout of the output folder (the Snakemake working directory), a BIDS derivative
+dataset (:mod:`pipeline.bidsderiv`; what is not BIDS is listed in its ``.bidsignore``)::
 
-    sub-<p>/ses-<d>/maps/<model>/<stem>_<suffix>.nii.gz   maps as `relaxline fit` writes
-    sub-<p>/ses-<d>/maps/<model>/<stem>.fit.json          manifest, written last (job done)
+    dataset_description.json, README.md, .bidsignore      written by `relaxline run`
+    sub-<p>/ses-<d>/anat/<dstem>_<suffix>.nii.gz          maps as `relaxline fit` names them
+    sub-<p>/ses-<d>/fmap/<dstem>_TB1map.nii.gz            (B1 maps: fmap/)
+    sub-<p>/ses-<d>/fits/<model>/<stem>.fit.json          manifest, written last (job done)
     sub-<p>/ses-<d>/chunks/<model>/<stem>/chunk-<i>.npz   slab results (temporary)
     sub-<p>/ses-<d>/qc/<model>/roi_stats.tsv ...          as `relaxline qc` writes
     sub-<p>/ses-<d>/qc/session.json                       QC summary of the session
@@ -56,16 +59,23 @@ def b1_map_path(maps_manifest: str | Path) -> str:
     if len(hits) != 1:
         raise InputError(f"{maps_manifest}: expected one TB1map in the dam outputs, found "
                          f"{len(hits)}.")
-    return str(Path(maps_manifest).parent / hits[0])
+    return os.path.normpath(Path(maps_manifest).parent / hits[0])
+
+
+def session_dir(manifest: str | Path) -> Path:
+    """The session folder of a fit manifest (``<sub>/<ses>/fits/<model>/<stem>.fit.json``),
+    where the fit writes its maps into ``anat/`` and ``fmap/``."""
+    return Path(manifest).parents[2]
 
 
 def write_manifest(path: str | Path, files: Sequence[Path], inputs: Sequence[str],
                    model: str) -> None:
+    """The fit's files, relative to the manifest's folder, with their sha256."""
     from pipeline.outputs import atomic_write_json
     from pipeline.series import sha256_file
-    atomic_write_json(path, {"model": model, "inputs": list(inputs),
-                             "files": sorted(Path(f).name for f in files),
-                             "sha256": {Path(f).name: sha256_file(f) for f in files}})
+    rel = {Path(os.path.relpath(f, Path(path).parent)).as_posix(): f for f in files}
+    atomic_write_json(path, {"model": model, "inputs": list(inputs), "files": sorted(rel),
+                             "sha256": {r: sha256_file(f) for r, f in rel.items()}})
 
 
 def step_fit(model: str, inputs: Sequence[str], out_dir: str, manifest: str,
@@ -73,12 +83,14 @@ def step_fit(model: str, inputs: Sequence[str], out_dir: str, manifest: str,
              chunks: Sequence[str] = (), options: dict | None = None) -> None:
     """Fit one series (or gather its chunk results) and write the manifest last.
 
+    ``out_dir``: the session folder; maps go into its ``anat/`` and ``fmap/`` folders.
     ``options``: model options from the config (:func:`model_options`)."""
     from pipeline.fitjob import fit_command, prepare, write_fit_outputs
     b1 = b1_map_path(b1_manifest) if b1_manifest else None
     if not chunks:
         files = fit_command(model, inputs, out_dir, b1=b1, engine=engine, jobs=threads,
-                            time_unit=time_unit, show_progress=False, model_options=options)
+                            time_unit=time_unit, show_progress=False, model_options=options,
+                            datatype_folders=True)
     else:
         _, series, _ = prepare(model, inputs, time_unit)
         parts = [np.load(c) for c in chunks]
@@ -86,7 +98,8 @@ def step_fit(model: str, inputs: Sequence[str], out_dir: str, manifest: str,
         options = json.loads(str(parts[0]["__options__"]))
         arrays = {k: np.concatenate([p[f"a{i}"] for p in parts], axis=2)
                   for i, k in enumerate(keys)}
-        files = write_fit_outputs(arrays, series, out_dir, model, options["engine"], options)
+        files = write_fit_outputs(arrays, series, out_dir, model, options["engine"], options,
+                                  datatype_folders=True)
     write_manifest(manifest, files, inputs, model)
 
 
@@ -170,8 +183,9 @@ def step_qc(settings: dict, manifests: Sequence[str], out: str) -> None:
     if s.get("temperature") is not None:
         options.update(temperature=s["temperature"],
                        temperature_source=s["temperature_source"])
+    maps_dir = session_dir(manifests[0]) if manifests else qc_root.parent  # anat/, fmap/
     for model in models:
-        maps_dir = Path(manifests[0]).parent.parent / model
+        options["model"] = model
         if s["labels"]:
             res = run_qc(maps_dir, qc_root / model, labels_from_file(s["labels"]),
                          labels_desc=s["labels"], **options)
@@ -238,8 +252,12 @@ def write_session_page(summary: dict, path: Path) -> None:
 
 def history_series(model: str, stem: str, ses: str) -> str:
     """Series key in the history: stable across sessions (``ses-`` entity removed) and
-    distinct per model (mese and mese-mono fit the same series)."""
-    return f"{model}:{re.sub(rf'_?{re.escape(ses)}(?=_|$)', '', stem)}"
+    distinct per model (mese and mese-mono fit the same series); the map stem's
+    ``rec-<model>`` entity is dropped, the model being the key's prefix."""
+    from pipeline.bidsderiv import model_label
+    for entity in (ses, f"rec-{model_label(model)}"):
+        stem = re.sub(rf"_?{re.escape(entity)}(?=_|$)", "", stem)
+    return f"{model}:{stem}"
 
 
 def session_table(summary: dict) -> "pd.DataFrame":
@@ -327,7 +345,7 @@ def fit_command(cfg: dict, plan_: Plan, step: str, wc, input, output, threads: i
         z0, z1 = job.slabs[int(wc.chunk)]
         args += ["--z", z0, z1, "--out", output[0]]
     else:
-        args += ["--out", str(Path(output[0]).parent), "--manifest", output[0]]
+        args += ["--out", str(session_dir(output[0])), "--manifest", output[0]]
         if input.chunks:
             args += ["--chunks", *input.chunks]
     return _cmd(step, args, log)

@@ -5,9 +5,11 @@ from __future__ import annotations
 import json
 
 import pandas as pd
+import pytest
 
 from bidscheck import summary, validate
 from pipeline import phantom
+from pipeline.cli import main
 from pipeline.series import read_series
 from pipeline.sessions import plan
 from pipeline.simulate import (IR_TI, MESE_ECHOES, VFA_FLIPS, VFA_TR, SimOptions, series_paths,
@@ -81,3 +83,31 @@ def test_discovery_finds_series_in_anat_and_fmap(tmp_path):
     # only anat/ searched: no dam series, so vfa's `b1: dam` has no source
     anat_only = {**cfg, "discovery": {**cfg["discovery"], "datatype": "anat"}}
     assert "dam" not in {j.model for j in plan(anat_only).sessions[0].series}
+
+
+@pytest.mark.slow
+def test_demo_raw_and_results_are_valid_bids(tmp_path):
+    """`relaxline demo` (one session, every demo model): the raw dataset and the results
+    folder pass the official validator with 0 errors; the results are a derivative
+    dataset whose map sidecars describe themselves and cite their sources as BIDS URIs."""
+    assert main(["demo", str(tmp_path), "--sessions", "1", "--cores", "2"]) in (0, 1)
+    raw, results = tmp_path / "rawdata", tmp_path / "results"
+    for root in (raw, results):
+        errors, _ = validate(root)
+        assert errors == [], f"{root}:\n{summary(errors)}"
+    desc = json.loads((results / "dataset_description.json").read_text())
+    assert desc["DatasetType"] == "derivative" and desc["GeneratedBy"][0]["Name"] == "relaxline"
+    link = (results / desc["DatasetLinks"]["raw"]).resolve()
+    assert link == raw.resolve()
+    ses = results / SUB / f"ses-{session_label(0)}"
+    sidecars = sorted(ses.glob("anat/*.json")) + sorted(ses.glob("fmap/*.json"))
+    assert {p.name.split("_rec-")[1].split("_")[0] for p in sidecars} == \
+        {"ir", "dam", "vfa", "mese", "mesemono", "megre"}
+    for p in sidecars:
+        side = json.loads(p.read_text())
+        assert side["Description"], p.name
+        for uri in side["Sources"]:
+            assert uri.startswith("bids:raw:") and (link / uri[len("bids:raw:"):]).is_file()
+    assert (ses / "fmap" / f"{SUB}_ses-{session_label(0)}_rec-dam_TB1map.nii.gz").is_file()
+    assert (ses / "fmap" / f"{SUB}_ses-{session_label(0)}_rec-mese_TB1map.nii.gz").is_file()
+    assert (ses / "qc" / "ir" / "roi_stats.tsv").is_file() and (results / "report.html").is_file()

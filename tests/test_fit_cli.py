@@ -55,7 +55,7 @@ def test_ir_cli_writes_maps(ir_series, tmp_path, capsys):
     out = tmp_path / "maps"
     code, stdout, err = _run(capsys, "ir", path, "--out", out)
     assert code == 0, err
-    stem = "sub-01_IRT1"
+    stem = "sub-01_rec-ir"   # BIDS-derivative name: raw suffix dropped, model in rec-
     names = {p.name for p in out.iterdir()}
     for key in ("T1map", "M0map", "InvEffmap", "desc-stderr_T1map", "desc-stderr_M0map",
                 "desc-stderr_InvEffmap", "desc-rmse_T1map", "desc-fitstatus_mask"):
@@ -73,7 +73,9 @@ def test_ir_cli_writes_maps(ir_series, tmp_path, capsys):
     side = json.loads((out / f"{stem}_T1map.json").read_text())
     assert side["Units"] == "s" and side["Model"] == "ir" and side["Engine"] == "fast"
     assert side["Options"]["noise_sigma"] == pytest.approx(SIGMA, rel=0.05)
-    assert any(s["path"].endswith(".nii.gz") for s in side["Sources"])
+    assert any(s["path"].endswith(".nii.gz") for s in side["SourceFiles"])
+    # Sources: URIs (inputs outside a BIDS dataset: file://); BIDS wants a Description
+    assert all(u.startswith("file:///") for u in side["Sources"]) and side["Description"]
     eff = json.loads((out / f"{stem}_InvEffmap.json").read_text())
     assert eff["Units"] == "ratio"
     codes = json.loads((out / f"{stem}_desc-fitstatus_mask.json").read_text())["StatusCodes"]
@@ -105,9 +107,9 @@ def test_mask_and_lmfit_engine(ir_series, tmp_path, capsys):
     assert code == 0, err
     code, _, err = _run(capsys, "ir", path, "--out", tmp_path / "fast", "--mask", mpath)
     assert code == 0, err
-    a = nib.load(tmp_path / "lm" / "sub-01_IRT1_T1map.nii.gz").get_fdata()
-    b = nib.load(tmp_path / "fast" / "sub-01_IRT1_T1map.nii.gz").get_fdata()
-    st_lm = np.asarray(nib.load(tmp_path / "lm" / "sub-01_IRT1_desc-fitstatus_mask.nii.gz")
+    a = nib.load(tmp_path / "lm" / "sub-01_rec-ir_T1map.nii.gz").get_fdata()
+    b = nib.load(tmp_path / "fast" / "sub-01_rec-ir_T1map.nii.gz").get_fdata()
+    st_lm = np.asarray(nib.load(tmp_path / "lm" / "sub-01_rec-ir_desc-fitstatus_mask.nii.gz")
                        .dataobj)
     assert np.all(st_lm[mask == 0] == st.OUTSIDE) and np.all(st_lm[mask == 1] == st.OK)
     assert np.nanmax(np.abs(a[mask == 1] / b[mask == 1] - 1)) < 1e-3
@@ -121,8 +123,8 @@ def test_bad_voxels_are_flagged_not_fatal(tmp_path, capsys):
     mask = write_nifti(tmp_path / "m.nii.gz", obj.astype(np.uint8))
     code, _, err = _run(capsys, "ir", path, "--out", tmp_path / "o", "--mask", mask)
     assert code == 0, err
-    status = np.asarray(nib.load(tmp_path / "o" / "bad_desc-fitstatus_mask.nii.gz").dataobj)
-    t1 = nib.load(tmp_path / "o" / "bad_T1map.nii.gz").get_fdata()
+    status = np.asarray(nib.load(tmp_path / "o" / "bad_rec-ir_desc-fitstatus_mask.nii.gz").dataobj)
+    t1 = nib.load(tmp_path / "o" / "bad_rec-ir_T1map.nii.gz").get_fdata()
     assert status[12, 12, 0] == st.BAD_DATA and status[11, 12, 0] == st.BAD_DATA
     assert np.isnan(t1[12, 12, 0]) and np.isnan(t1[11, 12, 0])
 
@@ -165,7 +167,7 @@ def test_all_zero_series_gives_bad_data_everywhere(tmp_path, capsys):
     p = write_4d(tmp_path, "zero", y, "InversionTime", TI, {"RepetitionTime": TR})
     code, _, err = _run(capsys, "ir", p, "--out", tmp_path / "o")
     assert code == 0, err
-    status = np.asarray(nib.load(tmp_path / "o" / "zero_desc-fitstatus_mask.nii.gz").dataobj)
+    status = np.asarray(nib.load(tmp_path / "o" / "zero_rec-ir_desc-fitstatus_mask.nii.gz").dataobj)
     assert np.all(status == st.BAD_DATA)
 
 
@@ -187,12 +189,12 @@ def test_vfa_with_and_without_b1(tmp_path, capsys):
     code, _, err = _run(capsys, "vfa", *paths, "--out", tmp_path / "o1", "--b1", b1p)
     assert code == 0, err
     assert "biased" not in err
-    t1 = nib.load(tmp_path / "o1" / "sub-01_VFA_T1map.nii.gz").get_fdata()
+    t1 = nib.load(tmp_path / "o1" / "sub-01_rec-vfa_T1map.nii.gz").get_fdata()
     assert abs(np.nanmedian(t1[obj]) - 1.0) < 0.02
     code, _, err = _run(capsys, "vfa", *paths, "--out", tmp_path / "o2")
     assert code == 0
     assert "warning" in err and "biased" in err and "B1" in err
-    t1_nob1 = nib.load(tmp_path / "o2" / "sub-01_VFA_T1map.nii.gz").get_fdata()
+    t1_nob1 = nib.load(tmp_path / "o2" / "sub-01_rec-vfa_T1map.nii.gz").get_fdata()
     assert np.nanmedian(t1_nob1[obj]) < 0.85
     # B1 map on another grid: exit 2, nothing written
     bad = write_nifti(tmp_path / "b1bad.nii.gz", np.ones((5, 5, 3), np.float32))
@@ -208,10 +210,10 @@ def test_dam_two_3d_inputs(tmp_path, capsys):
                          {"RepetitionTime": 10.0}, entity="flip")
     code, _, err = _run(capsys, "dam", *paths, "--out", tmp_path / "o")
     assert code == 0, err
-    tb1 = nib.load(tmp_path / "o" / "sub-01_DAM_TB1map.nii.gz").get_fdata()
+    tb1 = nib.load(tmp_path / "o" / "sub-01_rec-dam_TB1map.nii.gz").get_fdata()
     # Insko & Bolinger 1993, J Magn Reson A 103:82
     assert np.nanmedian(np.abs(tb1[obj] / b1[obj] - 1)) < 0.01
-    assert json.loads((tmp_path / "o" / "sub-01_DAM_TB1map.json").read_text())["Units"] == "ratio"
+    assert json.loads((tmp_path / "o" / "sub-01_rec-dam_TB1map.json").read_text())["Units"] == "ratio"
     bad = write_3d_set(tmp_path / "in2", "sub-01_DAM", np.abs(y), "FlipAngle", [60.0, 100.0],
                        {"RepetitionTime": 10.0}, entity="flip")
     _expect_error(capsys, tmp_path / "o2", "dam", *bad, match="2:1")

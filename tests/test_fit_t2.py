@@ -356,7 +356,7 @@ def test_cli_mese_writes_maps(mese_series, tmp_path, capsys):
     out = tmp_path / "maps"
     code, err = _fit_cli(capsys, "mese", path, "--out", out)
     assert code == 0, err
-    stem = "sub-01_MESE"
+    stem = "sub-01_rec-mese"   # BIDS-derivative name of the mese fit of sub-01_MESE
     for key in ("T2map", "M0map", "TB1map", "desc-stderr_T2map", "desc-stderr_TB1map",
                 "desc-rmse_T2map", "desc-fitstatus_mask"):
         assert (out / f"{stem}_{key}.nii.gz").is_file(), key
@@ -379,19 +379,19 @@ def test_cli_mese_with_b1_map_and_options(mese_series, tmp_path, capsys):
     out = tmp_path / "b1fixed"
     code, err = _fit_cli(capsys, "mese", path, "--out", out, "--b1", b1_path, "--t1-fixed", "0.8")
     assert code == 0, err
-    assert not (out / "sub-01_MESE_TB1map.nii.gz").exists()   # B1 is an input here
-    t2map = _load(out, "sub-01_MESE_T2map.nii.gz")
+    assert not (out / "sub-01_rec-mese_TB1map.nii.gz").exists()   # B1 is an input here
+    t2map = _load(out, "sub-01_rec-mese_T2map.nii.gz")
     assert abs(np.median(t2map[disk] / t2[disk] - 1)) < 0.02
     out = tmp_path / "mono"
     code, err = _fit_cli(capsys, "mese-mono", path, "--out", out, "--plateau", "--skip-echoes", "1")
     assert code == 0, err
-    mono = _load(out, "sub-01_MESE_T2map.nii.gz")
+    mono = _load(out, "sub-01_rec-mesemono_T2map.nii.gz")
     # Lebel & Wilman 2010: mono-exponential T2 too long where B1 = 0.8
     assert np.median(mono[disk & (b1 == 0.8)] / t2[disk & (b1 == 0.8)]) > 1.0
     out = tmp_path / "rician"
     code, err = _fit_cli(capsys, "megre", path, "--out", out, "--noise", "rician")
     assert code == 0, err
-    assert (out / "sub-01_MESE_T2starmap.nii.gz").is_file()
+    assert (out / "sub-01_rec-megre_T2starmap.nii.gz").is_file()
 
 
 def test_cli_bad_input(tmp_path, capsys):

@@ -124,7 +124,7 @@ def _run(capsys, *argv):
 
 
 def _map(folder, name):
-    return np.asarray(nib.load(folder / f"sub-01_MESE_{name}.nii.gz").get_fdata())
+    return np.asarray(nib.load(folder / f"sub-01_rec-mese_{name}.nii.gz").get_fdata())
 
 
 def test_cli_fit_with_t1_map(phantom, tmp_path, capsys):
@@ -135,7 +135,7 @@ def test_cli_fit_with_t1_map(phantom, tmp_path, capsys):
     assert code == 0, err
     # isochromat reference (Hennig 1988), noiseless, true T1 per voxel: T2 exact
     np.testing.assert_allclose(_map(out, "T2map")[mask], t2[mask], rtol=1e-4)
-    side = json.loads((out / "sub-01_MESE_T2map.json").read_text())
+    side = json.loads((out / "sub-01_rec-mese_T2map.json").read_text())
     assert side["Options"]["t1_map"] == str(t1_path)
     assert "Warnings" not in side
     # the same series with the default fixed T1: the biases of issue 14
@@ -162,7 +162,7 @@ def test_cli_t1_map_gaps(phantom, tmp_path, capsys):
                         "--t1-map", hp, "--t1-fixed", "2.5")
     assert code == 0, err
     assert "has no value in 2 of the 16 fitted voxels; T1 = 2.5 s" in err
-    side = json.loads((out / "sub-01_MESE_TB1map.json").read_text())
+    side = json.loads((out / "sub-01_rec-mese_TB1map.json").read_text())
     assert any("T1 = 2.5 s" in w for w in side["Warnings"])
     good = mask.copy()
     good[2, 3, 0] = good[1, 1, 0] = False

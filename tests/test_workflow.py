@@ -160,6 +160,10 @@ def test_slab_bounds():
 def test_history_series_key_drops_session():
     assert W.history_series("ir", "sub-p_ses-20261101_IRT1", "ses-20261101") == "ir:sub-p_IRT1"
     assert W.history_series("mese-mono", "sub-p_ses-1_MESE", "ses-1") == "mese-mono:sub-p_MESE"
+    # derivative stems: the model's rec- entity is dropped (the model is the prefix)
+    assert W.history_series("ir", "sub-p_ses-20261101_rec-ir", "ses-20261101") == "ir:sub-p"
+    assert W.history_series("mese-mono", "sub-p_ses-1_rec-mesemono_run-2", "ses-1") == \
+        "mese-mono:sub-p_run-2"
 
 
 def test_chunked_fit_identical_to_unsplit(sim3, tmp_path):
@@ -175,12 +179,15 @@ def test_chunked_fit_identical_to_unsplit(sim3, tmp_path):
     W.step_fit("ir", series, str(tmp_path / "split"), str(tmp_path / "m.json"), None, "fast",
                1, "s", chunks)
     whole = sorted(p.name for p in (tmp_path / "whole").glob("*.nii.gz"))
-    assert whole and whole == sorted(p.name for p in (tmp_path / "split").glob("*.nii.gz"))
+    # the workflow puts the maps in the session's datatype folder (anat/ for ir)
+    assert whole and whole == sorted(p.name for p in (tmp_path / "split" / "anat")
+                                     .glob("*.nii.gz"))
     for name in whole:
         assert (tmp_path / "whole" / name).read_bytes() == \
-            (tmp_path / "split" / name).read_bytes(), name
+            (tmp_path / "split" / "anat" / name).read_bytes(), name
     manifest = json.loads((tmp_path / "m.json").read_text())
-    assert sorted(f for f in manifest["files"] if f.endswith(".nii.gz")) == whole
+    assert sorted(f for f in manifest["files"] if f.endswith(".nii.gz")) == \
+        [f"split/anat/{n}" for n in whole]
 
 
 def test_model_options_reach_the_fit_job(sim3, tmp_path):
@@ -198,9 +205,10 @@ def test_model_options_reach_the_fit_job(sim3, tmp_path):
                "fast", 1, "s", [str(c)], opts)
     names = sorted(p.name for p in (tmp_path / "cli").glob("*.nii.gz"))
     assert any(n.endswith("_Plateaumap.nii.gz") for n in names)
-    assert names == sorted(p.name for p in (tmp_path / "wf").glob("*.nii.gz"))
+    assert names == sorted(p.name for p in (tmp_path / "wf" / "anat").glob("*.nii.gz"))
     for name in names:
-        assert (tmp_path / "cli" / name).read_bytes() == (tmp_path / "wf" / name).read_bytes()
+        assert (tmp_path / "cli" / name).read_bytes() == \
+            (tmp_path / "wf" / "anat" / name).read_bytes()
 
 
 def test_profiles_name_real_rules():
@@ -282,14 +290,14 @@ def test_e2e_outputs_agree_with_commands(e2e, sim3, tmp_path):
     ir_in = [str(p) for p in series_paths(e2e["root"] / "rawdata", 0, "IRT1")]
     assert main(["fit", "ir", *ir_in, "--out", str(tmp_path / "ir"), "--jobs", "1"]) == 0
     for p in (tmp_path / "ir").glob("*.nii.gz"):
-        assert p.read_bytes() == (ses / "maps" / "ir" / p.name).read_bytes(), p.name
-    # vfa got the session's dam B1 map
-    side = json.loads((ses / "maps" / "vfa" / "sub-relaxlinedemo_ses-20261101_VFA_T1map.json")
+        assert p.read_bytes() == (ses / "anat" / p.name).read_bytes(), p.name
+    # vfa got the session's dam B1 map (BIDS: B1 maps in fmap/)
+    side = json.loads((ses / "anat" / "sub-relaxlinedemo_ses-20261101_rec-vfa_T1map.json")
                       .read_text())
-    assert side["Options"]["b1_map"].endswith("maps/dam/sub-relaxlinedemo_ses-20261101_TB1DAM_"
+    assert side["Options"]["b1_map"].endswith("fmap/sub-relaxlinedemo_ses-20261101_rec-dam_"
                                               "TB1map.nii.gz")
     # tables: the workflow's QC equals `relaxline qc` on the same maps
-    rc = main(["qc", str(ses / "maps" / "ir"), "--labels",
+    rc = main(["qc", str(ses), "--model", "ir", "--labels",
                str(anat / "sub-relaxlinedemo_ses-20261101_dseg.nii.gz"), "--reference",
                str(sim3 / "phantom" / "reference.tsv"), "--out", str(tmp_path / "qc"),
                "--no-figures"])
@@ -303,7 +311,7 @@ def test_e2e_outputs_agree_with_commands(e2e, sim3, tmp_path):
     con.close()
     n = sum(len(pd.read_csv(p, sep="\t")) for p in out.glob("sub-*/ses-*/qc/*/roi_stats.tsv"))
     assert len(db) == n and n > 0
-    row = db[(db["session"] == "20261101") & (db["series"] == "ir:sub-relaxlinedemo_IRT1")
+    row = db[(db["session"] == "20261101") & (db["series"] == "ir:sub-relaxlinedemo")
              & (db["map"] == "T1map")].sort_values("label")
     assert np.allclose(row["mean"].to_numpy(), theirs.sort_values("label")["mean"].to_numpy(),
                        rtol=1e-6, equal_nan=True)
@@ -315,7 +323,7 @@ def test_e2e_outputs_agree_with_commands(e2e, sim3, tmp_path):
 def test_qc_step_places_vials_from_layout_without_label_map(e2e, sim3, tmp_path):
     """A session without a label map is QC'd with the configured layout instead."""
     ses = e2e["out"] / "sub-relaxlinedemo" / "ses-20261101"
-    manifest = next((ses / "maps" / "ir").glob("*.fit.json"))
+    manifest = next((ses / "fits" / "ir").glob("*.fit.json"))
     settings = {"sub": "sub-relaxlinedemo", "ses": "ses-20261101", "session": "20261101",
                 "site": "s", "scanner": "x", "labels": None, "labels_pattern": "*_dseg.nii.gz",
                 "folder": "f", "reference": str(sim3 / "phantom" / "reference.tsv"),
@@ -348,7 +356,7 @@ def test_e2e_second_run_nothing_to_do_then_new_session_only(e2e, sim3):
     changed = {k for k in after if before.get(k) != after[k]}
     old = {k for k in changed if "ses-20261101" in k or "ses-20261102" in k}
     assert not old, sorted(old)[:5]
-    assert any("ses-20261103/maps/ir/" in k for k in changed)
+    assert any("ses-20261103/anat/" in k and "_rec-ir_" in k for k in changed)
     assert {"report.html", "status.json", "trend/drift.tsv"} <= changed
     # rerun every session's history record: rows are replaced, never duplicated
     rc, log = _run(e2e["config"], "--forcerun", "record")
@@ -371,7 +379,7 @@ def test_e2e_killed_run_restarts_cleanly(e2e, sim3):
                              str(config), "--cores", "2"], stdout=subprocess.DEVNULL,
                             stderr=subprocess.DEVNULL, start_new_session=True)
     deadline = time.monotonic() + 300
-    while time.monotonic() < deadline and not list(out.glob("sub-*/ses-*/maps/*/*.fit.json")):
+    while time.monotonic() < deadline and not list(out.glob("sub-*/ses-*/fits/*/*.fit.json")):
         time.sleep(0.2)
     os.killpg(proc.pid, signal.SIGKILL)
     proc.wait()
@@ -387,7 +395,7 @@ def test_e2e_killed_run_restarts_cleanly(e2e, sim3):
             json.loads(p.read_text())
     # and the results equal the uninterrupted run's
     ref = e2e["out"]
-    for p in ref.glob("sub-*/ses-*/maps/*/*.nii.gz"):
+    for p in ref.glob("sub-*/ses-*/*/*.nii.gz"):   # anat/ and fmap/
         assert p.read_bytes() == (out / p.relative_to(ref)).read_bytes(), p.name
 
 
@@ -426,7 +434,7 @@ def test_e2e_slurm_profile_gives_the_same_maps(e2e, sim3):
     # the good sessions: maps bitwise and tables equal to the local run
     out, ref = root / "slurm", e2e["out"]
     good = ("ses-20261101", "ses-20261102")  # the local run may hold more sessions by now
-    maps = [p for ses in good for p in ref.glob(f"sub-*/{ses}/maps/*/*.nii.gz")]
+    maps = [p for ses in good for p in ref.glob(f"sub-*/{ses}/*/*.nii.gz")]
     tables = [p for ses in good for p in ref.glob(f"sub-*/{ses}/qc/*/roi_stats.tsv")]
     assert maps and tables
     for p in maps:
@@ -435,8 +443,8 @@ def test_e2e_slurm_profile_gives_the_same_maps(e2e, sim3):
         pd.testing.assert_frame_equal(pd.read_csv(p, sep="\t"),
                                       pd.read_csv(out / p.relative_to(ref), sep="\t"))
     # nothing partial under a final name for the failed series
-    failed = out / "sub-relaxlinedemo" / "ses-20261103" / "maps" / "ir"
-    assert not list(failed.glob("*.nii.gz")) if failed.exists() else True
+    failed = out / "sub-relaxlinedemo" / "ses-20261103" / "anat"
+    assert not list(failed.glob("*_rec-ir_*.nii.gz")) if failed.exists() else True
 
 
 # ---- report job and exit status (constructed history) -------------------------------------
@@ -557,14 +565,16 @@ def test_qc_step_scan_session_judged_by_configured_ranges(tmp_path):
     lab[1:4, 1:4] = 1
     lab[5:8, 5:8] = 2
     t1 = np.where(lab == 1, 0.80, np.where(lab == 2, 1.50, np.nan)).astype(np.float32)
-    maps = tmp_path / "maps" / "ir"
+    ses = tmp_path / "sub-scan" / "ses-20261101"    # a session folder of the results
+    maps, fits = ses / "anat", ses / "fits" / "ir"
     maps.mkdir(parents=True)
-    stem = "sub-scan_ses-20261101_IRT1"
+    fits.mkdir(parents=True)
+    stem = "sub-scan_ses-20261101_rec-ir"
     nib.save(nib.Nifti1Image(t1, np.eye(4)), str(maps / f"{stem}_T1map.nii.gz"))
     (maps / f"{stem}_T1map.json").write_text(json.dumps({"Units": "s", "Model": "ir"}))
     nib.save(nib.Nifti1Image(np.full(lab.shape, fit_status.OK, np.uint8), np.eye(4)),
              str(maps / f"{stem}_desc-fitstatus_mask.nii.gz"))
-    (maps / "manifest.json").write_text(json.dumps({"model": "ir"}))
+    (fits / "manifest.json").write_text(json.dumps({"model": "ir"}))
     nib.save(nib.Nifti1Image(lab, np.eye(4)), str(tmp_path / "regions_dseg.nii.gz"))
     tol = tmp_path / "tol.yaml"
     tol.write_text("ranges:\n  '1': {T1map: [0.70, 0.95]}\n  '2': {T1map: [0.70, 0.95]}\n")
@@ -574,7 +584,7 @@ def test_qc_step_scan_session_judged_by_configured_ranges(tmp_path):
                 "tolerances": str(tol), "erode_mm": 0.0, "layout": None, "margin_mm": 2.0,
                 "figures": False}
     out = tmp_path / "qc" / "session.json"
-    W.step_qc(settings, [str(maps / "manifest.json")], str(out))
+    W.step_qc(settings, [str(fits / "manifest.json")], str(out))
     summary = json.loads(out.read_text())
     assert summary["fail"] and summary["models"]["ir"]["counts"] == {"pass": 1, "fail": 1}
     df = pd.read_csv(tmp_path / "qc" / "ir" / "roi_stats.tsv", sep="\t").set_index("label")

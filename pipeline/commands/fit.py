@@ -15,7 +15,9 @@ from a T1 map, e.g. from `relaxline fit ir`; echoes must sit at TE = k*ESP),
 mese-mono (mono-exponential T2, optional --plateau and --skip-echoes N) and megre
 (T2* from multi-echo gradient echo magnitudes).
 
-Outputs in --out, named from the input stem: <stem>_T1map.nii.gz (s), _M0map,
+Outputs in --out, with BIDS-derivative names: the input's stem without its raw
+suffix and volume entities, the model in rec- (sub-01_ses-1_IRT1 fitted by ir ->
+sub-01_ses-1_rec-ir), then _T1map.nii.gz (s), _M0map,
 _InvEffmap (ir inversion efficiency, -cos of the inversion angle), _TB1map (ratio),
 _desc-stderr_<map>, _desc-rmse_<primary map> (rms residual, signal units) and
 _desc-fitstatus_mask (uint8: 0 outside, 1 converged, 2 converged after lmfit refit,

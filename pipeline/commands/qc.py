@@ -35,7 +35,12 @@ and the responsible licensed physicist take precedence."""
 
 
 def add_arguments(p: argparse.ArgumentParser) -> None:
-    p.add_argument("maps_dir", metavar="MAPS_DIR", help="folder of maps written by `relaxline fit`")
+    p.add_argument("maps_dir", metavar="MAPS_DIR",
+                   help="folder of maps written by `relaxline fit`, or a session folder of the "
+                        "workflow's results (maps in its anat/ and fmap/)")
+    p.add_argument("--model", metavar="NAME",
+                   help="only the maps of this model (a results session folder holds every "
+                        "model's maps)")
     p.add_argument("--labels", metavar="F",
                    help="label map (NIfTI, same grid as the maps; 0 = background)")
     # --layout/--margin-mm: automatic vial localisation (pipeline/vialjob.py, issue 9)
@@ -81,7 +86,7 @@ def run(args: argparse.Namespace) -> int:
         raise InputError(f"--erode must be a non-negative margin in mm, got {args.erode}.")
     options = dict(reference_path=args.reference, config=args.config,
                    temperature=args.temperature, session=args.session, erode_mm=args.erode,
-                   figures=not args.no_figures)
+                   figures=not args.no_figures, model=args.model)
     if args.labels is not None:
         if args.layout is not None:
             print("relaxline qc: note: --labels given, so --layout is not used.")

@@ -110,8 +110,12 @@ def run_workflow(config: str | Path, cores: int | None = None, profile: str | No
         raise InputError(f"{config}: key `input_dir`: no session under {cfg['input_dir']} "
                          f"({d['subject_glob']}/{d['session_glob']}/{{{kinds}}}/) has a "
                          f"series matching any `models.*.pattern`.")
-    from pipeline.outputs import ensure_dir
+    from pipeline.bidsderiv import configured_suffixes, write_dataset_files
+    from pipeline.outputs import ensure_dir, package_version
     out = ensure_dir(cfg["output_dir"])
+    # the results folder is a BIDS derivative dataset (design §6)
+    write_dataset_files(out, cfg["input_dir"], package_version(),
+                        configured_suffixes(cfg["models"]))
     # One run per output folder at a time. The kernel drops this lock when the process
     # dies, even on SIGKILL, so a killed run never leaves a stale lock behind; this is
     # why Snakemake's own (file-based) lock is switched off with --nolock.
