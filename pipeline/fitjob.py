@@ -256,6 +256,7 @@ def write_fit_outputs(arrays: Mapping[str, np.ndarray], series: Series, out_dir:
             u = "code"
             extra["StatusCodes"] = {str(c): name for c, name in st.NAMES.items()}
             extra["Description"] = f"fit status code of each voxel (StatusCodes); {what}"
+            extra["SpatialReference"] = "orig"   # BIDS: on the grid of the fitted series
         elif desc == "rmse":
             u = "arbitrary"
             extra["Description"] = ("root-mean-square fit residual sqrt(RSS/M), signal units; "

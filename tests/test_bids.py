@@ -90,6 +90,8 @@ def test_demo_raw_and_results_are_valid_bids(tmp_path):
     """`relaxline demo` (one session, every demo model): the raw dataset and the results
     folder pass the official validator with 0 errors; the results are a derivative
     dataset whose map sidecars describe themselves and cite their sources as BIDS URIs."""
+    # a small session first: the demo keeps the sessions it finds and runs its workflow
+    simulate(tmp_path / "rawdata", SimOptions(sessions=1, matrix=48, slices=1))
     assert main(["demo", str(tmp_path), "--sessions", "1", "--cores", "2"]) in (0, 1)
     raw, results = tmp_path / "rawdata", tmp_path / "results"
     for root in (raw, results):
