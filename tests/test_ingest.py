@@ -405,3 +405,35 @@ def test_config_dicom_section_checked_and_used(tmp_path, capsys):
     assert main(["ingest", str(tmp_path / "dcm"), "--config", str(tmp_path / "config.yaml")]) == 0
     assert len(list((tmp_path / "raw" / "sub-site7").rglob("*_echo-*_MESE.json"))) == 8
     assert "rule '*qa_t2*'" in capsys.readouterr().out
+
+
+def test_interrupted_conversion_is_redone_under_the_same_names(tmp_path):
+    write_series(tmp_path / "dcm", ir_volumes(TI[:3]), TI[:3], "InversionTime",
+                 description="ir", series_number=2, tr_ms=10000)
+    ingest(tmp_path / "dcm", tmp_path / "raw")
+    ledger = tmp_path / "raw" / LEDGER
+    names = sorted(p.name for p in (tmp_path / "raw").rglob("*_IRT1.nii.gz"))
+    # as if killed while moving the files into place: state 'writing', one file missing
+    ledger.write_text(ledger.read_text().replace("\tdone\t", "\twriting\t"))
+    next((tmp_path / "raw").rglob("*_inv-3_IRT1.nii.gz")).unlink()
+    report = ingest(tmp_path / "dcm", tmp_path / "raw")
+    assert len(report.converted) == 1 and not report.problems
+    assert sorted(p.name for p in (tmp_path / "raw").rglob("*_IRT1.nii.gz")) == names
+    assert "\tdone\t" in ledger.read_text()
+    # a file of that name that no ingest wrote is never overwritten
+    other = tmp_path / "raw2" / "sub-QAPHANTOM1" / "ses-20261105" / "anat"
+    other.mkdir(parents=True)
+    (other / names[0]).write_bytes(b"someone else's file")
+    report = ingest(tmp_path / "dcm", tmp_path / "raw2")
+    assert "was not written by an earlier ingest" in report.problems[0][1]
+    assert (other / names[0]).read_bytes() == b"someone else's file"
+
+
+def test_second_study_on_the_same_day_gets_its_own_session(tmp_path):
+    for n, hhmm in enumerate(("073000", "143000")):
+        write_series(tmp_path / "dcm" / str(n), ir_volumes(TI[:3]), TI[:3], "InversionTime",
+                     description="ir", series_number=2, tr_ms=10000,
+                     study=new_study(date="20261105", time=hhmm))
+    ingest(tmp_path / "dcm", tmp_path / "raw")
+    assert sorted(p.name for p in (tmp_path / "raw" / SUB).iterdir()) == [
+        "ses-20261105", "ses-202611051430"]
