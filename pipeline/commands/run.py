@@ -17,7 +17,9 @@ ones in the history database, and the drift rules and trend figures are updated 
 OUTPUT_DIR/report.html.
 
 Snakemake's working directory is the config's output_dir: its .snakemake/ folder,
-logs/ and all outputs live there. Relative paths in the config are relative to the
+logs/ and all outputs live there. output_dir is a BIDS derivative dataset: maps in
+sub-*/ses-*/anat/ (B1 maps in fmap/) named sub-<s>_ses-<d>_rec-<model>_<map>, QC
+tables and reports beside them (listed in its .bidsignore). Relative paths in the config are relative to the
 config file. Re-running after a new session arrives runs only that session's jobs
 and the trend update; an interrupted run resumes where it stopped.
 
