@@ -20,6 +20,12 @@ import numpy as np
 from fitting.spec import Fixed, ModelSpec, subset_fixed
 
 FD_REL_STEP = 1e-6
+# A voxel whose cost fell by less than STALL_RTOL (relative) over STALL_ITER iterations has
+# stopped improving (every trial step rejected, none small enough to call it a minimum):
+# it stops, not converged, instead of running to the iteration limit.
+STALL_ITER = 10
+STALL_RTOL = 1e-9
+MAX_ITER, XTOL, FTOL, LAM0 = 60, 1e-8, 1e-10, 1e-3    # defaults of both iterations
 
 
 @dataclass
@@ -101,8 +107,8 @@ def solve_small(a: np.ndarray, b: np.ndarray) -> np.ndarray:
 
 
 def levenberg_marquardt(spec: ModelSpec, x: np.ndarray, data: np.ndarray, p0: np.ndarray,
-                        fixed: Fixed, max_iter: int = 60, xtol: float = 1e-8,
-                        ftol: float = 1e-10, lam0: float = 1e-3,
+                        fixed: Fixed, max_iter: int = MAX_ITER, xtol: float = XTOL,
+                        ftol: float = FTOL, lam0: float = LAM0,
                         damping: str = "marquardt") -> LMResult:
     """Fit ``spec`` to ``data`` (N, M) from ``p0`` (N, P) voxel by voxel, batched.
 
@@ -117,7 +123,9 @@ def levenberg_marquardt(spec: ModelSpec, x: np.ndarray, data: np.ndarray, p0: np
     Stops a voxel when an accepted step changes the cost by less than ``ftol`` (relative)
     or every parameter by less than ``xtol`` (relative), or when a rejected trial step
     is already below ``xtol`` (the point is a minimum within tolerance). Voxels still
-    running after ``max_iter`` are reported as not converged.
+    running after ``max_iter``, or whose cost fell by less than :data:`STALL_RTOL` over
+    :data:`STALL_ITER` iterations, are reported as not converged.
+    :func:`fitting.kernels.lm_voxel` is the compiled per-voxel form of this iteration.
     """
     x = np.asarray(x, float)
     y = np.asarray(data, float)
@@ -136,7 +144,8 @@ def levenberg_marquardt(spec: ModelSpec, x: np.ndarray, data: np.ndarray, p0: np
     need_jac = np.ones(n, bool)
     jtj = np.zeros((n, npar, npar))
     jtr = np.zeros((n, npar))
-    for _ in range(max_iter):
+    stall_ref = cost.copy()
+    for it in range(max_iter):
         if active.size == 0:
             break
         fx = subset_fixed(spec, fixed, active)
@@ -186,5 +195,10 @@ def levenberg_marquardt(spec: ModelSpec, x: np.ndarray, data: np.ndarray, p0: np
         n_iter[active] += 1
         done = small_step | small_cost | (cost_t == 0) | (ca == 0)
         converged[active[done]] = True
-        active = active[~done]
+        keep = ~done
+        if (it + 1) % STALL_ITER == 0:
+            ia = active[keep]
+            keep[keep] = ~(cost[ia] > stall_ref[ia] * (1.0 - STALL_RTOL))
+            stall_ref[active] = cost[active]
+        active = active[keep]
     return LMResult(params=p, cost=cost, converged=converged & ~bad, n_iter=n_iter)

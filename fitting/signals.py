@@ -6,12 +6,23 @@ the tissue/scanner parameters broadcast together to a shape B (for example
 (N,) voxels, or scalars). The result has shape ``B + (M,)``. Times in seconds,
 angles in degrees.
 
+Each formula is written once, as a compiled scalar kernel (``*_value``, :mod:`fitting.jit`)
+that the compiled per-voxel engine (:mod:`fitting.kernels`) calls directly; the numpy
+functions here apply the same kernel elementwise, and every other caller (the numpy
+reference engine, the lmfit models, QC curves, protocol design) goes through them.
+
 The extended-phase-graph CPMG model lives in :mod:`fitting.epg`.
 """
 from __future__ import annotations
 
+import math
+
 import numpy as np
 from numpy.typing import ArrayLike
+
+from fitting.jit import broadcast_apply, jit
+
+_DEG = math.pi / 180.0
 
 
 def _prep(x: ArrayLike, *params: ArrayLike):
@@ -43,10 +54,22 @@ def ir_signal(ti: ArrayLike, t1: ArrayLike, m0: ArrayLike, eff: ArrayLike = 1.0,
     TI, TR and T1 in seconds, α in degrees.
     """
     ti, (t1, m0, eff, tr, alpha) = _prep(ti, t1, m0, eff, tr, alpha_deg)
-    a = np.deg2rad(alpha)
-    e_tr = np.exp(-tr / t1)
-    num = 1.0 - (1.0 + eff) * np.exp(-ti / t1) + eff * e_tr
-    return m0 * np.sin(a) * num / (1.0 + eff * np.cos(a) * e_tr)
+    return broadcast_apply(_ir_loop, ti, t1, m0, eff, tr, alpha)
+
+
+@jit
+def ir_value(ti: float, t1: float, m0: float, eff: float, tr: float, alpha_deg: float) -> float:
+    """:func:`ir_signal` at one TI (the compiled kernel; formula in its docstring)."""
+    a = alpha_deg * _DEG
+    e_tr = math.exp(-tr / t1)
+    num = 1.0 - (1.0 + eff) * math.exp(-ti / t1) + eff * e_tr
+    return m0 * math.sin(a) * num / (1.0 + eff * math.cos(a) * e_tr)
+
+
+@jit
+def _ir_loop(ti, t1, m0, eff, tr, alpha, out):
+    for i in range(out.size):
+        out[i] = ir_value(ti[i], t1[i], m0[i], eff[i], tr[i], alpha[i])
 
 
 def ir_ab_from_params(t1: ArrayLike, m0: ArrayLike, eff: ArrayLike = 1.0,
@@ -98,10 +121,22 @@ def spgr_signal(alpha_deg: ArrayLike, t1: ArrayLike, m0: ArrayLike, tr: ArrayLik
     Peaks at the Ernst angle arccos(E1). T2* decay at the echo time is folded into M0.
     """
     alpha, (t1, m0, tr, b1) = _prep(alpha_deg, t1, m0, tr, b1)
-    a = np.deg2rad(alpha) * b1
-    with np.errstate(invalid="ignore"):  # TR = inf (full recovery) gives E1 = 0 even for T1 = inf
-        e1 = np.where(np.isinf(tr), 0.0, np.exp(-tr / t1))
-    return m0 * np.sin(a) * (1.0 - e1) / (1.0 - np.cos(a) * e1)
+    return broadcast_apply(_spgr_loop, alpha, t1, m0, tr, b1)
+
+
+@jit
+def spgr_value(alpha_deg: float, t1: float, m0: float, tr: float, b1: float) -> float:
+    """:func:`spgr_signal` at one flip angle (the compiled kernel)."""
+    a = alpha_deg * _DEG * b1
+    # TR = inf (full recovery) gives E1 = 0 even for T1 = inf
+    e1 = 0.0 if math.isinf(tr) else math.exp(-tr / t1)
+    return m0 * math.sin(a) * (1.0 - e1) / (1.0 - math.cos(a) * e1)
+
+
+@jit
+def _spgr_loop(alpha, t1, m0, tr, b1, out):
+    for i in range(out.size):
+        out[i] = spgr_value(alpha[i], t1[i], m0[i], tr[i], b1[i])
 
 
 def ernst_angle_deg(tr: ArrayLike, t1: ArrayLike) -> np.ndarray:
@@ -141,4 +176,16 @@ def mono_exp(te: ArrayLike, t2: ArrayLike, m0: ArrayLike, plateau: ArrayLike = 0
     plateau) and the T2* model of multi-echo gradient echo (``megre``) with T2 → T2*.
     """
     te, (t2, m0, plateau) = _prep(te, t2, m0, plateau)
-    return m0 * np.exp(-te / t2) + plateau
+    return broadcast_apply(_mono_loop, te, t2, m0, plateau)
+
+
+@jit
+def mono_value(te: float, t2: float, m0: float, plateau: float) -> float:
+    """:func:`mono_exp` at one echo time (the compiled kernel)."""
+    return m0 * math.exp(-te / t2) + plateau
+
+
+@jit
+def _mono_loop(te, t2, m0, plateau, out):
+    for i in range(out.size):
+        out[i] = mono_value(te[i], t2[i], m0[i], plateau[i])

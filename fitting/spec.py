@@ -62,6 +62,19 @@ def _no_prepare(x: np.ndarray, data: np.ndarray, fixed: Fixed) -> tuple[np.ndarr
 
 
 @dataclass(frozen=True)
+class Kernel:
+    """The compiled form of a model's ``signal`` (:mod:`fitting.kernels`).
+
+    ``build(x, fixed, n) -> (kind, x_used, constants)``: the model kind, the acquisition
+    values the kernel evaluates and an (n, K) array of each voxel's constants
+    (:func:`fitting.kernels.constants`). ``signal`` is the numpy signal it computes.
+    """
+
+    signal: Callable[[np.ndarray, Params, Fixed], np.ndarray]
+    build: Callable[[np.ndarray, Fixed, int], tuple[int, np.ndarray, np.ndarray]]
+
+
+@dataclass(frozen=True)
 class ModelSpec:
     """Everything an engine needs to fit one model (see module docstring).
 
@@ -100,6 +113,10 @@ class ModelSpec:
     configure : optional ``(spec, options) -> spec``: the variant to fit for the user's
         options (for example ``mese`` with a B1 map fits T2 and M0 only); use
         :func:`configure_model`, which also applies the noise model.
+    kernel : optional :class:`Kernel`: how the compiled per-voxel engine
+        (:mod:`fitting.kernels`) evaluates ``signal``. Used only while ``signal`` is the
+        function the kernel was declared for (:attr:`compiled`), so a variant built with
+        ``dataclasses.replace(spec, signal=...)`` falls back to the numpy iteration.
     """
 
     name: str
@@ -124,6 +141,7 @@ class ModelSpec:
     extra: Mapping[str, Any] = field(default_factory=dict)
     finalize: Callable[[Params, Fixed], Params] | None = None
     configure: Callable[["ModelSpec", Mapping[str, Any]], "ModelSpec"] | None = None
+    kernel: "Kernel | None" = None
 
     def __post_init__(self) -> None:
         n = len(self.params)
@@ -133,6 +151,12 @@ class ModelSpec:
             raise ValueError(f"model {self.name}: min_volumes below the parameter count")
         if self.scale_param is not None and self.scale_param not in self.params:
             raise ValueError(f"model {self.name}: scale_param {self.scale_param} not a parameter")
+
+    @property
+    def compiled(self) -> "Callable[[np.ndarray, Fixed, int], tuple] | None":
+        """The kernel's ``build`` when it compiles this spec's ``signal``, else None."""
+        k = self.kernel
+        return k.build if k is not None and k.signal is self.signal else None
 
     @property
     def n_params(self) -> int:

@@ -25,9 +25,10 @@ from typing import Any, Mapping
 
 import numpy as np
 
+from fitting import kernels
 from fitting.errors import RelaxlineError
 from fitting.signals import dam_b1, dam_signals, ir_params_from_ab, ir_signal, spgr_signal
-from fitting.spec import Fixed, ModelSpec, Params, register
+from fitting.spec import Fixed, Kernel, ModelSpec, Params, register
 
 T1_LOWER, T1_UPPER = 0.005, 20.0   # s; wide enough for phantoms and tissue at any field
 EFF_LOWER, EFF_UPPER = 0.0, 1.5    # above 1 is unphysical, but a margin keeps noisy ideal
@@ -76,6 +77,11 @@ def _ir_prepare(x: np.ndarray, data: np.ndarray, fixed: Fixed) -> tuple[np.ndarr
 def _ir_signal(x: np.ndarray, p: Params, fixed: Fixed) -> np.ndarray:
     s = ir_signal(x, p["T1"], p["M0"], p["eff"], fixed["tr"], fixed["alpha"])
     return s if fixed.get("signed") else np.abs(s)
+
+
+def _ir_kernel(x: np.ndarray, fixed: Fixed, n: int):
+    return kernels.IR, x, kernels.constants(n, fixed["tr"], fixed["alpha"],
+                                            1.0 if fixed.get("signed") else 0.0)
 
 
 @lru_cache(maxsize=16)
@@ -156,6 +162,7 @@ IR = register(ModelSpec(
     validate=_ir_validate,
     prepare=_ir_prepare,
     scale_param="M0",
+    kernel=Kernel(_ir_signal, _ir_kernel),
     primary="T1",
     description="inversion recovery: T1, M0 and inversion efficiency, exact finite TR",
 ))
@@ -180,6 +187,10 @@ def _vfa_validate(x: np.ndarray, fixed: Fixed) -> None:
 
 def _vfa_signal(x: np.ndarray, p: Params, fixed: Fixed) -> np.ndarray:
     return spgr_signal(x, p["T1"], p["M0"], fixed["tr"], fixed.get("b1", 1.0))
+
+
+def _vfa_kernel(x: np.ndarray, fixed: Fixed, n: int):
+    return kernels.SPGR, x, kernels.constants(n, fixed["tr"], fixed.get("b1", 1.0))
 
 
 def _vfa_init(x: np.ndarray, data: np.ndarray, fixed: Fixed) -> Params:
@@ -219,6 +230,7 @@ VFA = register(ModelSpec(
     fixed_from_meta=_vfa_fixed,
     validate=_vfa_validate,
     scale_param="M0",
+    kernel=Kernel(_vfa_signal, _vfa_kernel),
     voxel_fixed=("b1",),
     primary="T1",
     description="variable flip angle spoiled gradient echo: T1 and M0, B1-scaled angles",

@@ -58,11 +58,12 @@ from typing import Any, Mapping
 
 import numpy as np
 
+from fitting import kernels
 from fitting.dictionary import match_protocol
 from fitting.epg import cpmg_echoes, cpmg_echoes_jacobian
 from fitting.errors import RelaxlineError
 from fitting.signals import mono_exp
-from fitting.spec import Fixed, ModelSpec, Params, per_voxel, register
+from fitting.spec import Fixed, Kernel, ModelSpec, Params, per_voxel, register
 
 T2_LOWER, T2_UPPER = 1e-3, 10.0     # s (also T2*)
 B1_LOWER, B1_UPPER = 0.2, 1.8       # symmetric about 1: the echo train is even in B1 − 1
@@ -255,6 +256,10 @@ def _mono_signal(x: np.ndarray, p: Params, fixed: Fixed) -> np.ndarray:
     return mono_exp(_used(x, fixed), t2, p["M0"], p.get("plateau", 0.0))
 
 
+def _mono_kernel(x: np.ndarray, fixed: Fixed, n: int):
+    return kernels.MONO, np.ascontiguousarray(_used(x, fixed)), np.empty((n, 0))
+
+
 def _mono_jacobian(x: np.ndarray, p: Params, fixed: Fixed) -> np.ndarray:
     """d/d(T2, M0[, plateau]) of M0·e^(−TE/T2) + plateau."""
     te = _used(x, fixed)[None, :]
@@ -300,6 +305,7 @@ MESE_MONO = register(ModelSpec(
     prepare=_mono_prepare,
     jacobian=_mono_jacobian,
     scale_param="M0",
+    kernel=Kernel(_mono_signal, _mono_kernel),
     primary="T2",
     description="multi-echo spin echo, mono-exponential T2 (optional plateau, leading echoes "
                 "skipped)",
@@ -329,6 +335,7 @@ MEGRE = register(ModelSpec(
     validate=partial(_mono_validate, n_params=2, name="megre"),
     jacobian=_mono_jacobian,
     scale_param="M0",
+    kernel=Kernel(_mono_signal, _mono_kernel),
     primary="T2star",
     description="multi-echo gradient echo: T2* and M0 (magnitude, mono-exponential)",
     configure=_configure,

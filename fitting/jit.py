@@ -1,0 +1,82 @@
+"""Compilation settings shared by every compiled kernel (numba).
+
+Every compiled function of ``fitting`` is declared with :data:`jit` (``njit`` with an
+on-disk cache and the GIL released, so Python threads run kernels side by side). A
+scalar formula reaches numpy callers through a compiled loop over flattened arguments
+(:func:`broadcast_apply`); numba's own ufuncs are not used, as a cached ufunc built from
+a function that is also compiled on its own shares its cache entry and loads the wrong
+machine code.
+
+The on-disk cache lives in one folder per version of the package's sources: numba
+checks only the time stamp of the file that defines a cached function, not of the
+files it calls, so a kernel calling a changed formula in another module would load
+stale machine code. The folder name therefore holds a hash of every ``fitting/*.py``
+(and of the numba and Python versions); editing any of them compiles afresh. It is
+``$RELAXLINE_CACHE_DIR`` if set, else ``$XDG_CACHE_HOME/relaxline`` (default
+``~/.cache/relaxline``), falling back to the temporary folder when that is not
+writable. ``NUMBA_CACHE_DIR``, when set, wins (numba's own setting).
+"""
+from __future__ import annotations
+
+import hashlib
+import os
+import sys
+import tempfile
+from functools import partial
+from pathlib import Path
+
+import numba
+import numpy as np
+
+_HERE = Path(__file__).resolve().parent
+
+
+def _source_hash() -> str:
+    h = hashlib.sha256(f"{numba.__version__} {sys.version_info[:2]}".encode())
+    for path in sorted(_HERE.glob("*.py")):
+        h.update(path.name.encode())
+        h.update(path.read_bytes())
+    return h.hexdigest()[:16]
+
+
+def _cache_dir() -> str | None:
+    if os.environ.get("NUMBA_CACHE_DIR"):
+        return None
+    base = os.environ.get("RELAXLINE_CACHE_DIR") or os.path.join(
+        os.environ.get("XDG_CACHE_HOME") or os.path.join(os.path.expanduser("~"), ".cache"),
+        "relaxline")
+    for root in (base, os.path.join(tempfile.gettempdir(), "relaxline-cache")):
+        folder = os.path.join(root, "numba-" + _source_hash())
+        try:
+            os.makedirs(folder, exist_ok=True)
+            if os.access(folder, os.W_OK):
+                return folder
+        except OSError:
+            continue
+    return None
+
+
+_DIR = _cache_dir()
+if _DIR is not None:
+    numba.config.CACHE_DIR = _DIR   # read by each cached dispatcher when it is declared
+
+jit = partial(numba.njit, cache=True, nogil=True, error_model="numpy")
+"""Decorator of the compiled kernels: cached on disk, GIL released, IEEE arithmetic
+(division by zero gives inf/NaN as in numpy, no exception)."""
+
+
+
+
+def broadcast_apply(loop, *args: "np.ndarray") -> "np.ndarray":
+    """Call the compiled elementwise ``loop(*flat_args, out)`` on numpy arrays.
+
+    The arguments are broadcast together and flattened (float64); the result has their
+    broadcast shape. This is how numpy callers reach a scalar kernel: each kernel has a
+    small compiled loop over its arguments (a numba ufunc cannot be cached safely).
+    """
+    arrs = np.broadcast_arrays(*[np.asarray(a, dtype=float) for a in args])
+    shape = arrs[0].shape
+    flat = [np.ascontiguousarray(a).reshape(-1) for a in arrs]
+    out = np.empty(flat[0].size)
+    loop(*flat, out)
+    return out.reshape(shape)
