@@ -28,6 +28,7 @@ and ``desc-fitstatus_mask`` (uint8 codes of :mod:`fitting.status`).
 from __future__ import annotations
 
 import sys
+from concurrent.futures import ThreadPoolExecutor
 from pathlib import Path
 from typing import Any, Callable, Mapping, Sequence, TextIO
 
@@ -36,7 +37,7 @@ import numpy as np
 from fitting import status as st
 from fitting.spec import Fixed, ModelSpec, configure_model, get_model
 from fitting.uncertainty import background_from_max, rayleigh_max_threshold
-from fitting.voxelwise import ENGINES, fit_voxels
+from fitting.voxelwise import ENGINES, available_cores, fit_voxels
 from pipeline.errors import InputError, RelaxlineError
 from pipeline.outputs import provenance, write_map
 from pipeline.series import Series, load_grid_map, read_series
@@ -161,7 +162,8 @@ def fit_arrays(model: str | ModelSpec, series: Series, mask: np.ndarray | None =
     """Fit the slices ``z`` (default all) of ``series``; maps shaped (x, y, nz).
 
     ``mask``, ``b1`` and ``t1`` (a T1 map, s) are full-volume arrays on the series grid
-    (or None). ``options``: ``engine`` ("fast"), ``jobs`` (1), ``noise_sigma`` (float,
+    (or None). ``options``: ``engine`` ("fast"), ``jobs`` (cores; default all available),
+    ``noise_sigma`` (float,
     None for residual-based errors, or absent to estimate it here over the whole series —
     chunked jobs should pass one value so all chunks agree), ``t1_map`` (the T1 map's
     path, for messages) and ``t1_fixed`` (T1 used in the map's gaps; :mod:`pipeline.t1map`).
@@ -171,7 +173,7 @@ def fit_arrays(model: str | ModelSpec, series: Series, mask: np.ndarray | None =
     spec = configure_model(_spec(model), options)
     fixed = acquisition(spec, series, options)
     engine = options.get("engine", "fast")
-    jobs = int(options.get("jobs", 1))
+    jobs = int(options.get("jobs") or available_cores())
     sigma = options["noise_sigma"] if "noise_sigma" in options else estimate_noise(series)
     if "sigma" in spec.voxel_fixed:   # noise-floor-aware variants need σ itself
         if sigma is None:
@@ -239,7 +241,9 @@ def write_fit_outputs(arrays: Mapping[str, np.ndarray], series: Series, out_dir:
     """
     from pipeline.bidsderiv import QUANTITY, datatype, derivative_stem, is_parametric
     spec = configure_model(_spec(model), options)
-    prov = provenance(spec.name, engine, dict(options), series)
+    # the core count changes no number in the maps, so it stays out of their provenance
+    prov = provenance(spec.name, engine, {k: v for k, v in options.items() if k != "jobs"},
+                      series)
     units = {spec.outputs[k]: spec.unit(k) for k in spec.params}
     stem = derivative_stem(series.stem, spec.name)
     what = f"{spec.name} model fitted voxelwise to {series.stem}"
@@ -277,9 +281,11 @@ def write_fit_outputs(arrays: Mapping[str, np.ndarray], series: Series, out_dir:
         if is_parametric(suffix):
             extra["SkullStripped"] = False   # BIDS: required on parametric maps
         folder = Path(out_dir) / datatype(suffix) if datatype_folders else out_dir
-        paths.append(write_map(folder, stem, suffix, arr, series.affine, prov,
-                               desc=desc, units=u, extra=extra))
-    return paths
+        paths.append((folder, suffix, arr, desc, u, extra))
+    # gzip releases the GIL: the maps are compressed on the job's cores side by side
+    with ThreadPoolExecutor(max_workers=int(options.get("jobs") or available_cores())) as pool:
+        return list(pool.map(lambda a: write_map(a[0], stem, a[1], a[2], series.affine, prov,
+                                                 desc=a[3], units=a[4], extra=a[5]), paths))
 
 
 def load_b1(spec: ModelSpec, series: Series, b1: str | Path | None, stream: TextIO,
@@ -311,7 +317,7 @@ def load_b1(spec: ModelSpec, series: Series, b1: str | Path | None, stream: Text
 
 def fit_command(model: str, inputs: Sequence[str | Path], out: str | Path,
                 mask: str | Path | None = None, b1: str | Path | None = None,
-                engine: str = "fast", jobs: int = 1, time_unit: str = "s",
+                engine: str = "fast", jobs: int | None = None, time_unit: str = "s",
                 stream: TextIO | None = None, show_progress: bool = True,
                 model_options: Mapping[str, Any] | None = None,
                 t1_map: str | Path | None = None, datatype_folders: bool = False
@@ -321,7 +327,8 @@ def fit_command(model: str, inputs: Sequence[str | Path], out: str | Path,
     ``datatype_folders``: maps into ``out/anat`` and ``out/fmap`` (the workflow's
     session folders), else all into ``out``.
 
-    ``model_options``: model variants and noise model (``t1_fixed``, ``plateau``,
+    ``jobs``: cores (threads of the fast engine, processes of lmfit fits); None: all
+    available. ``model_options``: model variants and noise model (``t1_fixed``, ``plateau``,
     ``skip_echoes``, ``noise``; :func:`fitting.spec.configure_model`). ``t1_map``: a
     per-voxel T1 map (s) for the models that use one (:mod:`pipeline.t1map`); with it,
     ``t1_fixed`` is the T1 used where the map has no value.
@@ -330,6 +337,8 @@ def fit_command(model: str, inputs: Sequence[str | Path], out: str | Path,
     stream = stream or sys.stderr
     if engine not in ENGINES:
         raise InputError(f"--engine must be one of {', '.join(ENGINES)}, got {engine!r}.")
+    if jobs is None:
+        jobs = available_cores()
     if int(jobs) < 1:
         raise InputError(f"--jobs must be at least 1, got {jobs}.")
     extra = dict(model_options or {})

@@ -134,6 +134,7 @@ class Series:
     is_complex: bool = False
     _order: np.ndarray = field(default_factory=lambda: np.zeros(0, int), repr=False)
     _images: list[Any] = field(default_factory=list, repr=False)
+    _cache: np.ndarray | None = field(default=None, repr=False)
 
     @property
     def n_volumes(self) -> int:
@@ -147,13 +148,31 @@ class Series:
     def nbytes_float32(self) -> int:
         return self.n_voxels * self.n_volumes * (8 if self.is_complex else 4)
 
-    def read(self, z: slice | None = None) -> np.ndarray:
-        """Volumes sorted by the varying value as ``(x, y, z, n)``.
+    @property
+    def compressed(self) -> bool:
+        """True when a file of the series is gzip-compressed (``.nii.gz``)."""
+        return any(p.name.endswith(".gz") for p in self.paths)
 
-        ``z`` selects a slab of slices; only that slab is read from disk.
+    def read(self, z: slice | None = None) -> np.ndarray:
+        """Volumes sorted by the varying value as ``(x, y, z, n)``, read-only.
+
+        ``z`` selects a slab of slices. Uncompressed files: only that slab is read from
+        disk. Compressed files cannot be read in the middle without decompressing
+        everything before it, so the first call decompresses the whole series once
+        (float32, the series' size in memory) and every call returns a view of it.
         float32 (complex64 for complex data).
         """
         z = z or slice(0, self.shape[2])
+        if self.compressed:
+            if self._cache is None:
+                self._cache = self._read(slice(0, self.shape[2]))
+                self._cache.flags.writeable = False
+            return self._cache[:, :, z]
+        out = self._read(z)
+        out.flags.writeable = False
+        return out
+
+    def _read(self, z: slice) -> np.ndarray:
         dtype = np.complex64 if self.is_complex else np.float32
         if len(self._images) == 1 and len(self.paths) == 1 and self.n_volumes > 1:
             raw = _read_proxy(self._images[0], self.paths[0], (slice(None), slice(None), z,
@@ -205,7 +224,9 @@ def _load_image(path: Path):
     if not (path.name.endswith(".nii") or path.name.endswith(".nii.gz")):
         raise InputError(f"{path}: expected a NIfTI file ending in .nii or .nii.gz.")
     try:
-        img = nib.load(str(path))
+        # no memory map: slab reads fetch only their bytes, and the pages of a mapped
+        # file would count in the resident set of a large fit
+        img = nib.load(str(path), mmap=False)
         _ = img.shape
     except Exception as exc:
         raise InputError(f"{path}: cannot be read as NIfTI ({exc}). Check that the file is "

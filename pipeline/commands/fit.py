@@ -54,9 +54,12 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
     p.add_argument("--out", required=True, metavar="DIR", help="output folder")
     p.add_argument("--mask", metavar="F", help="fit only where this mask is non-zero")
     p.add_argument("--engine", choices=("fast", "lmfit"), default="fast",
-                   help="fast: batched numpy engine (default); lmfit: one lmfit fit per voxel")
-    p.add_argument("--jobs", type=int, default=1, metavar="N",
-                   help="processes for per-voxel lmfit fits (default 1)")
+                   help="fast: compiled per-voxel engine (default); lmfit: one lmfit fit per "
+                        "voxel (slow; the reference)")
+    p.add_argument("--jobs", type=int, default=None, metavar="N",
+                   help="cores to fit on: threads of the fast engine, processes of lmfit "
+                        "fits (default: all this process may use). The maps do not depend "
+                        "on it")
     add_model_arguments(p)
 
 
