@@ -74,9 +74,13 @@ def broadcast_apply(loop, *args: "np.ndarray") -> "np.ndarray":
     broadcast shape. This is how numpy callers reach a scalar kernel: each kernel has a
     small compiled loop over its arguments (a numba ufunc cannot be cached safely).
     """
-    arrs = np.broadcast_arrays(*[np.asarray(a, dtype=float) for a in args])
-    shape = arrs[0].shape
-    flat = [np.ascontiguousarray(a).reshape(-1) for a in arrs]
-    out = np.empty(flat[0].size)
-    loop(*flat, out)
-    return out.reshape(shape)
+    arrs = [np.asarray(a, dtype=float) for a in args]
+    shape = np.broadcast_shapes(*(a.shape for a in arrs))
+    flat = []
+    for a in arrs:   # fresh writable C arrays: one compiled signature for every call
+        buf = np.empty(shape)
+        buf[...] = a
+        flat.append(buf.reshape(-1))
+    out = np.empty(shape)
+    loop(*flat, out.reshape(-1))
+    return out

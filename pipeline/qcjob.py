@@ -15,7 +15,7 @@ import math
 import re
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any, Callable, Sequence
+from typing import Any, Callable, Sequence, TextIO
 
 import numpy as np
 import pandas as pd
@@ -388,7 +388,8 @@ def run_qc(maps_dir: str | Path, out_dir: str | Path, label_source: LabelSource,
            temperature_source: str = "--temperature",
            labels_desc: str = "label map",
            extra_sections: Sequence[tuple[str, str]] = (),
-           extra_warnings: Sequence[str] = (), model: str | None = None) -> QCResult:
+           extra_warnings: Sequence[str] = (), model: str | None = None,
+           stream: TextIO | None = None, show_progress: bool = True) -> QCResult:
     """Full QC of one maps folder: compute, then write roi_stats.tsv, figures and report.
 
     ``model``: only that model's maps (the workflow's session folders hold every model's).
@@ -396,8 +397,11 @@ def run_qc(maps_dir: str | Path, out_dir: str | Path, label_source: LabelSource,
     Everything is computed before anything is written, so bad input leaves no output.
     ``label_source`` gives the label map per map grid (:func:`labels_from_file`, or a
     function placing vials from a layout); ``extra_sections`` (title, HTML) and
-    ``extra_warnings`` are passed to the report (history, drift).
+    ``extra_warnings`` are passed to the report (history, drift). Progress of the
+    figures and curves goes to ``stream`` (stderr by default) unless ``show_progress``
+    is false.
     """
+    from pipeline.progress import Progress
     from pipeline.outputs import atomic_write_bytes, atomic_write_text, atomic_write_tsv
     from qc.reference import Reference
     from qc.tolerance import load_tolerances
@@ -412,7 +416,10 @@ def run_qc(maps_dir: str | Path, out_dir: str | Path, label_source: LabelSource,
                          labels_desc, str(reference_path) if reference_path else
                          "none (scan session: statistics only" + (
                              ", regions with a configured range judged against it)"
-                             if tol.ranges else ")"), extra_sections, extra_warnings)
+                             if tol.ranges else ")"), extra_sections, extra_warnings,
+                         progress=lambda total: Progress(
+                             total, f"qc {model or Path(maps_dir).name}", stream=stream,
+                             enabled=show_progress))
     out = Path(out_dir)
     atomic_write_tsv(out / "roi_stats.tsv", result.table)
     for name, png in files.items():

@@ -9,7 +9,7 @@ from __future__ import annotations
 
 import json
 from pathlib import Path
-from typing import Any, Sequence
+from typing import Any, Callable, Sequence
 
 import numpy as np
 
@@ -120,12 +120,16 @@ XLABEL = {"InversionTime": ("inversion time", 1000.0, "ms"), "EchoTime": ("echo 
 def render(result: QCResult, reference, tol, out_figures: bool, erode_mm: float,
            maps_dir: Path, labels_desc: str, reference_desc: str,
            extra_sections: Sequence[tuple[str, str]] = (),
-           extra_warnings: Sequence[str] = ()) -> tuple[str, dict[str, bytes]]:
-    """Figures and the report page. Returns (html, {figure file name: png})."""
+           extra_warnings: Sequence[str] = (),
+           progress: Callable[[int], Callable[[int], None]] | None = None
+           ) -> tuple[str, dict[str, bytes]]:
+    """Figures and the report page. Returns (html, {figure file name: png}).
+
+    ``progress(total)`` returns the counter called with 1 after each of the ``total``
+    steps (a figure, or a source series' noise and curves)."""
     from fitting.status import USABLE
     from pipeline.outputs import package_version
     from qc import figures as F
-    from qc.noise import estimate_noise
     from qc.report import AGREEMENT, Figure, build_report
 
     table = result.table
@@ -141,6 +145,17 @@ def render(result: QCResult, reference, tol, out_figures: bool, erode_mm: float,
     def add(fname: str, fig: Figure) -> None:
         figs.append(fig)
         files[fname] = fig.png
+        step(1)
+
+    by_stem: dict[str, list[MapFile]] = {}
+    for mf in result.maps:
+        by_stem.setdefault(mf.stem, []).append(mf)
+    total = (2 if out_figures and len(table) else 0) + sum(
+        (len([m for m in g if m.suffix in QC_MAPS]) if out_figures else 0)
+        + len({json.dumps(m.sidecar.get("Sources") or [], sort_keys=True)
+               for m in g if m.suffix in QC_MAPS})
+        for stem, g in by_stem.items() if result.labels.get(stem) is not None)
+    step = progress(total) if progress is not None else (lambda n: None)
 
     if out_figures and len(table):
         png = F.measured_vs_reference(disp)
@@ -160,9 +175,6 @@ def render(result: QCResult, reference, tol, out_figures: bool, erode_mm: float,
                 "(bias ± 1.96·SD; Bland & Altman 1986, Lancet 1:307); dotted grey: the map's "
                 "fail limit (stated instead when far beyond the differences). With few vials the limits of agreement are themselves "
                 "uncertain.", AGREEMENT))
-    by_stem: dict[str, list[MapFile]] = {}
-    for mf in result.maps:
-        by_stem.setdefault(mf.stem, []).append(mf)
     for stem, group in by_stem.items():
         labels = result.labels.get(stem)
         if labels is None:
@@ -192,31 +204,12 @@ def render(result: QCResult, reference, tol, out_figures: bool, erode_mm: float,
             if src_key in seen_sources:   # maps of one fit share their series
                 continue
             seen_sources.add(src_key)
-            series, why = open_source_series(mf)
-            if series is None:
-                noise_parts.append(f"<p>{esc_(stem)} ({esc_(mf.sidecar.get('Model', '?'))}): "
-                                   f"no noise estimate or signal curves — {esc_(why)}.</p>")
-                continue
-            data = series.read()
-            noise_ests.append((stem, series, estimate_noise(data, labels, names)))
-            if not out_figures:
-                continue
-            curves = vial_curves(data, labels, keep)
-            if not curves:
-                continue
-            magnitude = not series.is_complex
-            fitted, note = fitted_curves(mf, series, labels, keep, magnitude)
-            what, kx, ux = XLABEL.get(series.key, (series.key, 1.0, ""))
-            fitted_disp = {lab: (x * kx, y) for lab, (x, y) in fitted.items()}
-            png = F.signal_curves(series.values * kx, f"{what} ({ux})" if ux else what,
-                                  curves, names or {v: f"label {v}" for v in curves},
-                                  f"Mean signal per vial — {stem} ({mf.sidecar.get('Model')})",
-                                  fitted_disp, note)
-            add(f"{stem}_{series.key}_curves.png", Figure(
-                f"Signal curves, {stem}", png,
-                "Vial mean ± SD of the (magnitude) signal over the usable voxels; lines: the "
-                "model at the vial's median fitted parameters" + (f" ({note})" if note else "")
-                + ".", "Signal curves"))
+            fig = _source_step(mf, stem, labels, keep, names, out_figures, noise_parts,
+                               noise_ests)
+            if fig is not None:
+                figs.append(fig[1])
+                files[fig[0]] = fig[1].png
+            step(1)
     by_value: dict[str, list[str]] = {}
     for t, src in result.temperatures.values():
         key = f"{t:g} °C" if t is not None else "not known: reference values uncorrected"
@@ -255,6 +248,40 @@ def render(result: QCResult, reference, tol, out_figures: bool, erode_mm: float,
                         provenance=provenance,
                         warnings=warnings, extra_sections=extra_sections, footer=footer)
     return page, files
+
+
+def _source_step(mf: MapFile, stem: str, labels: np.ndarray, keep: np.ndarray, names: dict,
+                 out_figures: bool, noise_parts: list[str], noise_ests: list):
+    """Noise estimate (appended to ``noise_ests``, or why not to ``noise_parts``) and the
+    signal-curve figure of the series ``mf`` was fitted from: (file name, Figure) or None."""
+    from qc import figures as F
+    from qc.noise import estimate_noise
+    from qc.report import Figure
+    series, why = open_source_series(mf)
+    if series is None:
+        noise_parts.append(f"<p>{esc_(stem)} ({esc_(mf.sidecar.get('Model', '?'))}): "
+                           f"no noise estimate or signal curves — {esc_(why)}.</p>")
+        return None
+    data = series.read()
+    noise_ests.append((stem, series, estimate_noise(data, labels, names)))
+    if not out_figures:
+        return None
+    curves = vial_curves(data, labels, keep)
+    if not curves:
+        return None
+    magnitude = not series.is_complex
+    fitted, note = fitted_curves(mf, series, labels, keep, magnitude)
+    what, kx, ux = XLABEL.get(series.key, (series.key, 1.0, ""))
+    fitted_disp = {lab: (x * kx, y) for lab, (x, y) in fitted.items()}
+    png = F.signal_curves(series.values * kx, f"{what} ({ux})" if ux else what,
+                          curves, names or {v: f"label {v}" for v in curves},
+                          f"Mean signal per vial — {stem} ({mf.sidecar.get('Model')})",
+                          fitted_disp, note)
+    return f"{stem}_{series.key}_curves.png", Figure(
+        f"Signal curves, {stem}", png,
+        "Vial mean ± SD of the (magnitude) signal over the usable voxels; lines: the "
+        "model at the vial's median fitted parameters" + (f" ({note})" if note else "")
+        + ".", "Signal curves")
 
 
 def esc_(x: Any) -> str:

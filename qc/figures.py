@@ -58,11 +58,15 @@ def _plt():
     return plt
 
 
-def to_png(fig, dpi: int = 110) -> bytes:
-    """PNG bytes of a figure (no timestamp metadata: same figure, same bytes)."""
+def to_png(fig, dpi: int = 110, tight: bool = True) -> bytes:
+    """PNG bytes of a figure (no timestamp metadata: same figure, same bytes).
+
+    ``tight``: crop to the drawn elements (an extra layout pass of the whole figure;
+    figures laid out by ``tight_layout`` with nothing outside their axes skip it)."""
     plt = _plt()
     buf = io.BytesIO()
-    fig.savefig(buf, format="png", dpi=dpi, bbox_inches="tight", metadata={"Software": None})
+    fig.savefig(buf, format="png", dpi=dpi, bbox_inches="tight" if tight else None,
+                metadata={"Software": None})
     plt.close(fig)
     return buf.getvalue()
 
@@ -220,7 +224,7 @@ def measured_vs_reference(df: pd.DataFrame) -> bytes | None:
         ax.grid(True, which="both", alpha=0.3)
         ax.legend(fontsize=7, loc="upper left")
     fig.tight_layout()
-    return to_png(fig)
+    return to_png(fig, tight=False)
 
 
 def bland_altman_stats(diff: Sequence[float]) -> dict[str, float]:
@@ -295,7 +299,7 @@ def bland_altman(df: pd.DataFrame) -> tuple[bytes | None, pd.DataFrame]:
         ax.grid(True, alpha=0.3)
         ax.legend(fontsize=7, loc="best")
     fig.tight_layout()
-    return to_png(fig), pd.DataFrame(stats)
+    return to_png(fig, tight=False), pd.DataFrame(stats)
 
 
 def signal_curves(x: np.ndarray, xlabel: str, curves: Mapping[int, tuple[np.ndarray, np.ndarray]],
