@@ -9,12 +9,14 @@ batched Levenberg–Marquardt refinement that follows (:mod:`fitting.voxelwise`)
 the grid's discretisation error, so the grid only needs to put every voxel in the basin
 of the right minimum.
 
-Grid: T2 log-spaced (constant relative step), B1 linear. Only B1 < 1 is stored: the
-magnitude CPMG echo train is *exactly* symmetric under B1 → 2 − B1 (a refocusing angle
-α and 360° − α, and excitation angles 90°·B1 of equal sine, give identical echoes; see
-:mod:`fitting.t2_models`), so atoms above 1 would duplicate atoms below. The grid stops
-at 0.99, not 1: B1 = 1 is a stationary point of every echo (dS/dB1 = 0), and a start
-there would leave the refinement without a gradient in B1.
+Grid: T2 log-spaced (constant relative step), B1 linear. Only B1 below the symmetry
+point B1c = 180°/(nominal refocusing angle) is stored: the shape of the magnitude CPMG
+echo train is *exactly* symmetric under B1 → 2·B1c − B1 (a refocusing angle θ and
+360° − θ give identical echoes up to the excitation's scale; see
+:func:`fitting.t2_models.b1_symmetry`), so atoms above B1c would duplicate atoms below
+up to a scale, which the normalised match ignores. The grid stops 0.01 below B1c (0.99
+for 180° pulses): B1c is a stationary point of every echo's shape, and a start there
+would leave the refinement without a gradient in B1.
 
 Residual discretisation error (measured on 20 000 noiseless 32-echo, 10 ms trains, T1 = 1 s,
 T2 log-uniform 0.02–0.4 s, B1 0.75–1.0, default grid of 200 T2 × 36 B1 atoms): matching
@@ -36,8 +38,9 @@ from fitting.epg import cpmg_echoes
 # Default grid (see module docstring for the measured discretisation error).
 T2_RANGE_S = (1e-3, 4.0)
 N_T2 = 200
-B1_RANGE = (0.3, 0.99)
+B1_RANGE = (0.3, 0.99)   # for 180° refocusing; other angles: up to 180°/angle − 0.01
 N_B1 = 36
+B1_MAX = 1.8
 BLOCK_ELEMENTS = 1 << 22     # voxels × atoms per matrix product (16 MiB of float32)
 
 
@@ -70,15 +73,35 @@ class EpgDictionary:
     def __init__(self, n_echoes: int, esp: float, refocus_deg: float = 180.0, t1: float = 1.0,
                  excite_deg: float = 90.0, t2_grid: np.ndarray | None = None,
                  b1_grid: np.ndarray | None = None) -> None:
+        fold = 180.0 / float(refocus_deg)    # symmetry point of the train's shape in B1
         t2_grid = np.geomspace(*T2_RANGE_S, N_T2) if t2_grid is None else np.asarray(t2_grid, float)
-        b1_grid = np.linspace(*B1_RANGE, N_B1) if b1_grid is None else np.asarray(b1_grid, float)
-        self.n_echoes, self.esp = int(n_echoes), float(esp)
-        self.refocus_deg, self.excite_deg = float(refocus_deg), float(excite_deg)
-        self.t1 = float(t1)
-        self.t2_grid, self.b1_grid = t2_grid, b1_grid
-        trains = cpmg_echoes(self.n_echoes, self.esp, t2_grid[:, None], self.t1,
-                             b1=b1_grid[None, :], refocus_deg=self.refocus_deg,
-                             excite_deg=self.excite_deg)
+        if b1_grid is None:   # up to just below the symmetry point, at the default step
+            lo, hi = B1_RANGE[0], min(fold - (1.0 - B1_RANGE[1]), B1_MAX)
+            step = (B1_RANGE[1] - B1_RANGE[0]) / (N_B1 - 1)
+            b1_grid = np.linspace(lo, hi, int(round((hi - lo) / step)) + 1)
+        b1_grid = np.asarray(b1_grid, float)
+        trains = cpmg_echoes(int(n_echoes), float(esp), t2_grid[:, None], float(t1),
+                             b1=b1_grid[None, :], refocus_deg=float(refocus_deg),
+                             excite_deg=float(excite_deg))
+        self._set(t2_grid, b1_grid, trains, fold=fold)
+
+    @classmethod
+    def from_trains(cls, t2_grid: np.ndarray, b1_grid: np.ndarray, trains: np.ndarray,
+                    fold: float | None = None) -> "EpgDictionary":
+        """A dictionary of given magnitude trains (len(t2_grid), len(b1_grid), n_echoes).
+
+        ``fold``: the B1 about which the trains are symmetric (a voxel's B1 from a map is
+        folded below it before its grid column is chosen), or None.
+        """
+        d = cls.__new__(cls)
+        d._set(np.asarray(t2_grid, float), np.asarray(b1_grid, float), np.asarray(trains, float),
+               fold)
+        return d
+
+    def _set(self, t2_grid: np.ndarray, b1_grid: np.ndarray, trains: np.ndarray,
+             fold: float | None) -> None:
+        self.n_echoes = trains.shape[-1]
+        self.t2_grid, self.b1_grid, self.fold = t2_grid, b1_grid, fold
         trains = trains.reshape(-1, self.n_echoes)
         self.t2 = np.repeat(t2_grid, b1_grid.size)
         self.b1 = np.tile(b1_grid, t2_grid.size)
@@ -92,7 +115,7 @@ class EpgDictionary:
         """Best atom for each row of ``data`` (N, n_echoes).
 
         With ``b1`` (N,) given (a B1 map), each voxel is matched over T2 only, in the
-        grid column nearest its B1 (folded to ≤ 1); the returned ``b1`` is then the
+        grid column nearest its B1 (folded below ``fold``); the returned ``b1`` is then the
         voxel's own value. Rows with no positive inner product (empty or
         non-finite data) get NaN.
         """
@@ -108,7 +131,7 @@ class EpgDictionary:
                              block_elements, progress)
         else:
             b1 = np.asarray(b1, dtype=float).reshape(-1)
-            folded = np.where(b1 > 1.0, 2.0 - b1, b1)
+            folded = b1 if self.fold is None else np.where(b1 > self.fold, 2 * self.fold - b1, b1)
             col = np.abs(folded[:, None] - self.b1_grid[None, :]).argmin(axis=1)
             nb = self.b1_grid.size
             for c in np.unique(col):
@@ -165,17 +188,17 @@ def nearest_t1_node(t1: np.ndarray) -> np.ndarray:
     return np.clip(np.nan_to_num(k, nan=0.0), 0, nodes.size - 1).astype(int)
 
 
-def match_protocol(data: np.ndarray, n_echoes: int, esp: float, refocus_deg: float,
-                   t1, excite_deg: float, b1: np.ndarray | None = None) -> MatchResult:
+def match_protocol(data: np.ndarray, t1, dictionary: Callable[[float], EpgDictionary],
+                   b1: np.ndarray | None = None) -> MatchResult:
     """Dictionary match of ``data`` (N, n_echoes) for one protocol.
 
-    ``t1`` is a scalar (one dictionary at that T1) or (N,) per voxel: each voxel is then
-    matched in the dictionary of its nearest T1 node (:func:`t1_nodes`). ``b1`` as in
-    :meth:`EpgDictionary.match`.
+    ``dictionary(t1)`` returns the protocol's dictionary at that T1. ``t1`` is a scalar
+    (one dictionary) or (N,) per voxel: each voxel is then matched in the dictionary of
+    its nearest T1 node (:func:`t1_nodes`). ``b1`` as in :meth:`EpgDictionary.match`.
     """
     t1 = np.asarray(t1, float)
     if t1.ndim == 0:
-        return get_dictionary(n_echoes, esp, refocus_deg, float(t1), excite_deg).match(data, b1=b1)
+        return dictionary(float(t1)).match(data, b1=b1)
     n = data.shape[0]
     t1 = np.broadcast_to(t1.reshape(-1), (n,))
     node = nearest_t1_node(t1)
@@ -183,8 +206,8 @@ def match_protocol(data: np.ndarray, n_echoes: int, esp: float, refocus_deg: flo
     out = {k: np.full(n, np.nan) for k in ("t2", "b1", "m0", "score")}
     for k in np.unique(node):
         rows = np.flatnonzero(node == k)
-        d = get_dictionary(n_echoes, esp, refocus_deg, float(nodes[k]), excite_deg)
-        r = d.match(data[rows], b1=None if b1 is None else np.asarray(b1).reshape(-1)[rows])
+        r = dictionary(float(nodes[k])).match(
+            data[rows], b1=None if b1 is None else np.asarray(b1).reshape(-1)[rows])
         for name in out:
             out[name][rows] = getattr(r, name)
     return MatchResult(**out)

@@ -64,17 +64,33 @@ _CHUNK = 4096  # voxels per block: keeps the (states × voxels) arrays in cache
 def _simulate(n_echoes: int, esp: float, t2: ArrayLike, t1: ArrayLike, b1: ArrayLike,
               refocus_deg: float, excite_deg: float, m0: ArrayLike, derivs: bool,
               signed: bool):
-    """Broadcast, run the recursion block by block; S (and dS/dT2, dS/dB1 if ``derivs``)."""
+    """Both angles scaled by ``b1``; S (and dS/dT2, dS/dB1 if ``derivs``), see :func:`_trains`."""
+    b1, m0 = (np.asarray(p, dtype=float) for p in (b1, m0))
+    a_ref, a_exc = np.deg2rad(float(refocus_deg)), np.deg2rad(float(excite_deg))
+    return _trains(n_echoes, esp, t2, t1, b1 * a_ref, a_ref, m0 * np.sin(b1 * a_exc),
+                   m0 * a_exc * np.cos(b1 * a_exc), derivs, signed)
+
+
+def _trains(n_echoes: int, esp: float, t2: ArrayLike, t1: ArrayLike, alpha: ArrayLike,
+            dalpha: ArrayLike, f0: ArrayLike, df0: ArrayLike, derivs: bool, signed: bool):
+    """Broadcast, run the recursion block by block.
+
+    ``alpha`` is the actual refocusing angle (rad), ``f0`` the transverse magnetisation
+    the excitation leaves on the CPMG axis; ``dalpha``, ``df0`` their derivatives with
+    respect to the scale parameter ("B1") whose derivative is returned. Returns S, or
+    (S, dS/dT2, dS/dB1) if ``derivs``, each of the broadcast shape + (n_echoes,).
+    """
     n, esp = _check(n_echoes, esp)
-    t2, t1, b1, m0 = np.broadcast_arrays(*(np.asarray(p, dtype=float) for p in (t2, t1, b1, m0)))
-    shape = t2.shape
-    t2, t1, b1, m0 = (p.reshape(-1) for p in (t2, t1, b1, m0))
+    arrs = np.broadcast_arrays(*(np.asarray(p, dtype=float)
+                                 for p in (t2, t1, alpha, dalpha, f0, df0)))
+    shape = arrs[0].shape
+    t2, t1, alpha, dalpha, f0, df0 = (p.reshape(-1) for p in arrs)
     nv = t2.size
     out = np.empty((3 if derivs else 1, n, nv))
     for lo in range(0, nv, _CHUNK):
         sl = slice(lo, min(lo + _CHUNK, nv))
-        _recursion(n, esp, t2[sl], t1[sl], b1[sl], m0[sl], np.deg2rad(float(refocus_deg)),
-                   np.deg2rad(float(excite_deg)), out[:, :, sl])
+        _recursion(n, esp, t2[sl], t1[sl], alpha[sl], dalpha[sl], f0[sl], df0[sl],
+                   out[:, :, sl])
     if not signed:                             # magnitude; d|S| = sign(S)·dS (sign 0 taken as +)
         neg = out[0] < 0
         out = np.where(neg, -out, out)
@@ -102,9 +118,11 @@ def _pulse_relax(a, b, z, u, d, w, s2e2, sae2, e2, ca1, hsa1) -> None:
     z -= d
 
 
-def _recursion(n: int, esp: float, t2, t1, b1, m0, a_ref: float, a_exc: float, out) -> None:
+def _recursion(n: int, esp: float, t2, t1, alpha, dalpha, f0, dfdb, out) -> None:
     """EPG state recursion for one block of voxels, written into ``out`` (1 or 3, n, nv).
 
+    ``alpha``: refocusing angle (rad) per voxel; ``f0``: transverse magnetisation after the
+    excitation; ``dalpha``, ``dfdb``: their derivatives in the scale parameter B1.
     States live in buffers indexed so that the order shift between pulses is a change
     of offset, not a copy: positive orders F_+(2j+1) at ``pos[pp + j]`` (pp falls by one
     per pulse, the new F_+1 being the old F_−1), negative orders F_−(2j+1) at
@@ -114,7 +132,6 @@ def _recursion(n: int, esp: float, t2, t1, b1, m0, a_ref: float, a_exc: float, o
     """
     derivs = out.shape[0] == 3
     nv = t2.size
-    alpha = b1 * a_ref
     sa, ca = np.sin(alpha), np.cos(alpha)
     s2 = np.sin(0.5 * alpha) ** 2
     hsa = 0.5 * sa
@@ -135,8 +152,7 @@ def _recursion(n: int, esp: float, t2, t1, b1, m0, a_ref: float, a_exc: float, o
     td = np.empty((nj, nv))
     tw = np.empty((nj, nv))
     pp, qq = n, 0
-    # Excitation (angle b1·α_exc) puts M0·sin(b1·α_exc) on the CPMG axis, then ESP/2 to pulse 1.
-    f0 = m0 * np.sin(b1 * a_exc)
+    # The excitation puts f0 on the CPMG axis, then ESP/2 to pulse 1.
     pos[pp] = f0 * e2h
     if derivs:
         gpos = np.zeros((2,) + pos.shape)
@@ -146,10 +162,10 @@ def _recursion(n: int, esp: float, t2, t1, b1, m0, a_ref: float, a_exc: float, o
         gd = np.empty((2, nj, nv))
         gw = np.empty((2, nj, nv))
         gpos[0, pp] = f0 * e2h * (0.5 * r2)    # d e2h/dT2 = e2h·ESP/(2·T2²)
-        gpos[1, pp] = m0 * a_exc * np.cos(b1 * a_exc) * e2h
-        ds2 = hsa * a_ref                      # d s²/dB1
-        dsa = ca * a_ref
-        dca = -sa * a_ref
+        gpos[1, pp] = dfdb * e2h
+        ds2 = hsa * dalpha                     # d s²/dB1
+        dsa = ca * dalpha
+        dca = -sa * dalpha
         ds2e2, dsae2 = ds2 * e2, dsa * e2
         dca1, hdsa1 = dca * e1, 0.5 * dsa * e1
         de2h = e2h * (0.5 * r2)

@@ -199,7 +199,7 @@ def fit_mean(spec: ModelSpec, ms: MeanSignal, fix: Mapping[str, float] | None = 
 def _finalized(spec: ModelSpec, fixed: Fixed, values: dict[str, float],
                intervals: dict[str, dict[str, tuple[float, float]]]):
     """Values and intervals as the maps report them (``ModelSpec.finalize``, e.g. the
-    ``mese`` B1 folded to ≤ 1). An interval becomes the range of the reported quantity
+    ``mese`` B1 folded below its symmetry point). An interval becomes the range of the reported quantity
     over the fitted interval (sampled, so a fold inside the interval is honoured)."""
     def fin(k: str, v: np.ndarray) -> np.ndarray:
         p = {n: np.full(v.shape, values[n]) for n in values}

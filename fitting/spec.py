@@ -105,11 +105,15 @@ class ModelSpec:
     primary : the parameter whose map names the rmse map (``<stem>_desc-rmse_<suffix>``).
     description : one line for ``--help`` and sidecars.
     finalize : optional ``(p, fixed) -> p`` applied by the engines to the converged
-        estimates before they are reported (for example ``mese`` folds B1 to ≤ 1, the
-        echo train being even in B1 − 1); bound checks and standard errors use the
-        fitted values.
+        estimates before they are reported (for example ``mese`` folds B1 below the
+        symmetry point of its echo train, 180°/nominal refocusing angle); bound checks
+        and standard errors use the fitted values.
     extra : free-form model settings; ``extra["lm_options"]`` holds keyword arguments
-        for :func:`fitting.lm.levenberg_marquardt` (for example ``damping``).
+        for :func:`fitting.lm.levenberg_marquardt` (for example ``damping``);
+        ``extra["output_notes"]``: ``(fixed) -> {suffix: [text]}`` notes for the map
+        sidecars (``Notes``), e.g. how ``mese`` reports B1; ``extra["sampled_only"]``:
+        the signal is defined only at the acquired values (an echo train), so plots
+        draw it there and do not resample it.
     configure : optional ``(spec, options) -> spec``: the variant to fit for the user's
         options (for example ``mese`` with a B1 map fits T2 and M0 only); use
         :func:`configure_model`, which also applies the noise model.

@@ -13,18 +13,28 @@ variants (:func:`configure`).
   With a B1 map (option ``b1_map``), B1 comes from ``fixed["b1"]`` and only T2 and M0 are
   fitted.
 
-  *B1 is identifiable only up to a fold about 1.* A refocusing angle α and 360° − α, and
-  excitation angles 90°·B1 and 90°·(2 − B1), give identical magnitude echo trains
-  (the CPMG component is even in the pulses' deviation from 180°/90°; verified to
-  rounding with :func:`fitting.epg.cpmg_echoes`). The fit therefore runs on the
-  symmetric range [0.2, 1.8] (so B1 near 1 is not pinned on a bound) and reports the
-  fold B1 ≤ 1 (``ModelSpec.finalize``): the TB1map of ``mese`` is 1 − |1 − B1|, the
-  refocusing efficiency. T2 and M0 do not depend on the fold. A B1 map given with
-  ``--b1`` may hold values above 1; they enter the model unchanged.
+  *B1 is identifiable only up to a fold about B1c = 180°/nominal refocusing angle*
+  (:func:`b1_symmetry`): refocusing angles θ and 360° − θ give the same shape of the
+  magnitude train, and the excitation only scales it (absorbed by M0), so B1 and
+  2·B1c − B1 fit equally well (checked against isochromats in tests/test_b1_fold.py).
+  The fit runs on [0.2, 1.8] (so B1 near B1c is not pinned on a bound) and reports the
+  branch whose actual refocusing angle is at most 180°, B1c − |B1c − B1|, with that
+  branch's M0 (``ModelSpec.finalize``; M0·sin(B1·α_exc) is what the echoes fix). For a
+  nominal 180° pulse B1c = 1 and the TB1map is 1 − |1 − B1|, the refocusing efficiency;
+  at 150° nominal B1c = 1.2, so a true B1 of 1.1 is reported as 1.1 (a true 1.3 is
+  indistinguishable from it). T2 does not depend on the fold. With a slice profile the
+  angle scales differently at each position, the symmetry is broken and B1 is reported
+  as fitted. The TB1map sidecar says which was done (:func:`b1_note`). A B1 map given
+  with ``--b1`` may hold values above B1c; they enter the model unchanged.
+
+  *Slice profile* (option ``slice_profile``, 2D acquisitions): ``fixed["profile"]`` holds
+  a :class:`fitting.rfpulse.SliceProfile` and the train is the slice-profile EPG of
+  :mod:`fitting.sliceprofile` (tabulated; dictionary starts from its table).
 
   *T1* (default :data:`T1_FIXED_DEFAULT` = 1 s, option ``t1_fixed``; or per voxel from a
   T1 map, option ``t1_map``: ``fixed["t1"]`` is then (N,) and ``"t1"`` is listed in
-  ``voxel_fixed``) only weights the stimulated-echo pathways stored as Z between pulses. Measured on noiseless
+  ``voxel_fixed``) only weights the stimulated-echo pathways stored as Z between pulses.
+  Measured on noiseless
   32-echo, 10 ms trains (T2 0.02–0.4 s, B1 0.75–1) fitted with T1 fixed at 1 s while the
   true T1 is 0.5 / 2 / 3 s: median T2 error 0.12 / 0.06 / 0.08 %, worst 3.1 / 1.6 / 2.2 %,
   the worst case being the longest T2 (0.4 s, approaching T1) at the lowest B1 (0.75).
@@ -59,10 +69,12 @@ from typing import Any, Mapping
 import numpy as np
 
 from fitting import kernels
-from fitting.dictionary import match_protocol
+from fitting.dictionary import get_dictionary, match_protocol
 from fitting.epg import cpmg_echoes, cpmg_echoes_jacobian
 from fitting.errors import RelaxlineError
+from fitting.rfpulse import SliceProfile, parse_sinc, sinc_profile
 from fitting.signals import mono_exp
+from fitting.sliceprofile import get_table, profile_echoes
 from fitting.spec import Fixed, Kernel, ModelSpec, Params, per_voxel, register
 
 T2_LOWER, T2_UPPER = 1e-3, 10.0     # s (also T2*)
@@ -120,9 +132,25 @@ def _configure(spec: ModelSpec, options: Mapping[str, Any]) -> ModelSpec:
 # --------------------------------------------------------------------------- mese
 def _mese_fixed(meta: Mapping[str, Any], options: Mapping[str, Any]) -> Fixed:
     t1 = options.get("t1_fixed")
-    return {"refocus": float(meta.get("RefocusingFlipAngle", 180.0)),
-            "excite": float(meta.get("FlipAngle", 90.0)),
-            "t1": T1_FIXED_DEFAULT if t1 is None else float(t1)}
+    fixed = {"refocus": float(meta.get("RefocusingFlipAngle", 180.0)),
+             "excite": float(meta.get("FlipAngle", 90.0)),
+             "t1": T1_FIXED_DEFAULT if t1 is None else float(t1)}
+    prof = options.get("slice_profile")
+    if prof is not None and prof is not False:
+        fixed["profile"] = _profile(prof, fixed)
+    return fixed
+
+
+def _profile(prof: Any, fixed: Fixed) -> SliceProfile:
+    """The slice profile of option ``slice_profile``: a :class:`SliceProfile` (e.g. read
+    from a file by the caller) or a ``sinc:TBW[:RATIO]`` spec, computed for the angles."""
+    if isinstance(prof, SliceProfile):
+        return prof
+    sinc = parse_sinc(str(prof))
+    if sinc is None:
+        raise RelaxlineError(f"slice profile {prof!r}: expected sinc:TBW[:RATIO] or a profile "
+                             f"read from a TSV file (columns position, excitation, refocusing).")
+    return sinc_profile(sinc[0], sinc[1], fixed["excite"], fixed["refocus"])
 
 
 def _mese_validate(x: np.ndarray, fixed: Fixed, n_params: int = 3) -> None:
@@ -154,21 +182,55 @@ def _mese_b1(p: Params, fixed: Fixed):
     return p["B1"] if "B1" in p else fixed["b1"]
 
 
+def _train(x: np.ndarray, p: Params, fixed: Fixed, m0, derivs: bool):
+    """The mese echo train: plain EPG, or the slice-profile EPG when ``fixed["profile"]``."""
+    esp, b1, prof = echo_spacing(x), _mese_b1(p, fixed), fixed.get("profile")
+    if prof is not None:
+        return profile_echoes(x.size, esp, p["T2"], fixed["t1"], b1, fixed["refocus"],
+                              fixed["excite"], prof, m0=m0, derivs=derivs)
+    f = cpmg_echoes_jacobian if derivs else cpmg_echoes
+    return f(x.size, esp, p["T2"], fixed["t1"], b1=b1, refocus_deg=fixed["refocus"],
+             excite_deg=fixed["excite"], m0=m0)
+
+
 def _mese_signal(x: np.ndarray, p: Params, fixed: Fixed) -> np.ndarray:
-    return cpmg_echoes(x.size, echo_spacing(x), p["T2"], fixed["t1"], b1=_mese_b1(p, fixed),
-                       refocus_deg=fixed["refocus"], excite_deg=fixed["excite"], m0=p["M0"])
+    return _train(x, p, fixed, p["M0"], derivs=False)
 
 
 def _mese_jacobian(x: np.ndarray, p: Params, fixed: Fixed) -> np.ndarray:
     """(N, M, P) in parameter order (T2, M0[, B1]); dS/dM0 = S/M0 evaluated at M0 = 1."""
-    s1, dt2, db1 = cpmg_echoes_jacobian(x.size, echo_spacing(x), p["T2"], fixed["t1"],
-                                        b1=_mese_b1(p, fixed), refocus_deg=fixed["refocus"],
-                                        excite_deg=fixed["excite"], m0=1.0)
+    s1, dt2, db1 = _train(x, p, fixed, 1.0, derivs=True)
     m0 = np.asarray(p["M0"], float)[:, None]
     cols = [dt2 * m0, s1]
     if "B1" in p:
         cols.append(db1 * m0)
     return np.stack(cols, axis=-1)
+
+
+def b1_symmetry(fixed: Fixed) -> float | None:
+    """The B1 about which the magnitude echo train's *shape* is symmetric, or None.
+
+    The train depends on the refocusing angle θ = B1·α_ref only through cos²(θ/2),
+    sin²(θ/2) and cos θ, and on sin θ only through the sign of the longitudinal states,
+    which never reaches an echo: θ and 360° − θ give the same train (checked to
+    rounding in tests/test_b1_fold.py). The excitation only scales the train by
+    sin(B1·α_exc), which M0 absorbs. So B1 and 2·B1c − B1, with B1c = 180°/α_ref, fit
+    the echoes equally well (M0 differing by the ratio of the excitation sines): an
+    exact symmetry for any nominal angles, about 1 only for a 180° refocusing pulse.
+    A slice profile scales the angle differently at each position and breaks it (None).
+    """
+    if fixed.get("profile") is not None:
+        return None
+    return 180.0 / float(fixed["refocus"])
+
+
+def _mese_dictionary(x: np.ndarray, fixed: Fixed):
+    """``t1 -> EpgDictionary`` of this protocol (plain or slice-profile model)."""
+    n, esp, prof = x.size, round(echo_spacing(x), 9), fixed.get("profile")
+    ref, exc = fixed["refocus"], fixed["excite"]
+    if prof is not None:
+        return lambda t1: get_table(n, esp, ref, exc, t1, prof).dictionary()
+    return lambda t1: get_dictionary(n, esp, ref, t1, exc)
 
 
 def _mese_init(x: np.ndarray, data: np.ndarray, fixed: Fixed, b1_fixed: bool = False) -> Params:
@@ -177,8 +239,7 @@ def _mese_init(x: np.ndarray, data: np.ndarray, fixed: Fixed, b1_fixed: bool = F
     With ``b1_fixed`` the match runs over T2 only, at each voxel's B1 from ``fixed["b1"]``.
     """
     b1 = np.broadcast_to(np.asarray(fixed["b1"], float), (data.shape[0],)) if b1_fixed else None
-    r = match_protocol(data, x.size, round(echo_spacing(x), 9), fixed["refocus"], fixed["t1"],
-                       fixed["excite"], b1=b1)
+    r = match_protocol(data, fixed["t1"], _mese_dictionary(x, fixed), b1=b1)
     t2 = np.clip(np.where(np.isfinite(r.t2), r.t2, 0.1), T2_LOWER, T2_UPPER)
     m0 = np.where(np.isfinite(r.m0) & (r.m0 > 0), r.m0, np.max(np.abs(data), axis=1))
     if b1_fixed:
@@ -188,10 +249,35 @@ def _mese_init(x: np.ndarray, data: np.ndarray, fixed: Fixed, b1_fixed: bool = F
 
 
 def _mese_finalize(p: Params, fixed: Fixed) -> Params:
-    """Report B1 folded to ≤ 1 (module docstring: the train is even in B1 − 1)."""
-    if "B1" not in p:
+    """Report the B1 branch below the symmetry point :func:`b1_symmetry` (the actual
+    refocusing angle ≤ 180°) and the M0 of that branch; without a symmetry, as fitted."""
+    c = b1_symmetry(fixed)
+    if "B1" not in p or c is None:
         return p
-    return {**p, "B1": 1.0 - np.abs(1.0 - np.asarray(p["B1"], float))}
+    b1 = np.asarray(p["B1"], float)
+    folded = c - np.abs(c - b1)
+    a_exc = np.deg2rad(fixed["excite"])
+    with np.errstate(invalid="ignore", divide="ignore"):
+        ratio = np.sin(b1 * a_exc) / np.sin(folded * a_exc)
+    ratio = np.where(np.isfinite(ratio) & (ratio > 0), ratio, 1.0)
+    return {**p, "B1": folded, "M0": np.asarray(p["M0"], float) * ratio}
+
+
+def b1_note(fixed: Fixed) -> str:
+    """How the TB1map of ``mese`` was reported (its sidecar and the QC report say it)."""
+    c = b1_symmetry(fixed)
+    if c is None:
+        return (f"B1 fitted on its physical range [{B1_LOWER:g}, {B1_UPPER:g}] and not folded: "
+                f"the slice profile breaks the symmetry of the echo train in B1.")
+    return (f"B1 folded about {c:g}: the echo train's shape is the same at B1 and {2 * c:g} − B1 "
+            f"(refocusing angle θ and 360° − θ; nominal refocusing "
+            f"{fixed['refocus']:g}°), so the branch with the actual refocusing angle at most "
+            f"180° (B1 <= {c:g}) is reported, with its M0.")
+
+
+def _mese_output_notes(fixed: Fixed) -> dict[str, list[str]]:
+    """Notes for the map sidecars (``ModelSpec.extra["output_notes"]``)."""
+    return {"TB1map": [b1_note(fixed)]}
 
 
 MESE = register(ModelSpec(
@@ -219,7 +305,8 @@ MESE = register(ModelSpec(
     # B1 − 1 and B1 creeps; ftol 1e-9 (still 15× tighter than MINPACK's default) stops
     # there: 2 instead of 33 of 5000 voxels unconverged at SNR 300, T2 within 1e-8
     # (median) of a fit run to ftol 1e-14.
-    extra={"lm_options": {"damping": "nielsen", "ftol": 1e-9}},
+    extra={"lm_options": {"damping": "nielsen", "ftol": 1e-9},
+           "output_notes": _mese_output_notes, "sampled_only": True},
 ))
 
 MESE_B1_FIXED = dataclasses.replace(

@@ -323,7 +323,12 @@ def _finish(spec: ModelSpec, x: np.ndarray, y: np.ndarray, fx: Fixed, p: np.ndar
         err[ki] = stderr_from_jacobian(jac, sigma[ki])
     p = np.where(keep[:, None], p, np.nan)
     if spec.finalize is not None:
+        fitted = p
         p = spec.pack(spec.finalize(spec.unpack(p), fx))
+        if spec.scale_param is not None:   # a rescaled scale keeps its relative error
+            i = spec.params.index(spec.scale_param)
+            with np.errstate(invalid="ignore", divide="ignore"):
+                err[:, i] *= np.abs(np.where(fitted[:, i] != 0, p[:, i] / fitted[:, i], 1.0))
     for i, k in enumerate(spec.params):
         out.params[k][idx] = p[:, i]
         out.stderr[k][idx] = err[:, i]

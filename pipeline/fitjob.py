@@ -38,6 +38,7 @@ from fitting import status as st
 from fitting.spec import Fixed, ModelSpec, configure_model, get_model
 from fitting.uncertainty import background_from_max, rayleigh_max_threshold
 from fitting.voxelwise import ENGINES, available_cores, fit_voxels
+from pipeline import profiles
 from pipeline.errors import InputError, RelaxlineError
 from pipeline.outputs import provenance, write_map
 from pipeline.series import Series, load_grid_map, read_series
@@ -45,7 +46,8 @@ from pipeline.t1map import check_t1_map_model, gap_note, load_t1_map, t1_values
 
 # model options of `relaxline fit` -> (flag, models it applies to)
 MODEL_OPTIONS = {"t1_fixed": ("--t1-fixed", ("mese",)), "plateau": ("--plateau", ("mese-mono",)),
-                 "skip_echoes": ("--skip-echoes", ("mese-mono",))}
+                 "skip_echoes": ("--skip-echoes", ("mese-mono",)),
+                 "slice_profile": ("--slice-profile", ("mese",))}
 SLAB_VOXELS = 131072           # voxels read and fitted at a time (bounds memory)
 NOISE_SAMPLE_VOXELS = 200_000  # voxels sampled for the background-noise estimate
 STATUS_KEY = "desc-fitstatus_mask"
@@ -78,7 +80,7 @@ def acquisition(spec: ModelSpec, series: Series, options: Mapping[str, Any] | No
     """The model's constants from the sidecars, validated against the varying values."""
     where = ", ".join(str(p) for p in series.paths)
     try:
-        fixed = spec.fixed_from_meta(series.meta, dict(options or {}))
+        fixed = spec.fixed_from_meta(series.meta, profiles.resolve(options or {}))
         spec.validate(series.values, fixed)
     except InputError:
         raise
@@ -247,6 +249,8 @@ def write_fit_outputs(arrays: Mapping[str, np.ndarray], series: Series, out_dir:
     units = {spec.outputs[k]: spec.unit(k) for k in spec.params}
     stem = derivative_stem(series.stem, spec.name)
     what = f"{spec.name} model fitted voxelwise to {series.stem}"
+    output_notes = spec.extra.get("output_notes")
+    per_map = output_notes(acquisition(spec, series, options)) if output_notes else {}
     paths = []
     for key in output_keys(spec):
         arr = arrays[key]
@@ -256,6 +260,8 @@ def write_fit_outputs(arrays: Mapping[str, np.ndarray], series: Series, out_dir:
         desc, suffix = (key.split("_", 1)[0][5:], key.split("_", 1)[1]) \
             if key.startswith("desc-") else (None, key)
         extra: dict[str, Any] = {"Warnings": list(notes)} if notes else {}
+        if not desc and per_map.get(suffix):
+            extra["Notes"] = list(per_map[suffix])
         if desc == "fitstatus":
             u = "code"
             extra["StatusCodes"] = {str(c): name for c, name in st.NAMES.items()}
@@ -343,6 +349,8 @@ def fit_command(model: str, inputs: Sequence[str | Path], out: str | Path,
         raise InputError(f"--jobs must be at least 1, got {jobs}.")
     extra = dict(model_options or {})
     check_model_options(model, extra)
+    if extra.get("slice_profile"):
+        profiles.check_spec(extra["slice_profile"])
     spec, series, fixed = prepare(model, inputs, time_unit)
     check_t1_map_model(spec, t1_map)
     maps = {"b1_map": str(b1) if b1 else None, "t1_map": str(t1_map) if t1_map else None}
@@ -373,7 +381,7 @@ def fit_command(model: str, inputs: Sequence[str | Path], out: str | Path,
         print(f"relaxline fit: warning: {', '.join(map(str, series.paths))}: every fitted "
               f"voxel holds non-finite or all-zero data, so the maps hold only NaN; check "
               f"that these are the right images.", file=stream)
-    notes = fit_notes(arrays, options, t1_arr)
+    notes = fit_notes(arrays, options, t1_arr, spec, series)
     for note in notes:
         print(f"relaxline fit: warning: {note}.", file=stream)
     return write_fit_outputs(arrays, series, out, model, engine, options, notes,
@@ -381,9 +389,18 @@ def fit_command(model: str, inputs: Sequence[str | Path], out: str | Path,
 
 
 def fit_notes(arrays: Mapping[str, np.ndarray], options: Mapping[str, Any],
-              t1: np.ndarray | None = None) -> list[str]:
+              t1: np.ndarray | None = None, spec: ModelSpec | None = None,
+              series: Series | None = None) -> list[str]:
     """Warnings about a finished fit for the console and the map sidecars."""
     notes = []
+    if spec is not None and series is not None and spec.name in MODEL_OPTIONS[
+            "slice_profile"][1] and not options.get("slice_profile") \
+            and str(series.meta.get("MRAcquisitionType", "")).upper() == "2D":
+        notes.append(f"the sidecar says MRAcquisitionType 2D, but {spec.name} was fitted "
+                     f"without a slice profile: the flip angle varies across a 2D slice, "
+                     f"which biases T2 (about +10 % for a time-bandwidth 3 sinc) and B1; "
+                     f"give --slice-profile (e.g. sinc:TBW of the protocol's pulses, or a "
+                     f"profile TSV)")
     if t1 is not None:
         fitted = arrays[STATUS_KEY] != st.OUTSIDE
         note = gap_note(t1, fitted, str(options.get("t1_map")), options.get("t1_fixed"))

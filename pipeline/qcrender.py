@@ -13,6 +13,7 @@ from typing import Any, Callable, Sequence
 
 import numpy as np
 
+from pipeline import profiles
 from pipeline.errors import InputError
 from pipeline.qcjob import QC_MAPS, MapFile, QCResult, source_paths
 
@@ -83,10 +84,10 @@ def fitted_curves(mf: MapFile, series, labels: np.ndarray, keep: np.ndarray,
         params[p] = mf.companion(path, f"{p} map", float)
     options = mf.sidecar.get("Options") or {}
     try:
-        fixed = dict(spec.fixed_from_meta(series.meta, options))
-    except RelaxlineError as exc:
+        fixed = dict(spec.fixed_from_meta(series.meta, profiles.resolve(options)))
+    except (RelaxlineError, InputError) as exc:
         return {}, f"fitted curves omitted ({exc})"
-    per_voxel = [k for k in spec.voxel_fixed
+    per_voxel = [k for k in (*spec.voxel_fixed, "t1")
                  if isinstance(options.get(k) or options.get(f"{k}_map"), str)]
     if per_voxel:
         return {}, (f"the fit used a per-voxel {per_voxel[0]} map; fitted curves omitted")
@@ -100,7 +101,9 @@ def fitted_curves(mf: MapFile, series, labels: np.ndarray, keep: np.ndarray,
         p = {k: np.array([v]) for k, v in med.items()}
         try:
             y_at_x = np.asarray(spec.signal(x, p, fixed))[0]
-            y = np.asarray(spec.signal(xf, p, fixed))[0]
+            # a model defined only at its acquired points (an echo train) is not resampled
+            y = y_at_x if spec.extra.get("sampled_only") else \
+                np.asarray(spec.signal(xf, p, fixed))[0]
         except Exception as exc:  # an overlay must not stop the QC; the note says why
             return {}, f"fitted curves omitted ({type(exc).__name__}: {exc})"
         # Some models are defined only at the acquired points (an echo train at k·ESP, a
@@ -234,6 +237,10 @@ def render(result: QCResult, reference, tol, out_figures: bool, erode_mm: float,
         summary["ranges"] = (f"{tol.source}: region mean inside [low, high] → pass, outside "
                              f"→ fail{margin}; only where no reference value applies. Ranges "
                              "are set by the local procedure.")
+    for mf in result.maps:   # how the fit reported the map (e.g. the TB1map's B1 fold)
+        notes = [n for n in mf.sidecar.get("Notes") or [] if isinstance(n, str)]
+        if notes and mf.suffix in QC_MAPS:
+            summary[f"{mf.suffix} of {mf.stem}"] = " ".join(notes)
     # the report shows the inputs' paths and sha256 (SourceFiles; older maps: Sources)
     provenance = [{"file": mf.path.name, **{k: mf.sidecar.get(k) for k in
                   ("Model", "Engine", "Options", "RelaxlineVersion")},

@@ -370,7 +370,7 @@ def _common_meta(paths: list[Path], metas: list[dict], key: str, time_unit: str)
                                      f"{v0:g} in {sidecar_path(seen[0][0])}; all volumes of a "
                                      f"series must share it.")
             meta[k] = v0
-    for k in ("PhantomTemperature", "Site", "Scanner"):  # optional QC context
+    for k in ("PhantomTemperature", "Site", "Scanner", "MRAcquisitionType"):  # context
         if k in metas[0]:
             meta[k] = metas[0][k]
     return meta

@@ -9,7 +9,8 @@ DESCRIPTION = """Fit a relaxation model voxel by voxel and write BIDS-derivative
 Models: ir (inversion recovery: T1, M0, inversion efficiency; magnitude or complex),
 vfa (variable flip angle: T1, M0; --b1 scales the nominal angles), dam (double
 angle alpha/2alpha: TB1map), mese (CPMG multi-echo spin echo by extended phase graphs:
-T2, M0 and the refocusing scale TB1map, reported folded to <= 1; with --b1 the B1 scale
+T2, M0 and the refocusing scale TB1map, reported below the symmetry point of the echo
+train, 180/nominal refocusing angle, or as fitted with --slice-profile; with --b1 the B1 scale
 comes from the map and only T2 and M0 are fitted; with --t1-map each voxel's T1 comes
 from a T1 map, e.g. from `relaxline fit ir`; echoes must sit at TE = k*ESP),
 mese-mono (mono-exponential T2, optional --plateau and --skip-echoes N) and megre
@@ -41,6 +42,22 @@ def add_series_arguments(p: argparse.ArgumentParser) -> None:
                         "models that use one (mese). Inside the fitted region it must hold "
                         "T1 > 0 everywhere, unless --t1-fixed gives the T1 used where the map "
                         "has no value (NaN or 0)")
+    p.add_argument("--slice-profile", metavar="F.tsv|sinc:TBW[:RATIO]",
+                   help="mese on a 2D (slice-selective) acquisition: the echo train is summed "
+                        "over the slice's flip-angle profile. F.tsv: tab-separated columns "
+                        "position, excitation, refocusing (actual/nominal flip angle at "
+                        "equally weighted positions; position only orders the rows). "
+                        "sinc:TBW[:RATIO]: both profiles by spinor simulation (256 steps) "
+                        "of B1(t) ~ sinc(TBW*u)*(1+cos(2*pi*u))/2, u = t/T - 1/2 in "
+                        "[-1/2, 1/2] (zero crossings every T/TBW; TBW 1-20), the same shape "
+                        "for excitation and refocusing, each with the sidecar's nominal "
+                        "angle as its area, the excitation's slice gradient refocused, "
+                        "crushers around the refocusing pulses, relaxation during the pulses "
+                        "neglected, only the flip angle at each position kept; RATIO (0.2-5, "
+                        "default 1) = refocusing / excitation slice width (a RATIO times "
+                        "weaker refocusing gradient). B1 scales the RF of the whole profile: "
+                        "a TSV's scales are multiplied by B1, the built-in pulse is simulated "
+                        "at each B1")
     p.add_argument("--t1-fixed", type=float, metavar="S",
                    help="mese: T1 (s) of the echo-train model (default 1.0; it only weights "
                         "the stimulated echoes); with --t1-map, the T1 used where the map "
@@ -81,6 +98,7 @@ def add_model_arguments(p: argparse.ArgumentParser) -> None:
 def model_options(args: argparse.Namespace) -> dict:
     """The model options given on the command line (only those set)."""
     out = {"t1_fixed": args.t1_fixed, "plateau": args.plateau,
+           "slice_profile": args.slice_profile,
            "skip_echoes": args.skip_echoes,
            "noise": args.noise if args.noise != "gaussian" else None}
     # `is` tests: --t1-fixed 0 / --skip-echoes 0 must reach validation, not vanish as "== False"

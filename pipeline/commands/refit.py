@@ -298,14 +298,17 @@ def run(args: argparse.Namespace) -> int:
     from fitting.spec import configure_model, t1_map_models
     from pipeline.fitjob import acquisition, check_model_options, estimate_noise, load_b1, \
         prepare
+    from pipeline import profiles
     from pipeline.t1map import check_t1_map_model, load_t1_map, t1_values
     from pipeline.outputs import atomic_write_bytes
 
     spec, series, _ = prepare(args.model, args.inputs, args.time_unit)
     options = {"b1_map": str(args.b1) if args.b1 else None, "noise": args.noise,
                "t1_map": str(args.t1_map) if args.t1_map else None,
-               "t1_fixed": args.t1_fixed}
+               "t1_fixed": args.t1_fixed, "slice_profile": args.slice_profile}
     check_model_options(args.model, options)
+    if args.slice_profile:
+        profiles.check_spec(args.slice_profile)
     check_t1_map_model(spec, args.t1_map)
     spec = configure_model(spec, options)
     fixed = acquisition(spec, series, options)
