@@ -77,8 +77,8 @@ def test_tb1map_sidecar_says_how_b1_was_reported(tmp_path, capsys):
     out = tmp_path / "maps"
     assert main(["fit", "mese", str(series), "--out", str(out), "--mask", str(mask)]) == 0
     capsys.readouterr()
-    b1 = np.asarray(nib.load(out / "sub-01_MESE_TB1map.nii.gz").get_fdata())
+    b1 = np.asarray(nib.load(out / "sub-01_rec-mese_TB1map.nii.gz").get_fdata())
     np.testing.assert_allclose(b1, 1.1, atol=1e-4)          # isochromat truth (Hennig 1988)
-    side = json.loads((out / "sub-01_MESE_TB1map.json").read_text())
+    side = json.loads((out / "sub-01_rec-mese_TB1map.json").read_text())
     assert "B1 folded about 1.2" in side["Notes"][0] and "nominal refocusing 150°" in side["Notes"][0]
-    assert "Notes" not in json.loads((out / "sub-01_MESE_T2map.json").read_text())
+    assert "Notes" not in json.loads((out / "sub-01_rec-mese_T2map.json").read_text())

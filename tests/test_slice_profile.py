@@ -211,7 +211,7 @@ def _run(capsys, *argv):
 
 
 def _vials(folder, suffix, labels, truth):
-    m = np.asarray(nib.load(folder / f"sub-01_ses-1_MESE_{suffix}.nii.gz").get_fdata())
+    m = np.asarray(nib.load(folder / f"sub-01_ses-1_rec-mese_{suffix}.nii.gz").get_fdata())
     return {lab: np.median(m[labels == lab]) for lab in truth}
 
 
@@ -222,7 +222,7 @@ def test_2d_mese_t2_within_2_percent_with_the_profile(mese2d, tmp_path, capsys):
     code, _, err = _run(capsys, "fit", "mese", series, "--out", out)
     assert code == 0, err
     assert "MRAcquisitionType 2D" in err and "--slice-profile" in err      # the warning
-    side = json.loads((out / "sub-01_ses-1_MESE_T2map.json").read_text())
+    side = json.loads((out / "sub-01_ses-1_rec-mese_T2map.json").read_text())
     assert any("MRAcquisitionType 2D" in w for w in side["Warnings"])
     before = _vials(out, "T2map", labels, truth)
     b1_before = _vials(out, "TB1map", labels, truth)
@@ -241,7 +241,7 @@ def test_2d_mese_t2_within_2_percent_with_the_profile(mese2d, tmp_path, capsys):
         # per vial (issue 14), B1 within 0.05 of the RF scale simulated
         assert abs(after[k] / t2 - 1) < 0.02, (t2, b1, after[k])
         assert abs(b1_after[k] - b1) < 0.05, (t2, b1, b1_after[k])
-    side = json.loads((out / "sub-01_ses-1_MESE_TB1map.json").read_text())
+    side = json.loads((out / "sub-01_ses-1_rec-mese_TB1map.json").read_text())
     assert side["Options"]["slice_profile"] == "sinc:3"
     assert "not folded" in side["Notes"][0] and "Warnings" not in side
     # the QC report shows the fit's warning (plain fit) and the TB1map note (profile fit)
@@ -312,7 +312,7 @@ def test_profile_file_fit_and_refit(tmp_path, capsys):
     code, _, err = _run(capsys, "fit", "mese", series, "--out", out, "--mask", mask,
                         "--slice-profile", prof)
     assert code == 0, err
-    got = np.asarray(nib.load(out / "sub-02_MESE_T2map.nii.gz").get_fdata())
+    got = np.asarray(nib.load(out / "sub-02_rec-mese_T2map.nii.gz").get_fdata())
     np.testing.assert_allclose(got, t2, rtol=1e-4)
     code, text, err = _run(capsys, "refit", "mese", series, "--voxel", "1,0,0", "--json",
                            "--slice-profile", prof)
