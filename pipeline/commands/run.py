@@ -92,8 +92,11 @@ def check_options(cores: int | None, profile: str | None) -> None:
 
 
 def run_workflow(config: str | Path, cores: int | None = None, profile: str | None = None,
-                 extra: Sequence[str] = (), stream=sys.stderr) -> int:
-    """Validate, run Snakemake, and return the exit status of design §5."""
+                 extra: Sequence[str] = (), stream=None) -> int:
+    """Validate, run Snakemake, and return the exit status of design §5.
+
+    ``stream``: where messages go (default: ``sys.stderr`` at call time, not at import)."""
+    stream = stream or sys.stderr
     import fcntl
     import signal
     import subprocess
