@@ -40,8 +40,9 @@ from fitting.uncertainty import background_from_max, rayleigh_max_threshold
 from fitting.voxelwise import ENGINES, available_cores, fit_voxels
 from pipeline import profiles
 from pipeline.errors import InputError, RelaxlineError
-from pipeline.outputs import provenance, write_map
-from pipeline.series import Series, load_grid_map, read_series
+from pipeline.outputs import (map_name, output_set, provenance, refuse_overwriting_inputs,
+                              write_map)
+from pipeline.series import Series, load_grid_map, read_series, sidecar_path
 from pipeline.t1map import check_t1_map_model, gap_note, load_t1_map, t1_values
 
 # model options of `relaxline fit` -> (flag, models it applies to)
@@ -229,6 +230,38 @@ def _put(target: np.ndarray, oz: slice, slab_shape, idx: np.ndarray, values: np.
     target[:, :, oz] = view.reshape(slab_shape)
 
 
+def _split_key(key: str) -> tuple[str | None, str]:
+    """``desc-stderr_T1map`` -> ("stderr", "T1map"); ``T1map`` -> (None, "T1map")."""
+    if key.startswith("desc-"):
+        desc, suffix = key.split("_", 1)
+        return desc[len("desc-"):], suffix
+    return None, key
+
+
+def _map_folder(out_dir: str | Path, suffix: str, datatype_folders: bool) -> Path:
+    from pipeline.bidsderiv import datatype
+    return Path(out_dir) / datatype(suffix) if datatype_folders else Path(out_dir)
+
+
+def output_paths(spec: ModelSpec, series_stem: str, out_dir: str | Path,
+                 datatype_folders: bool = False) -> list[Path]:
+    """Every file a fit of ``spec`` writes for a series into ``out_dir`` (maps, sidecars)."""
+    from pipeline.bidsderiv import derivative_stem
+    stem = derivative_stem(series_stem, spec.name)
+    paths = []
+    for key in output_keys(spec):
+        desc, suffix = _split_key(key)
+        p = _map_folder(out_dir, suffix, datatype_folders) / map_name(stem, suffix, desc)
+        paths += [p, p.with_name(p.name[: -len(".nii.gz")] + ".json")]
+    return paths
+
+
+def input_files(series: Series, options: Mapping[str, Any]) -> list[Path]:
+    """The files a fit reads: the series and its sidecars, the mask, B1 and T1 maps."""
+    files = [q for p in series.paths for q in (p, sidecar_path(p))]
+    return files + [Path(options[k]) for k in ("mask", "b1_map", "t1_map") if options.get(k)]
+
+
 def write_fit_outputs(arrays: Mapping[str, np.ndarray], series: Series, out_dir: str | Path,
                       model: str | ModelSpec, engine: str, options: Mapping[str, Any],
                       notes: Sequence[str] = (), datatype_folders: bool = False) -> list[Path]:
@@ -239,9 +272,11 @@ def write_fit_outputs(arrays: Mapping[str, np.ndarray], series: Series, out_dir:
     carries under ``Warnings`` (``relaxline qc`` shows them in its report). Names are the
     BIDS-derivative ones of :func:`pipeline.bidsderiv.derivative_stem`; with
     ``datatype_folders`` (the workflow) each map goes into ``out_dir/anat`` or
-    ``out_dir/fmap`` as BIDS wants, else all into ``out_dir``.
+    ``out_dir/fmap`` as BIDS wants, else all into ``out_dir``. The maps are written as
+    one set (:func:`pipeline.outputs.output_set`): all of them or, on an error or a full
+    disk, none; no output may replace one of the fit's inputs.
     """
-    from pipeline.bidsderiv import QUANTITY, datatype, derivative_stem, is_parametric
+    from pipeline.bidsderiv import derivative_stem
     spec = configure_model(_spec(model), options)
     # the core count changes no number in the maps, so it stays out of their provenance
     prov = provenance(spec.name, engine, {k: v for k, v in options.items() if k != "jobs"},
@@ -252,46 +287,57 @@ def write_fit_outputs(arrays: Mapping[str, np.ndarray], series: Series, out_dir:
     output_notes = spec.extra.get("output_notes")
     per_map = output_notes(acquisition(spec, series, options)) if output_notes else {}
     paths = []
-    for key in output_keys(spec):
-        arr = arrays[key]
-        if arr.shape != tuple(series.shape):
-            raise ValueError(f"{key}: array shape {arr.shape} is not the series grid "
-                             f"{series.shape}")
-        desc, suffix = (key.split("_", 1)[0][5:], key.split("_", 1)[1]) \
-            if key.startswith("desc-") else (None, key)
-        extra: dict[str, Any] = {"Warnings": list(notes)} if notes else {}
-        if not desc and per_map.get(suffix):
-            extra["Notes"] = list(per_map[suffix])
-        if desc == "fitstatus":
-            u = "code"
-            extra["StatusCodes"] = {str(c): name for c, name in st.NAMES.items()}
-            extra["Description"] = f"fit status code of each voxel (StatusCodes); {what}"
-            extra["SpatialReference"] = "orig"   # BIDS: on the grid of the fitted series
-        elif desc == "rmse":
-            u = "arbitrary"
-            extra["Description"] = ("root-mean-square fit residual sqrt(RSS/M), signal units; "
+    with output_set(out_dir, protect=input_files(series, options)):
+        for key in output_keys(spec):
+            arr = arrays[key]
+            if arr.shape != tuple(series.shape):
+                raise ValueError(f"{key}: array shape {arr.shape} is not the series grid "
+                                 f"{series.shape}")
+            desc, suffix = _split_key(key)
+            u, extra = _map_sidecar(spec, units, desc, suffix, what, notes, options)
+            if not desc and per_map.get(suffix):
+                extra["Notes"] = list(per_map[suffix])
+            paths.append((_map_folder(out_dir, suffix, datatype_folders), suffix, arr, desc,
+                          u, extra))
+        # gzip releases the GIL: the maps are compressed on the job's cores side by side
+        with ThreadPoolExecutor(max_workers=int(options.get("jobs") or available_cores())
+                                ) as pool:
+            return list(pool.map(lambda a: write_map(a[0], stem, a[1], a[2], series.affine,
+                                                     prov, desc=a[3], units=a[4],
+                                                     extra=a[5]), paths))
+
+
+def _map_sidecar(spec: ModelSpec, units: Mapping[str, str], desc: str | None, suffix: str,
+                 what: str, notes: Sequence[str], options: Mapping[str, Any]
+                 ) -> tuple[str, dict[str, Any]]:
+    """Units and the extra sidecar keys (Description, StatusCodes, ...) of one map."""
+    from pipeline.bidsderiv import QUANTITY, is_parametric
+    extra: dict[str, Any] = {"Warnings": list(notes)} if notes else {}
+    if desc == "fitstatus":
+        u = "code"
+        extra["StatusCodes"] = {str(c): name for c, name in st.NAMES.items()}
+        extra["Description"] = f"fit status code of each voxel (StatusCodes); {what}"
+        extra["SpatialReference"] = "orig"   # BIDS: on the grid of the fitted series
+    elif desc == "rmse":
+        u = "arbitrary"
+        extra["Description"] = ("root-mean-square fit residual sqrt(RSS/M), signal units; "
+                                + what)
+    else:
+        u = units[suffix]
+        quantity = QUANTITY.get(suffix, f"parameter {suffix[:-3] or suffix}")
+        extra["Description"] = f"{quantity}; {what}"
+        if desc == "stderr":
+            extra["Description"] = ("standard error of the " + quantity + " from the "
+                                    "Jacobian at the solution; noise from " +
+                                    ("background" if options.get("noise_sigma") is not None
+                                     else "residuals") + "; " + what)
+        if suffix == "InvEffmap":
+            extra["Description"] = ("inversion efficiency -cos(inversion angle): 1 ideal, "
+                                    "0 none (apparent; absorbs excitation errors too); "
                                     + what)
-        else:
-            u = units[suffix]
-            quantity = QUANTITY.get(suffix, f"parameter {suffix[:-3] or suffix}")
-            extra["Description"] = f"{quantity}; {what}"
-            if desc == "stderr":
-                extra["Description"] = ("standard error of the " + quantity + " from the "
-                                        "Jacobian at the solution; noise from " +
-                                        ("background" if options.get("noise_sigma") is not None
-                                         else "residuals") + "; " + what)
-            if suffix == "InvEffmap":
-                extra["Description"] = ("inversion efficiency -cos(inversion angle): 1 ideal, "
-                                        "0 none (apparent; absorbs excitation errors too); "
-                                        + what)
-        if is_parametric(suffix):
-            extra["SkullStripped"] = False   # BIDS: required on parametric maps
-        folder = Path(out_dir) / datatype(suffix) if datatype_folders else out_dir
-        paths.append((folder, suffix, arr, desc, u, extra))
-    # gzip releases the GIL: the maps are compressed on the job's cores side by side
-    with ThreadPoolExecutor(max_workers=int(options.get("jobs") or available_cores())) as pool:
-        return list(pool.map(lambda a: write_map(a[0], stem, a[1], a[2], series.affine, prov,
-                                                 desc=a[3], units=a[4], extra=a[5]), paths))
+    if is_parametric(suffix):
+        extra["SkullStripped"] = False   # BIDS: required on parametric maps
+    return u, extra
 
 
 def load_b1(spec: ModelSpec, series: Series, b1: str | Path | None, stream: TextIO,
@@ -356,6 +402,9 @@ def fit_command(model: str, inputs: Sequence[str | Path], out: str | Path,
     maps = {"b1_map": str(b1) if b1 else None, "t1_map": str(t1_map) if t1_map else None}
     spec = configure_model(spec, {**extra, **maps})
     acquisition(spec, series, extra)          # validate the options before any reading
+    refuse_overwriting_inputs(input_files(series, {"mask": mask, **maps}),
+                              output_paths(spec, series.stem, out, datatype_folders),
+                              "`relaxline fit`")
     mask_arr = load_grid_map(mask, series, what="mask") if mask else None
     if mask_arr is not None:
         mask_arr = np.where(np.isfinite(mask_arr), mask_arr, 0)   # NaN is not "in the mask"
