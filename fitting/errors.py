@@ -72,8 +72,14 @@ def shorten_message(text: str, limit: int = MESSAGE_CHARS) -> str:
     return f"{text[:half]} […{len(text) - 2 * half} characters cut…] {text[-half:]}"
 
 
-def no_space_error(folder: object) -> RelaxlineError:
-    """The error for a full disk or exhausted quota while writing into ``folder``."""
+def no_space_error(folder: object, clean: bool = True) -> RelaxlineError:
+    """The error for a full disk or exhausted quota while writing into ``folder``.
+
+    ``clean``: the writer removed what it had begun (say so); else the user is told to
+    check the folder.
+    """
+    state = ("nothing was left half-written there" if clean else
+             "files written there by this run may be incomplete; delete them")
     return RelaxlineError(f"no space left on {folder} (the disk or your quota is full); "
-                          "nothing was left half-written there. Free some space or choose "
-                          "another output folder, then run again.")
+                          f"{state}. Free some space or choose another output folder, then "
+                          "run again.")

@@ -7,11 +7,13 @@ that ``relaxline --help`` stays fast.
 from __future__ import annotations
 
 import argparse
+import errno
 import importlib
 import os
 import sys
 from typing import Sequence
 
+from fitting.errors import no_space_error, shorten_message
 from pipeline.errors import EXIT_BAD_INPUT, RelaxlineError
 
 # Order is the order shown by --help.
@@ -59,22 +61,36 @@ def main(argv: Sequence[str] | None = None) -> int:
     try:
         return int(args._module.run(args) or 0)
     except RelaxlineError as exc:
-        print(f"relaxline {args.command}: error: {exc}", file=sys.stderr)
+        _say(args.command, f"error: {exc}")
         return EXIT_BAD_INPUT
     except KeyboardInterrupt:
-        print(f"relaxline {args.command}: interrupted", file=sys.stderr)
+        _say(args.command, "interrupted")
         return 130
     except MemoryError:
-        print(f"relaxline {args.command}: error: out of memory; fit a mask or use "
-              "smaller chunks", file=sys.stderr)
+        _say(args.command, "error: out of memory; fit a mask or use smaller chunks")
         return EXIT_BAD_INPUT
+    except OSError as exc:
+        if exc.errno in (errno.ENOSPC, errno.EDQUOT):   # a write no writer translated
+            folder = os.path.dirname(exc.filename) if exc.filename else "the output folder"
+            _say(args.command, f"error: {no_space_error(folder or '.', clean=False)}")
+            return EXIT_BAD_INPUT
+        return _internal(args.command, exc)
     except Exception as exc:  # a bug, not bad input: say so plainly
-        if os.environ.get("RELAXLINE_DEBUG"):
-            raise
-        print(f"relaxline {args.command}: internal error: {type(exc).__name__}: {exc}\n"
-              "This is a bug in relaxline, not a problem with your data. Rerun with "
-              "RELAXLINE_DEBUG=1 to see the traceback and report it.", file=sys.stderr)
-        return 3
+        return _internal(args.command, exc)
+
+
+def _say(command: str, text: str) -> None:
+    """One message on stderr, cut to a readable length (a bad value may be huge)."""
+    print(f"relaxline {command}: {shorten_message(text)}", file=sys.stderr)
+
+
+def _internal(command: str, exc: BaseException) -> int:
+    if os.environ.get("RELAXLINE_DEBUG"):
+        raise exc
+    _say(command, f"internal error: {type(exc).__name__}: {exc}\n"
+                  "This is a bug in relaxline, not a problem with your data. Rerun with "
+                  "RELAXLINE_DEBUG=1 to see the traceback and report it.")
+    return 3
 
 
 if __name__ == "__main__":  # pragma: no cover

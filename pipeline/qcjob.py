@@ -11,7 +11,6 @@ file (:func:`labels_from_file`) or placed automatically from a layout by another
 from __future__ import annotations
 
 import json
-import math
 import re
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -21,7 +20,8 @@ import numpy as np
 import pandas as pd
 
 from pipeline.errors import EXIT_OK, EXIT_QC_FAIL, InputError
-from pipeline.series import _load_image, load_grid_map, sidecar_path
+from pipeline.series import (_load_image, load_grid_map, load_label_map, read_json_file,
+                             sidecar_path)
 
 QC_MAPS = ("T1map", "T2map", "T2starmap", "TB1map")
 ALL_MAPS = QC_MAPS + ("M0map",)
@@ -62,7 +62,9 @@ class MapFile:
 
     @property
     def voxel_size(self) -> tuple[float, ...]:
-        return tuple(float(z) for z in self.image.header.get_zooms()[:3])
+        """Voxel spacing (mm) along each axis, from the affine that places the map in space
+        (the header's pixdim fields may disagree with it, or be 0)."""
+        return tuple(float(v) for v in np.sqrt((self.affine[:3, :3] ** 2).sum(axis=0)))
 
     def data(self) -> np.ndarray:
         arr = np.asarray(self.image.dataobj, dtype=np.float32)
@@ -84,13 +86,10 @@ LabelSource = Callable[[MapFile], np.ndarray]
 
 
 def _read_json(path: Path) -> dict[str, Any]:
-    try:
-        obj = json.loads(path.read_text(encoding="utf-8"))
-    except (OSError, UnicodeDecodeError, json.JSONDecodeError) as exc:
-        raise InputError(f"{path}: cannot read the map's JSON sidecar ({exc}); rerun "
-                         "`relaxline fit` to rewrite it.") from None
+    obj = read_json_file(path, "map's JSON sidecar")
     if not isinstance(obj, dict):
-        raise InputError(f"{path}: sidecar must hold a JSON object.")
+        raise InputError(f"{path}: sidecar must hold a JSON object; rerun `relaxline fit` to "
+                         "rewrite it.")
     return obj
 
 
@@ -148,14 +147,12 @@ def labels_from_file(path: str | Path) -> LabelSource:
     def source(mf: MapFile) -> np.ndarray:
         key = f"{mf.shape}|{mf.affine.round(4).tolist()}"
         if key not in cache:
-            arr = load_grid_map(p, mf.shape, mf.affine, what="label map")
-            from fitting.errors import RelaxlineError
-            from qc.roi import label_values
-            try:
-                label_values(arr)
-            except RelaxlineError as exc:
-                raise InputError(f"{p}: {exc}") from None
-            cache[key] = arr.astype(np.int64)
+            arr = load_label_map(p, mf.shape, mf.affine, what="label map")
+            if not arr.any():
+                raise InputError(f"{p}: the label map holds no region (every voxel is 0, the "
+                                 "background), so there is nothing to measure; give the label "
+                                 "map of the vials or regions (1, 2, ...).")
+            cache[key] = arr
         return cache[key]
 
     return source
@@ -196,11 +193,12 @@ def resolve_temperature(option: float | None, maps: list[MapFile],
     the BIDS sessions file in the workflow, named by ``option_source``), the sidecars
     (``PhantomTemperature``), the config fallback, or none."""
     if option is not None:
-        return float(option), option_source
+        return _temperature(option, option_source), option_source
     for mf in maps:
         t = mf.sidecar.get("PhantomTemperature")
-        if isinstance(t, (int, float)) and not isinstance(t, bool) and math.isfinite(t):
-            return float(t), f"sidecar {mf.path.name}"
+        if t is not None:
+            return _temperature(t, f"{sidecar_path(mf.path)}: key 'PhantomTemperature'"), \
+                f"sidecar {mf.path.name}"
     for mf in maps:
         for p in source_paths(mf):
             if p.suffix != ".json" or not p.is_file():
@@ -209,8 +207,8 @@ def resolve_temperature(option: float | None, maps: list[MapFile],
                 t = _read_json(p).get("PhantomTemperature")
             except InputError:
                 continue
-            if isinstance(t, (int, float)) and not isinstance(t, bool) and math.isfinite(t):
-                return float(t), f"sidecar {p.name}"
+            if t is not None:
+                return _temperature(t, f"{p}: key 'PhantomTemperature'"), f"sidecar {p.name}"
     if fallback is not None:
         return float(fallback), "config"
     return None, "none"
@@ -227,6 +225,16 @@ def mese_b1_fold(sidecar: dict[str, Any]) -> str:
     what = (MESE_B1_FOLDED if fold is True else f"not {MESE_B1_FOLDED}" if fold is False
             else "fold not recorded")
     return f"refocusing-efficiency estimate, {what}"
+
+
+def _temperature(t: Any, source: str) -> float:
+    """A phantom temperature checked for plausibility (°C), or an InputError naming ``source``."""
+    from fitting.errors import RelaxlineError
+    from qc.reference import check_temperature
+    try:
+        return check_temperature(t, source)
+    except RelaxlineError as exc:
+        raise InputError(str(exc)) from None
 
 
 def field_strength(maps: list[MapFile]) -> float | None:
@@ -288,6 +296,11 @@ def compute(maps: list[MapFile], label_source: LabelSource, reference=None, tole
                          if isinstance(w, str)]
             labels = label_source(mf)
             if erode_mm > 0:
+                if min(mf.voxel_size) <= 0:
+                    raise InputError(f"{mf.path}: the affine gives a zero voxel size "
+                                     f"{mf.voxel_size} mm, so vials cannot be eroded by "
+                                     f"{erode_mm:g} mm; fix the header or leave out the "
+                                     "erosion.")
                 labels = erode_labels(labels, erode_mm, mf.voxel_size)
             labels_used.setdefault(stem, labels)
             status_map = mf.companion(mf.status_path, "fit-status mask", np.uint8)
@@ -389,24 +402,33 @@ def run_qc(maps_dir: str | Path, out_dir: str | Path, label_source: LabelSource,
            labels_desc: str = "label map",
            extra_sections: Sequence[tuple[str, str]] = (),
            extra_warnings: Sequence[str] = (), model: str | None = None,
-           stream: TextIO | None = None, show_progress: bool = True) -> QCResult:
+           stream: TextIO | None = None, show_progress: bool = True,
+           inputs: Sequence[str | Path | None] = ()) -> QCResult:
     """Full QC of one maps folder: compute, then write roi_stats.tsv, figures and report.
 
     ``model``: only that model's maps (the workflow's session folders hold every model's).
 
-    Everything is computed before anything is written, so bad input leaves no output.
-    ``label_source`` gives the label map per map grid (:func:`labels_from_file`, or a
-    function placing vials from a layout); ``extra_sections`` (title, HTML) and
-    ``extra_warnings`` are passed to the report (history, drift). Progress of the
-    figures and curves goes to ``stream`` (stderr by default) unless ``show_progress``
-    is false.
+    Everything is computed before anything is written, so bad input leaves no output;
+    the outputs are written as one set (:func:`pipeline.outputs.output_set`), so a full
+    disk leaves none either. ``label_source`` gives the label map per map grid
+    (:func:`labels_from_file`, or a function placing vials from a layout);
+    ``extra_sections`` (title, HTML) and ``extra_warnings`` are passed to the report
+    (history, drift); ``inputs``: further files read (label map, layout) that no output
+    may replace. Progress of the figures and curves goes to ``stream`` (stderr by
+    default) unless ``show_progress`` is false.
     """
     from pipeline.progress import Progress
-    from pipeline.outputs import atomic_write_bytes, atomic_write_text, atomic_write_tsv
+    from pipeline.outputs import (atomic_write_bytes, atomic_write_text, atomic_write_tsv,
+                                  output_set, refuse_overwriting_inputs)
     from qc.reference import Reference
     from qc.tolerance import load_tolerances
 
     from pipeline.qcrender import render
+    out = Path(out_dir)
+    given = [p for p in (*inputs, reference_path,
+                         config if isinstance(config, (str, Path)) else None) if p]
+    refuse_overwriting_inputs(given, [out / "roi_stats.tsv", out / "report.html"],
+                              "`relaxline qc`")
     maps = discover_maps(maps_dir, model)
     reference = Reference.load(reference_path) if reference_path is not None else None
     tol = load_tolerances(config)
@@ -420,9 +442,9 @@ def run_qc(maps_dir: str | Path, out_dir: str | Path, label_source: LabelSource,
                          progress=lambda total: Progress(
                              total, f"qc {model or Path(maps_dir).name}", stream=stream,
                              enabled=show_progress))
-    out = Path(out_dir)
-    atomic_write_tsv(out / "roi_stats.tsv", result.table)
-    for name, png in files.items():
-        atomic_write_bytes(out / "figures" / name, png)
-    atomic_write_text(out / "report.html", page)
+    with output_set(out, protect=given + [m.path for m in maps]):
+        atomic_write_tsv(out / "roi_stats.tsv", result.table)
+        for name, png in files.items():
+            atomic_write_bytes(out / "figures" / name, png)
+        atomic_write_text(out / "report.html", page)
     return result

@@ -24,6 +24,7 @@ from typing import Any, Iterator, Sequence
 
 import numpy as np
 
+from fitting.errors import excerpt
 from pipeline.errors import InputError
 
 ANGLE_KEYS = ("FlipAngle", "RefocusingFlipAngle")
@@ -64,19 +65,26 @@ def sha256_file(path: str | Path, chunk: int = 1 << 20) -> str:
     return h.hexdigest()
 
 
+def read_json_file(path: Path, what: str = "sidecar") -> Any:
+    """Parse a JSON file the user gave; every problem is an :class:`InputError` naming it."""
+    from qc.userfiles import read_text
+    text = read_text(path, what, "JSON", InputError)
+    try:
+        return json.loads(text)
+    except json.JSONDecodeError as exc:
+        raise InputError(f"{path}: not valid JSON (line {exc.lineno}, column {exc.colno}: "
+                         f"{exc.msg}); fix the {what}.") from None
+    except RecursionError:
+        raise InputError(f"{path}: the {what} nests lists or objects too deeply to be a "
+                         f"sidecar of acquisition parameters; fix the file.") from None
+
+
 def read_sidecar(path: Path) -> dict[str, Any]:
     """Read a JSON sidecar; it must hold a JSON object."""
     if not path.is_file():
         raise InputError(f"{path}: sidecar not found. Every NIfTI needs a JSON sidecar of the "
                          f"same name holding its acquisition parameters (BIDS keys).")
-    try:
-        text = path.read_text(encoding="utf-8")
-        obj = json.loads(text)
-    except UnicodeDecodeError:
-        raise InputError(f"{path}: sidecar is not UTF-8 text; write it as JSON.") from None
-    except json.JSONDecodeError as exc:
-        raise InputError(f"{path}: not valid JSON (line {exc.lineno}, column {exc.colno}: "
-                         f"{exc.msg}); fix the sidecar.") from None
+    obj = read_json_file(path)
     if not isinstance(obj, dict):
         raise InputError(f"{path}: expected a JSON object of BIDS keys, got "
                          f"{type(obj).__name__}.")
@@ -85,11 +93,12 @@ def read_sidecar(path: Path) -> dict[str, Any]:
 
 def _as_number(value: Any, where: str, key: str) -> float:
     if isinstance(value, bool) or not isinstance(value, (int, float)):
-        raise InputError(f"{where}: key '{key}' must be a number, got {value!r} "
+        raise InputError(f"{where}: key '{key}' must be a number, got {excerpt(value)} "
                          f"({type(value).__name__}).")
     v = float(value)
     if not math.isfinite(v):
-        raise InputError(f"{where}: key '{key}' is not finite ({value!r}); give a real value.")
+        raise InputError(f"{where}: key '{key}' is not finite ({excerpt(value)}); give a real "
+                         f"value.")
     return v
 
 
@@ -207,17 +216,23 @@ def _read_proxy(img, path: Path, index: tuple) -> np.ndarray:
     """Read part of an image's data; a damaged file becomes an error naming it.
 
     The header is read when the series is opened, the data only here, so a file cut
-    short (an interrupted copy) is first noticed at this point.
+    short (an interrupted copy) is first noticed at this point. A 2D image is read as
+    one slice (x, y, 1).
     """
     try:
+        if len(img.shape) == 2 and len(index) >= 3:
+            return np.asarray(img.dataobj[index[:2]])[:, :, None][(slice(None),) * 2
+                                                                  + index[2:3]]
         return np.asarray(img.dataobj[index])
     except (EOFError, OSError, ValueError, zlib.error) as exc:
         raise InputError(f"{path}: the image data cannot be read ({type(exc).__name__}: "
-                         f"{exc}). The file is probably truncated or corrupt; copy it again "
-                         f"from the scanner or archive.") from None
+                         f"{excerpt(str(exc), 200)}). The file is probably truncated or "
+                         f"corrupt; copy it again from the scanner or archive.") from None
 
 
 def _load_image(path: Path):
+    """Open a NIfTI (header only) after checking that the header describes a usable grid
+    and that the file holds as much image data as the header declares."""
     import nibabel as nib
     if not path.exists():
         raise InputError(f"{path}: file not found.")
@@ -227,11 +242,69 @@ def _load_image(path: Path):
         # no memory map: slab reads fetch only their bytes, and the pages of a mapped
         # file would count in the resident set of a large fit
         img = nib.load(str(path), mmap=False)
-        _ = img.shape
+        shape = tuple(int(s) for s in img.shape)
+        affine = np.asarray(img.affine, float)
     except Exception as exc:
-        raise InputError(f"{path}: cannot be read as NIfTI ({exc}). Check that the file is "
-                         f"complete and really NIfTI.") from None
+        raise InputError(f"{path}: cannot be read as NIfTI ({excerpt(str(exc), 200)}). Check "
+                         f"that the file is complete and really NIfTI.") from None
+    if any(n < 1 for n in shape):
+        raise InputError(f"{path}: the header declares the image shape {shape}, with a zero "
+                         f"dimension, so there is no voxel to read; the header is damaged or "
+                         f"was written wrongly. Convert the images from the scanner again.")
+    if not np.all(np.isfinite(affine)):
+        raise InputError(f"{path}: the header's voxel-to-world transform (sform/qform) holds "
+                         f"non-finite values (NaN or infinity), so the maps could not be placed "
+                         f"in space; fix the header (convert the images again).")
+    _check_data_size(img, path, shape)
     return img
+
+
+def _check_data_size(img, path: Path, shape: tuple[int, ...]) -> None:
+    """Raise when the file holds less image data than the header's shape needs.
+
+    Uncompressed: the file size. ``.nii.gz``: the gzip trailer's uncompressed size (a
+    four-byte read), and only when that disagrees (several gzip members, or really too
+    short) the data are decompressed and counted.
+    """
+    try:
+        offset = int(img.header.get_data_offset())
+        itemsize = int(img.header.get_data_dtype().itemsize)
+    except Exception:   # not a plain single-file NIfTI header: nibabel checks on reading
+        return
+    need = offset + int(np.prod(shape, dtype=object)) * itemsize
+    try:
+        if path.name.endswith(".gz"):
+            with open(path, "rb") as fh:
+                fh.seek(-4, 2)
+                isize = int.from_bytes(fh.read(4), "little")
+            if isize >= need % 2 ** 32 and need < 2 ** 32:
+                return
+            have = _gzip_length(path, need)
+        else:
+            have = path.stat().st_size
+    except (OSError, EOFError, zlib.error):
+        raise InputError(f"{path}: the file is damaged (its compressed data cannot be read "
+                         f"to the end); copy it again from the scanner or archive.") from None
+    if have < need:
+        dtype = img.header.get_data_dtype()
+        raise InputError(f"{path}: the header declares an image of {' x '.join(map(str, shape))} "
+                         f"voxels of {dtype} ({need - offset} bytes of data), but the file holds "
+                         f"only {max(have - offset, 0)} bytes of data. The header does not match "
+                         f"the data (a damaged or wrongly edited header, or a truncated copy); "
+                         f"convert or copy the images again.")
+
+
+def _gzip_length(path: Path, need: int) -> int:
+    """Uncompressed length of a gzip file, counted up to ``need`` bytes."""
+    import gzip
+    have = 0
+    with gzip.open(path, "rb") as fh:
+        while have < need:
+            block = fh.read(1 << 22)
+            if not block:
+                break
+            have += len(block)
+    return have
 
 
 def _spatial(img, path: Path) -> tuple[int, int, int]:
@@ -292,7 +365,7 @@ def read_series(inputs: Sequence[str | Path], key: str, time_unit: str = "s",
         raw = sc[key]
         if not isinstance(raw, list):
             raise InputError(f"{where}: key '{key}' must be a list of {n} values (one per "
-                             f"volume of the 4D image), got {raw!r}.")
+                             f"volume of the 4D image), got {excerpt(raw)}.")
         if len(raw) != n:
             raise InputError(f"{where}: key '{key}' has {len(raw)} values but {p.name} has "
                              f"{n} volumes; give one value per volume.")
@@ -388,10 +461,10 @@ def _series_stem(paths: list[Path]) -> str:
 
 
 def load_grid_map(path: str | Path, series_or_shape, affine: np.ndarray | None = None,
-                  what: str = "map") -> np.ndarray:
+                  what: str = "map", dtype=np.float32) -> np.ndarray:
     """Load a 3D map (B1, mask, labels) that must share the series' voxel grid.
 
-    Returns float32 (labels and masks are converted by the caller).
+    Returns ``dtype`` (float32 by default; label maps use :func:`load_label_map`).
     """
     p = Path(path)
     img = _load_image(p)
@@ -402,4 +475,34 @@ def load_grid_map(path: str | Path, series_or_shape, affine: np.ndarray | None =
     if len(img.shape) > 3 and any(s > 1 for s in img.shape[3:]):
         raise InputError(f"{p}: {what} must be a 3D image, got shape {tuple(img.shape)}.")
     check_same_grid(shape, affine, img, p, what)
-    return np.asarray(img.dataobj, dtype=np.float32).reshape(shape)
+    data = _read_proxy(img, p, (slice(None),) * min(len(img.shape), 3))
+    return np.asarray(data, dtype=dtype).reshape(shape)
+
+
+def load_label_map(path: str | Path, series_or_shape, affine: np.ndarray | None = None,
+                   what: str = "label map") -> np.ndarray:
+    """A label map on the series' grid as int64 (0 = background), every label kept distinct.
+
+    Read as float64, which holds every whole number up to :data:`qc.roi.MAX_LABEL` (2^53)
+    exactly, integer or float files alike (a float32 cast would merge labels above
+    2^24); values must be whole numbers (no interpolated or probability map) from 0 to
+    that limit.
+    """
+    from qc.roi import MAX_LABEL
+    arr = load_grid_map(path, series_or_shape, affine, what=what, dtype=np.float64)
+    bad = ~np.isfinite(arr)
+    if bad.any():
+        raise InputError(f"{path}: the {what} holds non-finite values (NaN or infinity) in "
+                         f"{int(bad.sum())} voxel(s); labels are whole numbers (0 = background, "
+                         f"1, 2, ... = regions).")
+    odd = arr != np.round(arr)
+    if odd.any():
+        shown = ", ".join(f"{v:g}" for v in np.unique(arr[odd])[:5])
+        raise InputError(f"{path}: the {what} holds non-integer values ({shown}); labels must "
+                         f"be whole numbers (0 = background). Was it resampled with "
+                         f"interpolation? Resample label maps with nearest neighbour.")
+    if arr.size and (arr.min() < 0 or arr.max() > MAX_LABEL):
+        v = arr.min() if arr.min() < 0 else arr.max()
+        raise InputError(f"{path}: the {what} holds the label {v:g}; labels are whole numbers "
+                         f"from 0 (background) up to 2^53. Check that this is a label map.")
+    return arr.astype(np.int64)

@@ -213,6 +213,7 @@ def run_qc_with_layout(maps_dir: str | Path, out_dir: str | Path, layout_path: s
     """
     import math
 
+    from pipeline.outputs import output_set
     from pipeline.qcjob import run_qc
     from qc.localise import PoorMatchError
 
@@ -230,10 +231,11 @@ def run_qc_with_layout(maps_dir: str | Path, out_dir: str | Path, layout_path: s
         raise PoorMatchError(f"{exc} The rejected placement is drawn in {png}.",
                              exc.placement) from None
     extra = list(run_qc_options.pop("extra_sections", ()))
-    result = run_qc(maps_dir, out_dir, label_source(grids), session=session,
-                    labels_desc=f"placed from the layout {layout_path} (regions shrunk by "
-                                f"{margin_mm:g} mm)",
-                    extra_sections=[report_section(grids, layout_path), *extra],
-                    **run_qc_options)
-    write_placements(out_dir, grids)
+    with output_set(out_dir, protect=[layout_path]):   # QC outputs and placements: one set
+        result = run_qc(maps_dir, out_dir, label_source(grids), session=session,
+                        labels_desc=f"placed from the layout {layout_path} (regions shrunk "
+                                    f"by {margin_mm:g} mm)",
+                        extra_sections=[report_section(grids, layout_path), *extra],
+                        inputs=[layout_path], **run_qc_options)
+        write_placements(out_dir, grids)
     return result

@@ -18,7 +18,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from fitting.errors import RelaxlineError
+from fitting.errors import RelaxlineError, excerpt
 
 REQUIRED = ("label", "x_mm", "y_mm", "radius_mm")
 
@@ -65,7 +65,7 @@ def check_layout(df: pd.DataFrame, where: str = "layout") -> pd.DataFrame:
         if bad.any():
             row = int(np.flatnonzero(bad.to_numpy())[0])
             raise LayoutError(f"{where}: column {col}, row {row + 1}: expected a number, got "
-                              f"{df[col].iloc[row]!r}.")
+                              f"{excerpt(df[col].iloc[row])}.")
         out[col] = vals.astype(float)
     lab = out["label"].to_numpy()
     if np.any(lab != np.round(lab)) or np.any(lab < 1) or np.any(lab > 32767):

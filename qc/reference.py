@@ -24,7 +24,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from fitting.errors import RelaxlineError
+from fitting.errors import RelaxlineError, excerpt
 
 QUANTITIES = ("T1", "T2", "T2star")
 MAP_QUANTITY = {"T1map": "T1", "T2map": "T2", "T2starmap": "T2star"}
@@ -33,6 +33,11 @@ NUMERIC = QUANTITIES + tuple(f"{q}_sd" for q in QUANTITIES) + \
     tuple(f"{q}_coef" for q in QUANTITIES) + ("temperature", "field")
 MAX_RELAXATION_S = 30.0   # a "time" above this is taken as milliseconds (design §3)
 FIELD_ATOL_T = 0.05
+# phantom temperatures the reference values may be corrected to (°C). Common practice:
+# relaxometry phantoms are measured near room temperature (or warmed to body temperature);
+# their gels and solutions are liquid, and linear temperature coefficients are measured,
+# only in that neighbourhood. Outside it a value is a unit or typing mistake.
+PHANTOM_T_RANGE_C = (0.0, 50.0)
 REF_COLUMNS = ["label", "name", "reference", "reference_sd", "reference_temperature",
                "reference_at_temperature", "reference_note"]
 
@@ -46,11 +51,26 @@ def _number(text: str, where: str, col: str, allow_empty: bool) -> float:
     try:
         v = float(t)
     except ValueError:
-        raise RelaxlineError(f"{where}: column '{col}' holds {t!r}, which is not a number "
+        raise RelaxlineError(f"{where}: column '{col}' holds {excerpt(t)}, which is not a number "
                              f"(use a dot as decimal separator, no units).") from None
     if not math.isfinite(v):
-        raise RelaxlineError(f"{where}: column '{col}' is not finite ({t!r}).")
+        raise RelaxlineError(f"{where}: column '{col}' is not finite ({excerpt(t)}).")
     return v
+
+
+def check_temperature(t: float, source: str) -> float:
+    """A phantom temperature (°C) from ``source``, or an error naming it and the remedy."""
+    lo, hi = PHANTOM_T_RANGE_C
+    if isinstance(t, bool) or not isinstance(t, (int, float)) or not math.isfinite(t):
+        raise RelaxlineError(f"{source}: the phantom temperature must be a finite number in "
+                             f"°C, got {excerpt(t)}.")
+    if lo <= t <= hi:
+        return float(t)
+    hint = (f" It looks like kelvin: {t:g} K is {t - 273.15:.1f} °C." if 250 <= t <= 330
+            else "")
+    raise RelaxlineError(f"{source}: phantom temperature {t:g} °C is outside {lo:g}–{hi:g} °C, "
+                         f"where reference values can be corrected for temperature.{hint} Give "
+                         f"the phantom's temperature in °C.")
 
 
 def parse_reference(text: str, source: str = "reference table") -> pd.DataFrame:
@@ -63,7 +83,7 @@ def parse_reference(text: str, source: str = "reference table") -> pd.DataFrame:
                              "' and one row per vial.")
     header = [h.strip() for h in lines[0][1].split("\t")]
     if len(header) == 1 and ("," in header[0] or " " in header[0].strip()):
-        raise RelaxlineError(f"{source}: the header has a single column ({header[0]!r}); the "
+        raise RelaxlineError(f"{source}: the header has a single column ({excerpt(header[0])}); the "
                              "reference table must be TAB-separated.")
     dup = sorted({h for h in header if header.count(h) > 1})
     if dup:
@@ -87,7 +107,7 @@ def parse_reference(text: str, source: str = "reference table") -> pd.DataFrame:
         try:
             label = int(raw["label"].strip())
         except ValueError:
-            raise RelaxlineError(f"{where}: column 'label' holds {raw['label']!r}; labels are "
+            raise RelaxlineError(f"{where}: column 'label' holds {excerpt(raw['label'])}; labels are "
                                  "positive integers matching the label map.") from None
         if label <= 0:
             raise RelaxlineError(f"{where}: label {label} must be a positive integer "
@@ -219,7 +239,12 @@ def _correct(sub: pd.DataFrame, q: str, temperature: float | None) -> dict:
                     f"no temperature coefficient: reference at {temps[0]:g} °C used for "
                     f"{t:g} °C")
             return _row(vals[0], sds[0], temps[0], vals[0], note)
-        return _row(vals[0], sds[0], temps[0], vals[0] * (1.0 + coef * (t - temps[0])), "")
+        value = vals[0] * (1.0 + coef * (t - temps[0]))
+        if value <= 0:   # a coefficient far outside its measured range: no value, said so
+            return _row(vals[0], sds[0], temps[0], math.nan,
+                        f"correction to {t:g} °C with coefficient {coef:g}/°C gave a "
+                        "non-positive value; not compared")
+        return _row(vals[0], sds[0], temps[0], value, "")
     order = np.argsort(temps)
     temps, vals, sds, coefs = temps[order], vals[order], sds[order], coefs[order]
     near = int(np.argmin(np.abs(temps - t)))

@@ -15,6 +15,7 @@ import pandas as pd
 from fitting import status as fit_status
 from fitting.errors import RelaxlineError
 
+MAX_LABEL = 2 ** 53   # float64 holds every whole number up to here exactly
 STAT_COLUMNS = ["label", "n_voxels", "n_excluded", "mean", "sd", "median", "iqr", "cv_pct"]
 
 
@@ -27,6 +28,10 @@ def label_values(labels: np.ndarray) -> list[int]:
     if lab.size and not np.all(lab == np.round(lab)):
         raise RelaxlineError("label map holds non-integer values; labels must be integers "
                              "(0 = background). Was it resampled with interpolation?")
+    if lab.size and np.issubdtype(lab.dtype, np.floating) and np.abs(lab).max() > MAX_LABEL:
+        raise RelaxlineError(f"label map holds the label {lab.flat[np.abs(lab).argmax()]:g}, "
+                             "beyond the whole numbers a label map can hold exactly (2^53); "
+                             "check that this is a label map.")
     vals = np.unique(lab.astype(np.int64))
     if np.any(vals < 0):
         raise RelaxlineError(f"label map holds negative labels {vals[vals < 0].tolist()}; "

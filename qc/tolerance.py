@@ -33,7 +33,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Mapping
 
-from fitting.errors import RelaxlineError
+from fitting.errors import RelaxlineError, excerpt
 from qc.reference import MAX_RELAXATION_S
 
 DEFAULT_TOLERANCES: dict[str, dict[str, float]] = {
@@ -102,10 +102,10 @@ class Tolerances:
 def _limits(obj: Any, where: str) -> dict[str, float]:
     if not isinstance(obj, Mapping):
         raise RelaxlineError(f"{where}: expected a mapping {{warn_pct: N, fail_pct: N}}, got "
-                             f"{obj!r}.")
+                             f"{excerpt(obj)}.")
     extra = set(obj) - {"warn_pct", "fail_pct"}
     if extra:
-        raise RelaxlineError(f"{where}: unknown key(s) {sorted(extra)}; use warn_pct and "
+        raise RelaxlineError(f"{where}: unknown key(s) {excerpt(sorted(map(str, extra)))}; use warn_pct and "
                              "fail_pct (percent of the reference).")
     out = {}
     for k in ("warn_pct", "fail_pct"):
@@ -114,7 +114,7 @@ def _limits(obj: Any, where: str) -> dict[str, float]:
         v = obj[k]
         if isinstance(v, bool) or not isinstance(v, (int, float)) or not math.isfinite(v) \
                 or v < 0:
-            raise RelaxlineError(f"{where}: '{k}' must be a non-negative number, got {v!r}.")
+            raise RelaxlineError(f"{where}: '{k}' must be a non-negative number, got {excerpt(v)}.")
         out[k] = float(v)
     if out["warn_pct"] > out["fail_pct"]:
         raise RelaxlineError(f"{where}: warn_pct ({out['warn_pct']:g}) is larger than fail_pct "
@@ -126,7 +126,7 @@ def _limits(obj: Any, where: str) -> dict[str, float]:
 def _maps_block(obj: Any, where: str) -> dict[str, dict[str, float]]:
     if not isinstance(obj, Mapping):
         raise RelaxlineError(f"{where}: expected a mapping of map names ({', '.join(KNOWN_MAPS)})"
-                             f" to tolerances, got {obj!r}.")
+                             f" to tolerances, got {excerpt(obj)}.")
     out = {}
     for name, lim in obj.items():
         if name not in KNOWN_MAPS:
@@ -139,10 +139,10 @@ def _maps_block(obj: Any, where: str) -> dict[str, dict[str, float]]:
 def _range(obj: Any, map_name: str, where: str) -> tuple[float, float]:
     if isinstance(obj, (str, bytes)) or not isinstance(obj, (list, tuple)) or len(obj) != 2:
         raise RelaxlineError(f"{where}: expected a list [low, high] of two numbers in the "
-                             f"map's units, got {obj!r}.")
+                             f"map's units, got {excerpt(obj)}.")
     for v in obj:
         if isinstance(v, bool) or not isinstance(v, (int, float)) or not math.isfinite(v):
-            raise RelaxlineError(f"{where}: {v!r} is not a number; give [low, high] as two "
+            raise RelaxlineError(f"{where}: {excerpt(v)} is not a number; give [low, high] as two "
                                  "numbers (no units, dot as decimal separator).")
     low, high = float(obj[0]), float(obj[1])
     if low >= high:
@@ -160,7 +160,7 @@ def _range(obj: Any, map_name: str, where: str) -> tuple[float, float]:
 def _ranges_block(obj: Any, source: str) -> dict[int, dict[str, tuple[float, float]]]:
     if not isinstance(obj, Mapping):
         raise RelaxlineError(f"{source}: ranges: expected a mapping of region labels to "
-                             f"{{map: [low, high]}}, got {obj!r}.")
+                             f"{{map: [low, high]}}, got {excerpt(obj)}.")
     out: dict[int, dict[str, tuple[float, float]]] = {}
     for lab, block in obj.items():
         where = f"{source}: ranges.{lab}"
@@ -169,11 +169,11 @@ def _ranges_block(obj: Any, source: str) -> dict[int, dict[str, tuple[float, flo
         except (TypeError, ValueError):
             ilab = 0
         if ilab <= 0 or str(ilab) != str(lab).strip():
-            raise RelaxlineError(f"{source}: ranges: key {lab!r} is not a region label (a "
+            raise RelaxlineError(f"{source}: ranges: key {excerpt(lab)} is not a region label (a "
                                  "positive integer of the label map).")
         if not isinstance(block, Mapping):
             raise RelaxlineError(f"{where}: expected a mapping of map names "
-                                 f"({', '.join(RANGE_MAPS)}) to [low, high], got {block!r}.")
+                                 f"({', '.join(RANGE_MAPS)}) to [low, high], got {excerpt(block)}.")
         for name, r in block.items():
             if name not in RANGE_MAPS:
                 raise RelaxlineError(f"{where}: unknown map '{name}'; expected one of "
@@ -192,21 +192,18 @@ def load_tolerances(config: Mapping[str, Any] | str | Path | None = None) -> Tol
         return Tolerances()
     source = "config"
     if isinstance(config, (str, Path)):
-        import yaml
+        from qc.userfiles import read_yaml
         p = Path(config)
         if not p.is_file():
             raise RelaxlineError(f"{p}: QC config not found.")
-        try:
-            config = yaml.safe_load(p.read_text(encoding="utf-8")) or {}
-        except yaml.YAMLError as exc:
-            raise RelaxlineError(f"{p}: not valid YAML ({exc}).") from None
+        config = read_yaml(p, "QC config") or {}
         source = str(p)
     if not isinstance(config, Mapping):
         raise RelaxlineError(f"{source}: expected a mapping with {list(CONFIG_KEYS)}, got "
                              f"{type(config).__name__}.")
     extra = set(config) - set(CONFIG_KEYS)
     if extra:
-        raise RelaxlineError(f"{source}: unknown key(s) {sorted(map(str, extra))}; expected "
+        raise RelaxlineError(f"{source}: unknown key(s) {excerpt(sorted(map(str, extra)))}; expected "
                              f"{list(CONFIG_KEYS)}.")
     tol = Tolerances(source=source)
     tol.maps.update(_maps_block(config.get("maps") or {}, f"{source}: maps"))
@@ -214,20 +211,19 @@ def load_tolerances(config: Mapping[str, Any] | str | Path | None = None) -> Tol
         try:
             ilab = int(lab)
         except (TypeError, ValueError):
-            raise RelaxlineError(f"{source}: vials: key {lab!r} is not a vial label "
+            raise RelaxlineError(f"{source}: vials: key {excerpt(lab)} is not a vial label "
                                  "(a positive integer).") from None
         tol.vials[ilab] = _maps_block(block, f"{source}: vials.{lab}")
     t = config.get("temperature")
     if t is not None:
-        if isinstance(t, bool) or not isinstance(t, (int, float)) or not math.isfinite(t):
-            raise RelaxlineError(f"{source}: 'temperature' must be a number in °C, got {t!r}.")
-        tol.temperature = float(t)
+        from qc.reference import check_temperature
+        tol.temperature = check_temperature(t, f"{source}: 'temperature'")
     tol.ranges = _ranges_block(config.get("ranges") or {}, source)
     m = config.get("range_warn_margin_pct")
     if m is not None:
         if isinstance(m, bool) or not isinstance(m, (int, float)) or not 0 <= m < 50:
             raise RelaxlineError(f"{source}: 'range_warn_margin_pct' must be a number from 0 "
                                  f"up to (not including) 50 (percent of the range width), "
-                                 f"got {m!r}.")
+                                 f"got {excerpt(m)}.")
         tol.range_warn_margin_pct = float(m)
     return tol

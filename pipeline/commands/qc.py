@@ -78,10 +78,10 @@ def run(args: argparse.Namespace) -> int:
     import math
 
     from pipeline.errors import InputError
-    from pipeline.qcjob import labels_from_file, run_qc
+    from pipeline.qcjob import _temperature, labels_from_file, run_qc
 
-    if args.temperature is not None and not math.isfinite(args.temperature):
-        raise InputError(f"--temperature must be a finite number in °C, got {args.temperature}.")
+    if args.temperature is not None:   # checked before any file is read
+        _temperature(args.temperature, "--temperature")
     if not math.isfinite(args.erode) or args.erode < 0:
         raise InputError(f"--erode must be a non-negative margin in mm, got {args.erode}.")
     options = dict(reference_path=args.reference, config=args.config,
@@ -91,7 +91,7 @@ def run(args: argparse.Namespace) -> int:
         if args.layout is not None:
             print("relaxline qc: note: --labels given, so --layout is not used.")
         result = run_qc(args.maps_dir, args.out, labels_from_file(args.labels),
-                        labels_desc=str(args.labels), **options)
+                        labels_desc=str(args.labels), inputs=[args.labels], **options)
     elif args.layout is not None:   # vials placed automatically (issue 9)
         import sys
 

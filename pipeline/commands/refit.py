@@ -100,23 +100,21 @@ def parse_voxel(text: str, shape) -> tuple[int, int, int]:
 def select_region(args: argparse.Namespace, series):
     """(boolean mask over the grid, region description for the report)."""
     import numpy as np
-    from pipeline.series import load_grid_map
+    from pipeline.series import load_label_map
     shape = tuple(series.shape[:3])
     sel = np.zeros(shape, bool)
     if args.label_map:
         if args.label is None:
             raise InputError("--label-map needs --label N (the label value of the region).")
-        labels = load_grid_map(args.label_map, series, what="label map")
-        fin = labels[np.isfinite(labels)]
-        if np.any(fin != np.round(fin)):
-            odd = np.unique(fin[fin != np.round(fin)])[:5]
-            raise InputError(f"--label-map {args.label_map}: labels must be whole numbers, found "
-                             f"{', '.join(f'{v:g}' for v in odd)}; give a label map (integer "
-                             f"labels), not a probability or resampled map.")
-        sel = np.isclose(labels, args.label) & np.isfinite(labels)
+        if args.label <= 0:
+            raise InputError(f"--label {args.label}: label 0 is the background of a label map "
+                             "(and labels are never negative); give the label of a region "
+                             "(1, 2, ...).")
+        labels = load_label_map(args.label_map, series, what="label map")
+        sel = labels == args.label
         if not sel.any():
-            present = np.unique(labels[np.isfinite(labels) & (labels != 0)])
-            shown = ", ".join(f"{v:g}" for v in present[:30]) or "none"
+            present = np.unique(labels[labels != 0])
+            shown = ", ".join(str(v) for v in present[:30]) or "none"
             raise InputError(f"--label {args.label}: label absent from {args.label_map} "
                              f"(labels present: {shown}); choose one of those.")
         region = {"kind": "label", "label_map": str(args.label_map), "label": int(args.label)}
@@ -296,16 +294,19 @@ def run(args: argparse.Namespace) -> int:
     from fitting.region import DELTA_CLEAR, DELTA_STRONG, REDCHI_P_WARN, alternatives, \
         fit_region
     from fitting.spec import configure_model, t1_map_models
-    from pipeline.fitjob import acquisition, check_model_options, estimate_noise, load_b1, \
-        prepare
+    from pipeline.fitjob import acquisition, check_model_options, estimate_noise, input_files, \
+        load_b1, prepare
     from pipeline import profiles
     from pipeline.t1map import check_t1_map_model, load_t1_map, t1_values
-    from pipeline.outputs import atomic_write_bytes
+    from pipeline.outputs import atomic_write_bytes, refuse_overwriting_inputs
 
     spec, series, _ = prepare(args.model, args.inputs, args.time_unit)
     options = {"b1_map": str(args.b1) if args.b1 else None, "noise": args.noise,
                "t1_map": str(args.t1_map) if args.t1_map else None,
                "t1_fixed": args.t1_fixed, "slice_profile": args.slice_profile}
+    if args.plot:
+        refuse_overwriting_inputs([*input_files(series, options), args.label_map],
+                                  [Path(args.plot)], "`relaxline refit --plot`")
     check_model_options(args.model, options)
     if args.slice_profile:
         profiles.check_spec(args.slice_profile)
