@@ -15,16 +15,26 @@ database on a node-local or properly locking shared disk (not plain NFS).
 Schema versions: 1 had no ``model`` column (the key lacked it); opening such a file
 migrates it in one transaction (:func:`migrate`), taking each row's model from the
 ``model:`` prefix of its series key and keeping every row.
+
+The database is checked (``PRAGMA quick_check``) every time it is opened, and a damaged,
+truncated or foreign file is refused with an error that names it and the way back
+(:func:`check_database`); it is never silently replaced by an empty history. Before each
+session is recorded (and before a migration), a copy of the checked database is kept
+(``<name>.backup-1``, the newest, to ``<name>.backup-3``), so a damaged file never costs
+the history.
 """
 from __future__ import annotations
 
+import os
 import sqlite3
 from datetime import datetime, timezone
 from pathlib import Path
+from urllib.parse import quote
+
 import numpy as np
 import pandas as pd
 
-from fitting.errors import RelaxlineError
+from fitting.errors import RelaxlineError, excerpt, no_space_error
 
 KEY = ("site", "scanner", "session", "model", "series", "map", "label")
 # roi_stats.tsv columns kept in the history (design §6), after the key.
@@ -37,6 +47,8 @@ _TEXT = {"site", "scanner", "session", "model", "series", "map", "name", "units"
 _INT = {"label", "n_voxels"}
 SCHEMA_VERSION = 2
 BUSY_TIMEOUT_MS = 120_000
+BACKUPS = 3                      # copies kept: <name>.backup-1 (newest) .. -3
+SQLITE_MAGIC = b"SQLite format 3\x00"
 
 
 def _sql_type(col: str) -> str:
@@ -59,11 +71,118 @@ CREATE TABLE IF NOT EXISTS meta (key TEXT PRIMARY KEY, value TEXT);
 """
 
 
-def connect(path: str | Path) -> sqlite3.Connection:
-    """Open (creating if needed) the history database in WAL mode."""
-    path = Path(path)
+def backup_paths(db: str | Path) -> list[Path]:
+    """The backup copies of ``db``, newest first (they may not exist)."""
+    db = Path(db)
+    return [db.with_name(f"{db.name}.backup-{i}") for i in range(1, BACKUPS + 1)]
+
+
+def _problem(path: Path) -> str | None:
+    """Why ``path`` is not a usable history database (None: it is, or it does not exist)."""
+    if path.is_dir():
+        return "it is a folder; `history.database` must name a file"
+    if not path.exists():
+        return None
     try:
-        path.parent.mkdir(parents=True, exist_ok=True)
+        with open(path, "rb") as fh:
+            head = fh.read(len(SQLITE_MAGIC))
+    except OSError as exc:
+        return f"it cannot be read ({exc.strerror})"
+    if not head:
+        return "it is empty (0 bytes): a history database is never empty, so it was cut short"
+    if head != SQLITE_MAGIC:
+        return f"it is not an SQLite database (it starts with {excerpt(head[:16])})"
+    try:
+        conn = sqlite3.connect(f"file:{quote(str(path.resolve()))}?mode=rw", uri=True,
+                               timeout=BUSY_TIMEOUT_MS / 1000)
+    except sqlite3.Error as exc:
+        return f"it cannot be opened ({exc})"
+    try:
+        rows = [r[0] for r in conn.execute("PRAGMA quick_check").fetchall()]
+        if rows != ["ok"]:
+            found = "; ".join(r.replace("\n", "; ") for r in rows)
+            return f"SQLite's integrity check fails ({excerpt(found, 200)})"
+        tables = {r[0] for r in conn.execute("SELECT name FROM sqlite_master WHERE type='table'")}
+    except sqlite3.Error as exc:
+        return f"SQLite cannot read it ({exc})"
+    finally:
+        conn.close()
+    if tables and "roi_history" not in tables:
+        return (f"it is an SQLite database but not a relaxline history (its tables are "
+                f"{excerpt(sorted(tables))})")
+    return None
+
+
+def _last_good_backup(path: Path) -> Path | None:
+    for b in backup_paths(path):
+        if b.is_file() and _problem(b) is None:
+            return b
+    return None
+
+
+def check_database(path: str | Path) -> None:
+    """Raise :class:`RelaxlineError` unless ``path`` is a sound history database (or absent).
+
+    The message names the file, what is wrong with it, and how to recover: the newest
+    backup that passes the check, if there is one.
+    """
+    path = Path(path)
+    why = _problem(path)
+    if why is None:
+        return
+    good = _last_good_backup(path)
+    if good is not None:
+        when = datetime.fromtimestamp(good.stat().st_mtime, timezone.utc)
+        way = (f"The last good copy is {good} (made {when:%Y-%m-%d %H:%M} UTC, before a "
+               f"session was recorded). To recover: move {path.name} aside, copy that backup "
+               f"to {path}, and rerun the workflow with `relaxline run --config <config> "
+               "--forcerun record` so that the sessions recorded since are recorded again.")
+    else:
+        way = ("There is no backup beside it. If it holds the history of earlier runs, "
+               "restore it from your own backups; if the path is wrong, point "
+               "`history.database` in the config at the right file; to start a new history, "
+               "move this file aside.")
+    raise RelaxlineError(f"{path}: cannot be used as the history database: {why}. It was "
+                         f"left unchanged. {way}")
+
+
+def _create(path: Path) -> None:
+    """Create an empty history database at ``path`` all at once (never a 0-byte file)."""
+    path.parent.mkdir(parents=True, exist_ok=True)
+    tmp = path.with_name(f".{path.name}.new-{os.getpid()}.tmp")
+    try:
+        conn = sqlite3.connect(str(tmp), isolation_level=None)
+        try:
+            conn.execute("PRAGMA journal_mode=WAL")
+            conn.executescript(_CREATE)
+            conn.execute("INSERT OR IGNORE INTO meta VALUES ('schema_version', ?)",
+                         (str(SCHEMA_VERSION),))
+        finally:
+            conn.close()
+        try:
+            os.link(tmp, path)        # atomic, and never replaces one made meanwhile
+        except FileExistsError:
+            pass
+    finally:
+        for p in (tmp, Path(f"{tmp}-wal"), Path(f"{tmp}-shm")):
+            try:
+                p.unlink()
+            except FileNotFoundError:
+                pass
+
+
+def _disk_full(exc: BaseException) -> bool:
+    return isinstance(exc, sqlite3.OperationalError) and "full" in str(exc) or \
+        isinstance(exc, OSError) and exc.errno in (28, 122)   # ENOSPC, EDQUOT
+
+
+def connect(path: str | Path) -> sqlite3.Connection:
+    """Open (creating if needed) the history database in WAL mode, after checking it."""
+    path = Path(path)
+    check_database(path)
+    try:
+        if not path.exists():
+            _create(path)
         conn = sqlite3.connect(str(path), timeout=BUSY_TIMEOUT_MS / 1000,
                                isolation_level=None)  # explicit BEGIN/COMMIT below
         conn.execute(f"PRAGMA busy_timeout={BUSY_TIMEOUT_MS}")
@@ -76,8 +195,10 @@ def connect(path: str | Path) -> sqlite3.Connection:
             conn.execute("INSERT OR IGNORE INTO meta VALUES ('schema_version', ?)",
                          (str(SCHEMA_VERSION),))
         else:
-            migrate(conn)
-    except sqlite3.DatabaseError as exc:
+            migrate(conn, backup_of=path)
+    except (sqlite3.DatabaseError, OSError) as exc:
+        if _disk_full(exc):
+            raise no_space_error(path.parent) from None
         raise RelaxlineError(f"{path}: cannot open the history database ({exc}). If it is "
                              "not a relaxline history file, point `history.database` in the "
                              "config elsewhere.") from None
@@ -94,14 +215,14 @@ def model_of_series(series: str) -> str:
     return series.split(":", 1)[0] if ":" in series else ""
 
 
-def migrate(conn: sqlite3.Connection) -> int:
+def migrate(conn: sqlite3.Connection, backup_of: Path | None = None) -> int:
     """Bring an older history database to :data:`SCHEMA_VERSION`, keeping every row.
 
     Version 1 lacked the ``model`` column (and ``units``, ``temperature_source``). The
     table is rebuilt with the new key in one transaction: rows are copied with the model
     taken from the series key's ``model:`` prefix; the row count is checked before the
-    commit, so a failure leaves the old table untouched. Returns the rows migrated (0 when
-    already current).
+    commit, so a failure leaves the old table untouched; ``backup_of``: the database file,
+    copied first (:func:`_backup`). Returns the rows migrated (0 when already current).
     """
     cols = [r[1] for r in conn.execute("PRAGMA table_info(roi_history)")]
     if "model" in cols:
@@ -112,6 +233,8 @@ def migrate(conn: sqlite3.Connection) -> int:
         if "model" in cols:   # another process migrated it meanwhile
             conn.execute("ROLLBACK")
             return 0
+        if backup_of is not None:
+            _backup(backup_of)
         n = conn.execute("SELECT COUNT(*) FROM roi_history").fetchone()[0]
         conn.execute("DROP TABLE IF EXISTS roi_history_new")
         conn.execute(_table_sql("roi_history_new"))
@@ -132,6 +255,35 @@ def migrate(conn: sqlite3.Connection) -> int:
         conn.execute("ROLLBACK")
         raise
     return n
+
+
+def _backup(db: Path) -> None:
+    """Copy the (checked) database to ``<name>.backup-1``, shifting older copies along.
+
+    Called while the recording connection holds the write lock (and has changed nothing), so backups of
+    concurrent writers never interleave; the copy is read through a second connection
+    (WAL lets it read beside the writer) and is complete before it takes a backup name.
+    """
+    tmp = db.with_name(f".{db.name}.backup.tmp")
+    try:
+        src = sqlite3.connect(str(db), timeout=BUSY_TIMEOUT_MS / 1000)
+        dst = sqlite3.connect(str(tmp))
+        try:
+            src.backup(dst)
+        finally:
+            dst.close()
+            src.close()
+        names = backup_paths(db)
+        for older, newer in zip(reversed(names[1:]), reversed(names[:-1])):
+            if newer.exists():
+                os.replace(newer, older)
+        os.replace(tmp, names[0])
+    except BaseException:
+        try:
+            tmp.unlink()
+        except FileNotFoundError:
+            pass
+        raise
 
 
 def _rows(df: pd.DataFrame, site: str, scanner: str, session: str, subject: str | None,
@@ -189,6 +341,7 @@ def record_session(db: str | Path, stats: pd.DataFrame, *, site: str, scanner: s
     try:
         conn.execute("BEGIN IMMEDIATE")  # take the write lock now, not halfway through
         try:
+            _backup(Path(db))     # the last good copy, before anything changes
             conn.execute("DELETE FROM roi_history WHERE site=? AND scanner=? AND session=?",
                          (site, scanner, session))
             conn.executemany(f"INSERT INTO roi_history ({', '.join(COLUMNS)}) VALUES "
@@ -196,8 +349,11 @@ def record_session(db: str | Path, stats: pd.DataFrame, *, site: str, scanner: s
             conn.execute("INSERT OR REPLACE INTO sessions VALUES (?, ?, ?, ?, ?, ?, ?)",
                          (site, scanner, session, subject, source, len(rows), when))
             conn.execute("COMMIT")
-        except BaseException:
-            conn.execute("ROLLBACK")
+        except BaseException as exc:
+            if conn.in_transaction:   # SQLite may already have rolled back (disk full)
+                conn.execute("ROLLBACK")
+            if _disk_full(exc):
+                raise no_space_error(Path(db).parent) from None
             raise
     finally:
         conn.close()
