@@ -9,11 +9,11 @@ where BIDS puts B1 mapping series such as ``TB1DAM``).
 from __future__ import annotations
 
 import fnmatch
-import json
 import re
 from dataclasses import dataclass, field
 from pathlib import Path
 
+from fitting.errors import excerpt
 from pipeline.errors import InputError
 
 MANIFEST = "{sub}/{ses}/fits/{model}/{stem}.fit.json"   # maps: {sub}/{ses}/anat|fmap/
@@ -65,6 +65,7 @@ class Session:
 @dataclass
 class Plan:
     sessions: list[Session]
+    skipped: list[str] = field(default_factory=list)   # warnings: files or folders left out
 
     def session(self, sub: str, ses: str) -> Session:
         for s in self.sessions:
@@ -115,21 +116,48 @@ SCANNER_KEYS = ("Scanner", "StationName")
 
 
 def _site_scanner(files: list[Path], cfg: dict) -> tuple[str, str]:
+    from pipeline.series import read_json_file
     for side in files:
         if side.suffix != ".json":
             continue
         try:
-            meta = json.loads(side.read_text(encoding="utf-8"))
-        except (OSError, ValueError):
+            meta = read_json_file(side)
+        except InputError:   # a broken sidecar is reported by the fit that reads it
             continue
         if not isinstance(meta, dict):
             continue
-        site = next((meta[k] for k in SITE_KEYS if meta.get(k)), None)
-        scanner = next((meta[k] for k in SCANNER_KEYS if meta.get(k)), None)
+        site = next((k for k in SITE_KEYS if meta.get(k)), None)
+        scanner = next((k for k in SCANNER_KEYS if meta.get(k)), None)
         if site is not None or scanner is not None:
-            return (str(site or cfg["history"]["site"]),
-                    str(scanner or cfg["history"]["scanner"]))
+            return (_identity(meta, site, side) if site else cfg["history"]["site"],
+                    _identity(meta, scanner, side) if scanner else cfg["history"]["scanner"])
     return cfg["history"]["site"], cfg["history"]["scanner"]
+
+
+def _identity(meta: dict, key: str, side: Path) -> str:
+    """A sidecar's site or scanner name: a short text label (it keys the history)."""
+    v = meta[key]
+    if isinstance(v, int) and not isinstance(v, bool):
+        v = str(v)
+    if not isinstance(v, str) or not v.strip() or len(v) > 200 or not v.isprintable():
+        what = "site" if key in SITE_KEYS else "scanner"
+        raise InputError(f"{side}: key '{key}' must be a short text label naming the {what} "
+                         f"(it keys the history database), got {excerpt(v)}; fix the "
+                         "sidecar.")
+    return v.strip()
+
+
+# characters Snakemake reads as wildcard braces in file names; such a file cannot be a job input
+_UNUSABLE = re.compile(r"[{}]")
+
+
+def _usable(path: Path, skipped: list[str]) -> bool:
+    if _UNUSABLE.search(path.name):
+        skipped.append(f"{path}: skipped; its name holds '{{' or '}}', which the workflow "
+                       "cannot use in a file name (Snakemake patterns). Rename it to process "
+                       "it.")
+        return False
+    return True
 
 
 def datatypes(cfg: dict) -> list[str]:
@@ -154,15 +182,13 @@ def session_temperatures(sub_dir: Path, column: str) -> tuple[dict[str, float], 
         return {}, ""
     side = tsv.with_suffix(".json")
     if side.is_file():
-        try:
-            meta = json.loads(side.read_text(encoding="utf-8"))
-        except (OSError, UnicodeDecodeError, ValueError) as exc:
-            raise InputError(f"{side}: not a readable JSON sidecar ({exc}).") from None
+        from pipeline.series import read_json_file
+        meta = read_json_file(side, "sessions file's JSON sidecar")
         units = (meta.get(column) or {}).get("Units") if isinstance(meta, dict) and \
             isinstance(meta.get(column), dict) else None
         if units is not None and str(units).replace("°", "deg").lower() not in \
                 ("oc", "degc", "degree celsius", "degrees celsius", "celsius", "c"):
-            raise InputError(f"{side}: key `{column}.Units` is {units!r}; the phantom "
+            raise InputError(f"{side}: key `{column}.Units` is {excerpt(units)}; the phantom "
                              "temperature column must be in degrees Celsius (\"oC\", as BIDS writes it).")
     try:
         with tsv.open(encoding="utf-8", newline="") as fh:
@@ -184,7 +210,7 @@ def session_temperatures(sub_dir: Path, column: str) -> tuple[dict[str, float], 
         except ValueError:
             t = float("nan")
         if not (-20.0 <= t <= 60.0):
-            raise InputError(f"{tsv}: line {i}, column `{column}`: {text!r} is not a phantom "
+            raise InputError(f"{tsv}: line {i}, column `{column}`: {excerpt(text)} is not a phantom "
                              "temperature in °C (expected a number from -20 to 60, or n/a "
                              "when not measured).")
         out[str(r["session_id"]).strip()] = t
@@ -197,17 +223,21 @@ def plan(cfg: dict) -> Plan:
     d = cfg["discovery"]
     root = Path(cfg["input_dir"])
     only = set(d.get("sessions") or [])
-    sessions = []
+    sessions, skipped = [], []
     column = cfg["phantom"]["temperature_column"]
     for sub_dir in sorted(p for p in root.glob(d["subject_glob"]) if p.is_dir()):
+        if not _usable(sub_dir, skipped):
+            continue
         temps, temps_file = session_temperatures(sub_dir, column)
         for ses_dir in sorted(p for p in sub_dir.glob(d["session_glob"]) if p.is_dir()):
             if only and ses_dir.name not in only:
                 continue
             folders = [ses_dir / t for t in datatypes(cfg) if (ses_dir / t).is_dir()]
-            if not folders:
+            if not _usable(ses_dir, skipped) or not folders:
                 continue
             names = sorted(p for f in folders for p in f.iterdir() if p.is_file())
+            names = [p for p in names if not fnmatch.fnmatch(p.name, "*.nii*")
+                     or _usable(p, skipped)]
             labels = [p for p in names if fnmatch.fnmatch(p.name, cfg["phantom"]["labels"])]
             if len(labels) > 1:
                 raise InputError(f"{ses_dir}: {len(labels)} files match the label pattern "
@@ -232,4 +262,4 @@ def plan(cfg: dict) -> Plan:
                                               [str(p) for p in group], shape, slabs))
             if s.series:
                 sessions.append(s)
-    return Plan(sessions)
+    return Plan(sessions, skipped)

@@ -9,6 +9,7 @@ import copy
 import re
 from pathlib import Path
 
+from fitting.errors import excerpt, shorten_message
 from pipeline.errors import InputError
 
 SCHEMA = Path(__file__).with_name("schemas") / "config.schema.yaml"
@@ -26,21 +27,16 @@ def _schema() -> dict:
 
 def read_config(path: str | Path) -> dict:
     """Read a YAML config file (errors name the file and line)."""
-    import yaml
+    from fitting.errors import RelaxlineError
+    from qc.userfiles import read_yaml
     p = Path(path)
     if not p.is_file():
         raise InputError(f"{p}: config file not found; copy sample_config/config.yaml and "
                          "edit it, or give --config.")
     try:
-        cfg = yaml.safe_load(p.read_text(encoding="utf-8"))
-    except UnicodeDecodeError:
-        raise InputError(f"{p}: not UTF-8 text; a config is a YAML text file (see "
-                         "sample_config/config.yaml).") from None
-    except yaml.YAMLError as exc:
-        mark = getattr(exc, "problem_mark", None)
-        where = f" (line {mark.line + 1}, column {mark.column + 1})" if mark else ""
-        raise InputError(f"{p}: not valid YAML{where}: {getattr(exc, 'problem', exc)}.") \
-            from None
+        cfg = read_yaml(p, "config")
+    except RelaxlineError as exc:
+        raise InputError(f"{exc} See sample_config/config.yaml.") from None
     if not isinstance(cfg, dict):
         raise InputError(f"{p}: expected a mapping of config keys, got {type(cfg).__name__}.")
     return cfg
@@ -64,7 +60,8 @@ def validate_config(cfg: dict, source: str = "config") -> dict:
                                                                 list(map(str, e.absolute_path))))
     if errors:
         e = errors[0]
-        msg = e.message
+        # quote the offending value only in part: it may be huge (aliases, pasted data)
+        msg = shorten_message(e.message.replace(repr(e.instance), excerpt(e.instance)), 300)
         if e.validator == "propertyNames":
             msg = f"unknown name: {msg}"
         if e.validator == "required":
@@ -136,10 +133,12 @@ def resolve_paths(cfg: dict, base: str | Path | None = None) -> dict:
 
 
 def check_paths(cfg: dict, source: str = "config", create_input: bool = False) -> None:
-    """Paths the config names must exist (before any job runs).
+    """Paths the config names must exist, and the files they name must be valid, before any
+    job runs (hours of fitting must not end in a typo in the reference table).
 
     A missing ``input_dir`` is created when DICOM conversion fills it (a ``dicom.drop_dir``
     is configured, or ``create_input``)."""
+    from fitting.errors import RelaxlineError
     drop = cfg.get("dicom", {}).get("drop_dir")
     if drop and not Path(drop).is_dir():
         raise InputError(f"{source}: key `dicom.drop_dir`: folder {drop} not found; point it "
@@ -150,18 +149,52 @@ def check_paths(cfg: dict, source: str = "config", create_input: bool = False) -
     if not Path(cfg["input_dir"]).is_dir():
         raise InputError(f"{source}: key `input_dir`: folder {cfg['input_dir']} not found; "
                          "point it at the tree holding the sub-*/ses-* folders.")
+    out = Path(cfg["output_dir"])
+    if out.exists() and not out.is_dir():
+        raise InputError(f"{source}: key `output_dir`: {out}: exists and is not a folder; "
+                         "give a folder for the results (a new one is created).")
+    ph = cfg.get("phantom", {})
     for k in ("reference", "tolerances", "layout"):
-        p = cfg.get("phantom", {}).get(k)
+        p = ph.get(k)
         if p and not Path(p).is_file():
             raise InputError(f"{source}: key `phantom.{k}`: file {p} not found.")
-    tol = cfg.get("phantom", {}).get("tolerances")
-    if tol:   # tolerances and ranges checked now, not after hours of fitting
-        from fitting.errors import RelaxlineError
-        from qc.tolerance import load_tolerances
+    checks = {"phantom.reference": (ph.get("reference"), _check_reference),
+              "phantom.tolerances": (ph.get("tolerances"), _check_tolerances),
+              "phantom.layout": (ph.get("layout"), _check_layout),
+              "history.database": (cfg["history"]["database"], _check_database)}
+    for key, (path, check) in checks.items():
+        if not path:
+            continue
         try:
-            load_tolerances(tol)
+            check(path)
         except RelaxlineError as exc:
-            raise InputError(f"{source}: key `phantom.tolerances`: {exc}") from None
+            raise InputError(f"{source}: key `{key}`: {exc}") from None
+
+
+def _check_reference(path: str) -> None:
+    from qc.reference import Reference
+    Reference.load(path)
+
+
+def _check_tolerances(path: str) -> None:
+    from qc.tolerance import load_tolerances
+    load_tolerances(path)
+
+
+def _check_layout(path: str) -> None:
+    from qc.layout import read_layout
+    read_layout(path)
+
+
+def _check_database(path: str) -> None:
+    from qc.history import check_database
+    parent = Path(path).parent
+    while not parent.exists():
+        parent = parent.parent
+    if not parent.is_dir():
+        raise InputError(f"{parent} is a file, so the history database {path} cannot be "
+                         "created below it; point `history.database` elsewhere.")
+    check_database(path)
 
 
 def load(path: str | Path | None = None, cfg: dict | None = None,

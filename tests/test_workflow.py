@@ -36,7 +36,7 @@ SAMPLE = ROOT / "sample_config" / "config.yaml"
 def _cfg(tmp_path: Path, **over) -> dict:
     (tmp_path / "in").mkdir(exist_ok=True)
     ref = tmp_path / "ref.tsv"
-    ref.write_text("label\tname\tT1\n1\ta\t1.0\n")
+    ref.write_text("label\tname\tT1\ttemperature\n1\ta\t1.0\t20\n")
     cfg = {"input_dir": "in", "output_dir": "out",
            "models": {"ir": {"pattern": "*_IRT1.nii.gz"}},
            "phantom": {"reference": "ref.tsv"}}
