@@ -36,7 +36,9 @@ from typing import Any, Sequence
 
 import numpy as np
 
-from pipeline.errors import EXIT_OK, EXIT_QC_FAIL, InputError
+from fitting.errors import shorten_message
+from pipeline.errors import EXIT_OK, EXIT_QC_FAIL, InputError, RelaxlineError
+from pipeline.runlock import hold_for_job
 # configuration and discovery live in their own modules; the rules reach them through here
 from pipeline.sessions import (CHUNK, MANIFEST, Plan, SeriesJob, Session, datatypes,  # noqa: F401
                                plan, slab_bounds)
@@ -188,7 +190,7 @@ def step_qc(settings: dict, manifests: Sequence[str], out: str) -> None:
         options["model"] = model
         if s["labels"]:
             res = run_qc(maps_dir, qc_root / model, labels_from_file(s["labels"]),
-                         labels_desc=s["labels"], **options)
+                         labels_desc=s["labels"], inputs=[s["labels"]], **options)
         else:
             try:
                 res = run_qc_with_layout(maps_dir, qc_root / model, s["layout"],
@@ -387,6 +389,7 @@ def main(argv: Sequence[str] | None = None) -> int:
         p.add_argument("--inputs", nargs="*", default=[])
         p.add_argument("--out", nargs="+", required=True)
     a = ap.parse_args(argv)
+    hold_for_job()   # a killed Snakemake's jobs still keep new runs out (pipeline.runlock)
     try:
         if a.step == "fit":
             step_fit(a.model, a.inputs, a.out, a.manifest, a.b1_manifest, a.engine, a.threads,
@@ -402,8 +405,9 @@ def main(argv: Sequence[str] | None = None) -> int:
                 step_record(settings["database"], a.inputs[0], a.out[0])
             else:
                 step_report(settings, a.inputs, *a.out)
-    except InputError as exc:
-        print(f"relaxline workflow {a.step}: error: {exc}", file=sys.stderr)
+    except RelaxlineError as exc:
+        print(f"relaxline workflow {a.step}: error: {shorten_message(str(exc))}",
+              file=sys.stderr)
         return 2
     return 0
 

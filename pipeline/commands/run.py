@@ -39,11 +39,6 @@ rejection in the newest session of a site/scanner (verdict FAIL or DRIFT REJECTI
 status.json and the report's headline); 2 bad config or input (checked before any job
 runs) or a failed job."""
 PASSTHROUGH = True
-# Snakemake options after which status.json does not describe this run's result
-_NO_STATUS = {"-n", "--dry-run", "--dryrun", "--lint", "--unlock", "--list-rules", "-l",
-              "--summary", "-S", "--detailed-summary", "-D", "--dag", "--rulegraph",
-              "--filegraph", "--list-changes", "--lc"}
-
 
 def add_arguments(p: argparse.ArgumentParser) -> None:
     p.add_argument("--config", metavar="F", default="config.yaml",
@@ -97,7 +92,6 @@ def run_workflow(config: str | Path, cores: int | None = None, profile: str | No
 
     ``stream``: where messages go (default: ``sys.stderr`` at call time, not at import)."""
     stream = stream or sys.stderr
-    import fcntl
     import signal
     import subprocess
 
@@ -115,27 +109,27 @@ def run_workflow(config: str | Path, cores: int | None = None, profile: str | No
         raise InputError(f"{config}: key `input_dir`: no session under {cfg['input_dir']} "
                          f"({d['subject_glob']}/{d['session_glob']}/{{{kinds}}}/) has a "
                          f"series matching any `models.*.pattern`.")
+    from pipeline import runlock
     from pipeline.bidsderiv import configured_suffixes, write_dataset_files
     from pipeline.outputs import ensure_dir, package_version
     out = ensure_dir(cfg["output_dir"])
-    # the results folder is a BIDS derivative dataset (design §6)
-    write_dataset_files(out, cfg["input_dir"], package_version(),
-                        configured_suffixes(cfg["models"]))
-    # One run per output folder at a time. The kernel drops this lock when the process
-    # dies, even on SIGKILL, so a killed run never leaves a stale lock behind; this is
-    # why Snakemake's own (file-based) lock is switched off with --nolock.
-    (out / ".snakemake").mkdir(exist_ok=True)
-    lock = open(out / ".snakemake" / "relaxline-run.lock", "w")
-    try:
-        fcntl.flock(lock, fcntl.LOCK_EX | fcntl.LOCK_NB)
-    except BlockingIOError:
-        raise InputError(f"{out}: another `relaxline run` is working in this output folder; "
-                         "wait for it to finish.") from None
+    for warning in plan.skipped:
+        print(f"relaxline run: warning: {warning}", file=stream)
+    # One run per output folder (pipeline.runlock): the lock is handed to Snakemake, so it
+    # stays held while Snakemake works even if this process is killed.
+    lock = runlock.acquire(out)
+    try:   # the results folder is a BIDS derivative dataset (design §6)
+        write_dataset_files(out, cfg["input_dir"], package_version(),
+                            configured_suffixes(cfg["models"]))
+    except BaseException:
+        lock.close()
+        raise
     cmd = snakemake_command(config, cfg, cores, profile, extra)
     print(f"relaxline run: {len(plan.sessions)} session(s), "
           f"{sum(len(s.series) for s in plan.sessions)} series; output in {out}",
           file=stream)
-    proc = subprocess.Popen(cmd)
+    proc = subprocess.Popen(cmd, pass_fds=(lock.fileno(),),
+                            env={**os.environ, runlock.FD_ENV: str(lock.fileno())})
     previous = signal.signal(signal.SIGTERM, lambda *_: proc.terminate())
     try:
         rc = proc.wait()
@@ -154,7 +148,7 @@ def run_workflow(config: str | Path, cores: int | None = None, profile: str | No
               f"above name the failing job and its log (under {out}/logs/). Fix the cause "
               "and run again: finished jobs are not repeated.", file=stream)
         return EXIT_BAD_INPUT
-    if _NO_STATUS & set(extra):
+    if runlock.READ_ONLY_OPTIONS & set(extra):
         return 0
     status, lines = workflow.run_status(out)
     for line in lines:   # one per session and model, then the verdict (what cron mails)
