@@ -158,6 +158,13 @@ def check_paths(cfg: dict, source: str = "config", create_input: bool = False) -
         p = ph.get(k)
         if p and not Path(p).is_file():
             raise InputError(f"{source}: key `phantom.{k}`: file {p} not found.")
+    for key, p in (("phantom.reference", ph.get("reference")),
+                   ("phantom.tolerances", ph.get("tolerances")),
+                   ("phantom.layout", ph.get("layout")), ("input_dir", cfg["input_dir"])):
+        if p and _written_by_workflow(Path(p), out, cfg["discovery"]):
+            raise InputError(f"{source}: key `{key}`: {p} lies where the workflow writes its "
+                             f"results in output_dir {out}, so it would be overwritten; move "
+                             "it out of output_dir (or choose another output_dir).")
     checks = {"phantom.reference": (ph.get("reference"), _check_reference),
               "phantom.tolerances": (ph.get("tolerances"), _check_tolerances),
               "phantom.layout": (ph.get("layout"), _check_layout),
@@ -169,6 +176,27 @@ def check_paths(cfg: dict, source: str = "config", create_input: bool = False) -
             check(path)
         except RelaxlineError as exc:
             raise InputError(f"{source}: key `{key}`: {exc}") from None
+
+
+# what the workflow writes in output_dir (pipeline.workflow's layout)
+_WRITTEN_TOP = {"report.html", "status.json", "trend", "logs", ".snakemake", "history.sqlite"}
+_WRITTEN_IN_SESSION = {"maps", "qc", "chunks"}
+
+
+def _written_by_workflow(path: Path, out: Path, discovery: dict) -> bool:
+    """True if ``path`` is (or lies inside) something the workflow writes in ``out``."""
+    import fnmatch
+    try:
+        rel = path.resolve().relative_to(out.resolve()).parts
+    except ValueError:
+        return False
+    if not rel:
+        return False       # input_dir = output_dir: results go beside the sessions' data
+    if rel[0] in _WRITTEN_TOP:
+        return True
+    return (len(rel) >= 3 and fnmatch.fnmatch(rel[0], discovery["subject_glob"])
+            and fnmatch.fnmatch(rel[1], discovery["session_glob"])
+            and rel[2] in _WRITTEN_IN_SESSION)
 
 
 def _check_reference(path: str) -> None:

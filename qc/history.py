@@ -92,31 +92,53 @@ def _problem(path: Path) -> str | None:
         return "it is empty (0 bytes): a history database is never empty, so it was cut short"
     if head != SQLITE_MAGIC:
         return f"it is not an SQLite database (it starts with {excerpt(head[:16])})"
+    conn = None
     try:
         conn = sqlite3.connect(f"file:{quote(str(path.resolve()))}?mode=rw", uri=True,
                                timeout=BUSY_TIMEOUT_MS / 1000)
-    except sqlite3.Error as exc:
-        return f"it cannot be opened ({exc})"
-    try:
         rows = [r[0] for r in conn.execute("PRAGMA quick_check").fetchall()]
         if rows != ["ok"]:
             found = "; ".join(r.replace("\n", "; ") for r in rows)
             return f"SQLite's integrity check fails ({excerpt(found, 200)})"
         tables = {r[0] for r in conn.execute("SELECT name FROM sqlite_master WHERE type='table'")}
     except sqlite3.Error as exc:
-        return f"SQLite cannot read it ({exc})"
+        if getattr(exc, "sqlite_errorname", "") in ("SQLITE_CORRUPT", "SQLITE_NOTADB"):
+            return f"SQLite cannot read it ({exc})"
+        raise _cannot_open(path, exc) from None   # the file may be fine: say what failed
     finally:
-        conn.close()
+        if conn is not None:
+            conn.close()
     if tables and "roi_history" not in tables:
         return (f"it is an SQLite database but not a relaxline history (its tables are "
                 f"{excerpt(sorted(tables))})")
     return None
 
 
+def _cannot_open(path: Path, exc: BaseException) -> RelaxlineError:
+    """The error for a database that cannot be opened for reasons other than its content:
+    a full disk (WAL needs room for its side files), permissions, a failing disk."""
+    if _disk_full(exc) or _free_bytes(path.parent) < 64 * 1024:
+        return no_space_error(path.parent)
+    return RelaxlineError(f"{path}: cannot open the history database ({exc}); check that "
+                          f"{path.parent} is writable and its disk healthy (SQLite writes "
+                          f"{path.name}-wal and {path.name}-shm beside it).")
+
+
+def _free_bytes(folder: Path) -> int:
+    try:
+        st = os.statvfs(folder)
+    except OSError:
+        return 1 << 62
+    return st.f_bavail * st.f_frsize
+
+
 def _last_good_backup(path: Path) -> Path | None:
     for b in backup_paths(path):
-        if b.is_file() and _problem(b) is None:
-            return b
+        try:
+            if b.is_file() and _problem(b) is None:
+                return b
+        except RelaxlineError:
+            continue
     return None
 
 
@@ -197,11 +219,7 @@ def connect(path: str | Path) -> sqlite3.Connection:
         else:
             migrate(conn, backup_of=path)
     except (sqlite3.DatabaseError, OSError) as exc:
-        if _disk_full(exc):
-            raise no_space_error(path.parent) from None
-        raise RelaxlineError(f"{path}: cannot open the history database ({exc}). If it is "
-                             "not a relaxline history file, point `history.database` in the "
-                             "config elsewhere.") from None
+        raise _cannot_open(path, exc) from None
     if str(mode).lower() != "wal":
         conn.close()
         raise RelaxlineError(f"{path}: the file system does not support SQLite's WAL mode "

@@ -8,8 +8,6 @@ output files).
 """
 from __future__ import annotations
 
-import hashlib
-import json
 import shutil
 from pathlib import Path
 from typing import Callable
@@ -18,63 +16,13 @@ import nibabel as nib
 import numpy as np
 import pytest
 
-from pipeline.cli import main
-from seriesio import combine_4d, write_3d_set, write_4d, write_json, write_nifti
-
-P = "sub-relaxlinedemo_ses-20261101_"
+from faultkit import Kit, first, run_cli, setkey, simulate_session, tree_digest
+from seriesio import write_3d_set, write_4d
 
 
 @pytest.fixture(scope="module")
 def sim(tmp_path_factory) -> Path:
-    root = tmp_path_factory.mktemp("sim")
-    assert main(["simulate", str(root), "--sessions", "1", "--slices", "1",
-                 "--matrix", "48"]) == 0
-    combine_4d(root / "sub-relaxlinedemo" / "ses-20261101")   # the 4D-with-list form
-    return root
-
-
-class Kit:
-    """Paths of the simulated session and helpers to write broken variants."""
-
-    def __init__(self, sim: Path, tmp: Path):
-        self.anat = sim / "sub-relaxlinedemo" / "ses-20261101" / "anat"
-        self.phantom = sim / "phantom"
-        self.tmp = tmp
-        self.out = tmp / "out"           # must hold no final-named file afterwards
-
-    def s(self, name: str) -> str:
-        folder = self.anat.with_name("fmap") if "TB1DAM" in name else self.anat
-        return str(folder / f"{P}{name}.nii.gz")
-
-    def grid(self, name: str = "VFA"):
-        img = nib.load(self.s(name))
-        return img.shape[:3], img.affine
-
-    def variant(self, name: str, change: Callable[[dict], dict] | None = None) -> str:
-        """Copy series ``name`` to tmp with its sidecar passed through ``change``."""
-        d = self.tmp / "in"
-        d.mkdir(exist_ok=True)
-        shutil.copy(self.s(name), d / f"{name}.nii.gz")
-        sc = json.loads(Path(self.s(name)[: -len(".nii.gz")] + ".json").read_text())
-        write_json(d / f"{name}.json", change(sc) if change else sc)
-        return str(d / f"{name}.nii.gz")
-
-    def image(self, fname: str, data, like: str = "VFA") -> str:
-        _, affine = self.grid(like)
-        return str(write_nifti(self.tmp / fname, np.asarray(data), affine))
-
-    def file(self, fname: str, text: str | bytes) -> str:
-        p = self.tmp / fname
-        p.write_bytes(text) if isinstance(text, bytes) else p.write_text(text)
-        return str(p)
-
-
-def setkey(key, value):
-    return lambda sc: {**sc, key: value}
-
-
-def first(key, value):
-    return lambda sc: {**sc, key: [value] + sc[key][1:]}
+    return simulate_session(tmp_path_factory.mktemp("sim"))
 
 
 def fit(model, *inputs, **kw):
@@ -272,11 +220,6 @@ CASES: dict[str, tuple[Callable[[Kit], list[str]], str]] = {
 }
 
 
-def _tree_digest(root: Path) -> dict[str, str]:
-    return {str(p.relative_to(root)): hashlib.sha256(p.read_bytes()).hexdigest()
-            for p in sorted(root.rglob("*")) if p.is_file()}
-
-
 @pytest.mark.parametrize("name", list(CASES))
 def test_bad_input(name, sim, tmp_path, capsys):
     kit = Kit(sim, tmp_path)
@@ -284,19 +227,14 @@ def test_bad_input(name, sim, tmp_path, capsys):
     fragment = CASES[name][1]
     if argv[0] == "fit" and "--out" not in argv:
         argv += ["--out", str(kit.out)]
-    given = _tree_digest(tmp_path)
-    sim_before = _tree_digest(sim)
-    try:
-        code = main(argv)
-    except SystemExit as exc:      # argparse usage errors
-        code = exc.code
-    err = capsys.readouterr().err
+    given = tree_digest(tmp_path)
+    sim_before = tree_digest(sim)
+    code, err = run_cli(argv, capsys)
     assert code == 2, (code, err)
     assert fragment in err, err
     assert "Traceback" not in err and "internal error" not in err
     # no output under a final name, nothing given changed or lost
     if kit.out.is_dir():
         assert not [p for p in kit.out.rglob("*") if p.is_file()]
-    assert _tree_digest(tmp_path) == given
-    assert _tree_digest(sim) == sim_before
-
+    assert tree_digest(tmp_path) == given
+    assert tree_digest(sim) == sim_before
