@@ -278,9 +278,10 @@ def migrate(conn: sqlite3.Connection, backup_of: Path | None = None) -> int:
 def _backup(db: Path) -> None:
     """Copy the (checked) database to ``<name>.backup-1``, shifting older copies along.
 
-    Called while the recording connection holds the write lock (and has changed nothing), so backups of
-    concurrent writers never interleave; the copy is read through a second connection
-    (WAL lets it read beside the writer) and is complete before it takes a backup name.
+    Called while the recording connection holds the write lock (and has changed nothing),
+    so backups of concurrent writers never interleave; the copy is read through a second
+    connection (WAL lets it read beside the writer) and is complete before it takes a
+    backup name.
     """
     tmp = db.with_name(f".{db.name}.backup.tmp")
     try:

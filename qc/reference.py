@@ -83,8 +83,8 @@ def parse_reference(text: str, source: str = "reference table") -> pd.DataFrame:
                              "' and one row per vial.")
     header = [h.strip() for h in lines[0][1].split("\t")]
     if len(header) == 1 and ("," in header[0] or " " in header[0].strip()):
-        raise RelaxlineError(f"{source}: the header has a single column ({excerpt(header[0])}); the "
-                             "reference table must be TAB-separated.")
+        raise RelaxlineError(f"{source}: the header has a single column ({excerpt(header[0])}); "
+                             "the reference table must be TAB-separated.")
     dup = sorted({h for h in header if header.count(h) > 1})
     if dup:
         raise RelaxlineError(f"{source}: column(s) {dup} appear more than once in the header.")
@@ -107,8 +107,8 @@ def parse_reference(text: str, source: str = "reference table") -> pd.DataFrame:
         try:
             label = int(raw["label"].strip())
         except ValueError:
-            raise RelaxlineError(f"{where}: column 'label' holds {excerpt(raw['label'])}; labels are "
-                                 "positive integers matching the label map.") from None
+            raise RelaxlineError(f"{where}: column 'label' holds {excerpt(raw['label'])}; labels "
+                                 "are positive integers matching the label map.") from None
         if label <= 0:
             raise RelaxlineError(f"{where}: label {label} must be a positive integer "
                                  "(0 is background in the label map).")

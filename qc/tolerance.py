@@ -105,8 +105,8 @@ def _limits(obj: Any, where: str) -> dict[str, float]:
                              f"{excerpt(obj)}.")
     extra = set(obj) - {"warn_pct", "fail_pct"}
     if extra:
-        raise RelaxlineError(f"{where}: unknown key(s) {excerpt(sorted(map(str, extra)))}; use warn_pct and "
-                             "fail_pct (percent of the reference).")
+        raise RelaxlineError(f"{where}: unknown key(s) {excerpt(sorted(map(str, extra)))}; use "
+                             "warn_pct and fail_pct (percent of the reference).")
     out = {}
     for k in ("warn_pct", "fail_pct"):
         if k not in obj:
@@ -203,8 +203,8 @@ def load_tolerances(config: Mapping[str, Any] | str | Path | None = None) -> Tol
                              f"{type(config).__name__}.")
     extra = set(config) - set(CONFIG_KEYS)
     if extra:
-        raise RelaxlineError(f"{source}: unknown key(s) {excerpt(sorted(map(str, extra)))}; expected "
-                             f"{list(CONFIG_KEYS)}.")
+        raise RelaxlineError(f"{source}: unknown key(s) {excerpt(sorted(map(str, extra)))}; "
+                             f"expected {list(CONFIG_KEYS)}.")
     tol = Tolerances(source=source)
     tol.maps.update(_maps_block(config.get("maps") or {}, f"{source}: maps"))
     for lab, block in (config.get("vials") or {}).items():

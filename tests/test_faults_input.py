@@ -283,7 +283,8 @@ def test_erosion_uses_the_affine_voxel_size(sim, maps, tmp_path, capsys):
     tables = []
     for d, o in ((maps, "good"), (bad, "zooms0")):
         code, err = run_cli(["qc", str(d), "--labels", kit.s("dseg"), "--out",
-                             str(tmp_path / o), "--erode", "5", "--no-figures"], capsys)   # 1.2 voxels
+                             str(tmp_path / o), "--erode", "5", "--no-figures"],   # 1.2 voxels
+                            capsys)
         assert code in (0, 1), err
         tables.append(pd.read_csv(tmp_path / o / "roi_stats.tsv", sep="\t"))
     good, zero = tables
