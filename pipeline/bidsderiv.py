@@ -39,7 +39,7 @@ BIDS_MAP_SUFFIXES = frozenset({
 FMAP_SUFFIXES = frozenset({"TB1map", "RB1map"})   # BIDS puts B1 maps in fmap/
 # what the workflow writes beside the BIDS data (.bidsignore lines)
 NON_BIDS = ("qc", "fits", "chunks", "logs", "trend", "report.html", "status.json",
-            "*.sqlite", "*.sqlite-wal", "*.sqlite-shm")
+            "*.sqlite", "*.sqlite-wal", "*.sqlite-shm", "*.sqlite.backup-*")
 QUANTITY = {"T1map": "longitudinal relaxation time T1 (s)",
             "T2map": "transverse relaxation time T2 (s)",
             "T2starmap": "effective transverse relaxation time T2* (s)",

@@ -120,7 +120,7 @@ def maps_copy(k: Kit, maps: Path, change: Callable[[dict], dict]) -> str:
     """A copy of the maps folder whose T2* map sidecar passes through ``change``."""
     d = k.tmp / "maps"
     shutil.copytree(maps, d)
-    side = d / f"{P}MEGRE_T2starmap.json"
+    side = d / f"{P}rec-megre_T2starmap.json"
     side.write_text(json.dumps(change(json.loads(side.read_text()))))
     return str(d)
 
@@ -174,10 +174,10 @@ CASES: dict[str, tuple[Callable[..., list[str]], str]] = {
     # ---- data loss: an input that is also an output is refused before any work
     "fit --mask is one of its outputs": (lambda k, m: fit(
         "megre", k.s("MEGRE"), out=k.out, mask=user_map(
-            k, k.out / f"{P}MEGRE_desc-fitstatus_mask.nii.gz")), "would be overwritten"),
+            k, k.out / f"{P}rec-megre_desc-fitstatus_mask.nii.gz")), "would be overwritten"),
     "fit --b1 is one of its outputs": (lambda k, m: fit(
-        "vfa", k.s("VFA"), out=k.out, b1=user_map(k, k.out / f"{P}VFA_M0map.nii.gz")),
-        "VFA_M0map.nii.gz: this input is also where `relaxline fit` writes"),
+        "vfa", k.s("VFA"), out=k.out, b1=user_map(k, k.out / f"{P}rec-vfa_M0map.nii.gz")),
+        "rec-vfa_M0map.nii.gz: this input is also where `relaxline fit` writes"),
     "qc --reference is one of its outputs": (lambda k, m: qc(k, m, reference=k.file(
         "out/roi_stats.tsv", (k.phantom / "reference.tsv").read_text())),
         "roi_stats.tsv: this input is also where `relaxline qc` writes"),
@@ -277,7 +277,7 @@ def test_erosion_uses_the_affine_voxel_size(sim, maps, tmp_path, capsys):
             _header_without_zooms(p, bad / p.name)
         else:
             shutil.copy(p, bad / p.name)
-    img = nib.load(str(bad / f"{P}MEGRE_T2starmap.nii.gz"))
+    img = nib.load(str(bad / f"{P}rec-megre_T2starmap.nii.gz"))
     # nibabel reads pixdim 0 as 1 (with a warning): the zooms now disagree with the affine
     assert img.header.get_zooms()[:2] != tuple(np.abs(np.diag(img.affine)[:2]))
     tables = []
@@ -338,7 +338,7 @@ def test_dam_pair_of_2d_images(tmp_path, capsys):
         paths.append(str(p))
     code, err = run_cli(["fit", "dam", *paths, "--out", str(tmp_path / "o")], capsys)
     assert code == 0, err
-    got = np.asarray(nib.load(str(tmp_path / "o" / "x_TB1DAM_TB1map.nii.gz")).dataobj)
+    got = np.asarray(nib.load(str(tmp_path / "o" / "x_rec-dam_TB1map.nii.gz")).dataobj)
     assert got.shape == (10, 12, 1)
     np.testing.assert_allclose(got[..., 0], b1, rtol=1e-4)
 
@@ -360,7 +360,7 @@ def test_killed_fit_leaves_nothing_a_later_fit_keeps(sim, tmp_path, capsys):
     kit = Kit(sim, tmp_path)
     kit.out.mkdir()
     proc = subprocess.Popen([sys.executable, "-c", _KILLED_WRITER,
-                             str(kit.out / f"{P}MEGRE_T2starmap.nii.gz")],
+                             str(kit.out / f"{P}rec-megre_T2starmap.nii.gz")],
                             stdout=subprocess.PIPE, text=True)
     assert proc.stdout.readline().strip() == "writing"
     os.kill(proc.pid, signal.SIGKILL)

@@ -140,7 +140,7 @@ def test_top_level_snakefile_does_the_work(sim, tmp_path):
     assert "Nothing to be done" not in log
     out = tmp_path / "res"
     assert (out / "report.html").is_file() and (out / "history.sqlite").is_file()
-    assert list(out.glob(f"sub-*/ses-*/maps/megre/{P}MEGRE_T2starmap.nii.gz"))
+    assert list(out.glob(f"sub-*/ses-*/anat/{P}rec-megre_T2starmap.nii.gz"))
 
 
 @pytest.mark.slow
@@ -158,7 +158,7 @@ def test_file_name_with_braces_is_skipped_not_fatal(sim, tmp_path, capsys):
     assert code in (0, 1), err[-3000:]
     assert f"warning: {odd}: skipped" in err
     assert "WildcardError" not in err and "Traceback" not in err
-    maps = list((tmp_path / "res").glob("sub-*/ses-*/maps/megre/*MEGRE_T2starmap.nii.gz"))
-    assert [p.name for p in maps] == [f"{P}MEGRE_T2starmap.nii.gz"]
+    maps = list((tmp_path / "res").glob("sub-*/ses-*/anat/*rec-megre_T2starmap.nii.gz"))
+    assert [p.name for p in maps] == [f"{P}rec-megre_T2starmap.nii.gz"]
     assert json.loads((tmp_path / "res" / "status.json").read_text())["sessions"] == 1
     assert tree_digest(raw) == given
