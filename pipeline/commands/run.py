@@ -98,7 +98,6 @@ def run_workflow(config: str | Path, cores: int | None = None, profile: str | No
     from pipeline import workflow
     from pipeline.errors import EXIT_BAD_INPUT, InputError
 
-    stream = stream or sys.stderr
     check_options(cores, profile)
     cfg = workflow.load(config)              # schema, names the key; paths exist
     from pipeline.ingest import ingest_for_run
