@@ -35,11 +35,11 @@ def check_spec(text: str) -> None:
         try:
             parse_sinc(text)
         except RelaxlineError as exc:
-            raise InputError(f"--slice-profile: {exc}") from None
+            raise InputError(str(exc)) from None
         return
     p = Path(text)
     if not p.is_file():
-        raise InputError(f"--slice-profile {text}: file not found; give a TSV file with "
+        raise InputError(f"{text}: file not found; a slice profile is a TSV file with "
                          f"columns {', '.join(COLUMNS)}, or sinc:TBW[:RATIO] (e.g. sinc:3).")
 
 

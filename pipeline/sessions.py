@@ -79,17 +79,36 @@ class Plan:
                 return j
         raise KeyError(f"{sub}/{ses}/{model}/{stem}")
 
+    def companion(self, cfg: dict, job: SeriesJob, kind: str) -> SeriesJob | None:
+        """The fit whose map of ``kind`` ("b1": TB1map, "t1": T1map) feeds ``job``, or None.
+
+        Candidates and whether one is required come from the config
+        (:func:`pipeline.wfconfig.companion_models`: ``b1: dam``, ``t1: ir|vfa|auto``);
+        the first candidate the session has is used. A candidate matching several series
+        of the session is an error, as is a required one matching none.
+        """
+        from pipeline.wfconfig import companion_models
+        models, required = companion_models(cfg, job.model, kind)
+        session = self.session(job.sub, job.ses)
+        for cand in models:
+            found = [j for j in session.series if j.model == cand]
+            if len(found) == 1:
+                return found[0]
+            if found or required:
+                raise InputError(f"{session.folder}: models.{job.model}.{kind} "
+                                 f"{'is' if required else 'takes'} '{cand}' but "
+                                 f"{len(found)} {cand} series match "
+                                 f"'{cfg['models'][cand]['pattern']}'; make the pattern "
+                                 "match exactly one.")
+        return None
+
     def b1_source(self, cfg: dict, job: SeriesJob) -> SeriesJob | None:
         """The dam fit whose TB1map feeds ``job`` (vfa/mese with ``b1: dam``)."""
-        if cfg["models"][job.model].get("b1") != "dam":
-            return None
-        dams = [j for j in self.session(job.sub, job.ses).series if j.model == "dam"]
-        if len(dams) != 1:
-            raise InputError(f"{self.session(job.sub, job.ses).folder}: models.{job.model}.b1 "
-                             f"is 'dam' but {len(dams)} dam series match "
-                             f"'{cfg['models']['dam']['pattern']}'; make the pattern match "
-                             "exactly one.")
-        return dams[0]
+        return self.companion(cfg, job, "b1")
+
+    def t1_source(self, cfg: dict, job: SeriesJob) -> SeriesJob | None:
+        """The ir/vfa fit whose T1map feeds ``job`` (``models.<name>.t1``)."""
+        return self.companion(cfg, job, "t1")
 
 
 def slab_bounds(nz: int, per_slice: int, max_voxels: int) -> list[tuple[int, int]]:

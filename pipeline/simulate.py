@@ -276,8 +276,11 @@ def mese_series(st: SessionState) -> SimSeries:
     from fitting.epg import cpmg_echoes
     return SimSeries("MESE", "anat", "echo", "EchoTime",
                      _round(MESE_ESP * (np.arange(MESE_ECHOES) + 1)),
+                     # 3D: simulated with a uniform flip angle across the slab (no slice
+                     # profile); a 2D label would be untrue, and mese warns on 2D series
+                     # fitted without --slice-profile
                      {"RepetitionTime": MESE_TR, "FlipAngle": 90.0, "RefocusingFlipAngle": 180.0,
-                      "MRAcquisitionType": "2D", "PulseSequenceType": "multi-echo spin echo "
+                      "MRAcquisitionType": "3D", "PulseSequenceType": "multi-echo spin echo "
                       "(CPMG)", "ScanningSequence": "SE", "SequenceVariant": "NONE"},
                      "multi-echo spin echo",
                      _inside(st, lambda t1, t2, t2s, pd, b1: cpmg_echoes(

@@ -92,4 +92,5 @@ def gap_note(t1_arr: np.ndarray, fitted: np.ndarray, path: str, fill: float | No
     if not n or fill is None:
         return None
     return (f"T1 map {path} has no value in {n} of the {int(fitted.sum())} fitted voxels; "
-            f"T1 = {float(fill):g} s (--t1-fixed) was used there")
+            f"T1 = {float(fill):g} s (the fixed T1: --t1-fixed, or t1_fixed in the workflow) "
+            f"was used there")

@@ -15,9 +15,108 @@ from pipeline.errors import InputError
 SCHEMA = Path(__file__).with_name("schemas") / "config.schema.yaml"
 # models that take a B1 map, with the setting that uses none (or fits it)
 B1_USERS = {"vfa": "none", "mese": "fitted"}
-# model options a `models.<name>` entry may set -> the models they apply to (the same
-# options `relaxline fit` takes; passed to the fit jobs as JSON)
-MODEL_OPTION_KEYS = {"plateau": ("mese-mono",), "skip_echoes": ("mese-mono",)}
+# models whose T1map can feed another model's fit (`models.<name>.t1`), in the order
+# `auto` prefers them
+T1_SOURCES = ("ir", "vfa")
+
+
+def _option_keys() -> dict[str, tuple[str, ...]]:
+    """Model options a `models.<name>` entry may set -> the models they apply to: the
+    options of `relaxline fit` (:data:`pipeline.fitjob.MODEL_OPTIONS`), passed to the fit
+    jobs as JSON."""
+    from pipeline.fitjob import MODEL_OPTIONS
+    return {k: models for k, (_, models) in MODEL_OPTIONS.items()}
+
+
+def t1_users() -> list[str]:
+    """Models that take a per-voxel T1 map (:func:`fitting.spec.t1_map_models`)."""
+    from fitting.spec import t1_map_models
+    return t1_map_models()
+
+
+def t1_setting(cfg: dict, model: str) -> str:
+    """``models.<model>.t1``: auto (the default for models that take a T1 map), ir, vfa
+    or fixed (the default for the others)."""
+    return cfg["models"][model].get("t1") or ("auto" if model in t1_users() else "fixed")
+
+
+def _depends(cfg: dict) -> dict[str, set[str]]:
+    """Companion-map edges a fit waits for: B1 from dam, T1 from an explicit source."""
+    out: dict[str, set[str]] = {name: set() for name in cfg["models"]}
+    for name, m in cfg["models"].items():
+        if m.get("b1") == "dam":
+            out[name].add("dam")
+        if m.get("t1") in T1_SOURCES:
+            out[name].add(m["t1"])
+    return out
+
+
+def _reaches(graph: dict[str, set[str]], start: str, goal: str) -> bool:
+    seen, todo = set(), [start]
+    while todo:
+        n = todo.pop()
+        if n == goal:
+            return True
+        if n not in seen:
+            seen.add(n)
+            todo.extend(graph.get(n, ()))
+    return False
+
+
+def companion_models(cfg: dict, model: str, kind: str) -> tuple[list[str], bool]:
+    """Models whose map of ``kind`` ("b1" or "t1") may feed ``model``'s fit, in order of
+    preference, and whether one is required (an explicit setting) or optional (``auto``:
+    the first present in the session is used; a source that would wait for ``model``
+    itself, directly or through others, is skipped)."""
+    m = cfg["models"][model]
+    if kind == "b1":
+        return (["dam"], True) if m.get("b1") == "dam" else ([], False)
+    setting = t1_setting(cfg, model)
+    if setting in T1_SOURCES:
+        return [setting], True
+    if setting != "auto":
+        return [], False
+    graph = _depends(cfg)
+    return [c for c in T1_SOURCES if c in cfg["models"] and c != model
+            and not _reaches(graph, c, model)], False
+
+
+def _check_t1(cfg: dict, source: str) -> None:
+    """``models.<name>.t1``: a model that takes a T1 map, a configured source, no cycle."""
+    users = t1_users()
+    for name, m in cfg["models"].items():
+        t1 = m.get("t1")
+        if t1 not in (None, "fixed") and name not in users:
+            raise InputError(f"{source}: key `models.{name}.t1`: the {name} model takes no "
+                             f"T1 map (models that do: {', '.join(users) or 'none'}); remove "
+                             "the key.")
+        if t1 in T1_SOURCES and t1 not in cfg["models"]:
+            raise InputError(f"{source}: key `models.{name}.t1` is '{t1}' but no "
+                             f"`models.{t1}` is configured; add its series pattern, or use "
+                             "auto or fixed.")
+        if t1 == name:
+            raise InputError(f"{source}: key `models.{name}.t1`: a model cannot take its T1 "
+                             "from itself; use another source, auto or fixed.")
+    graph = _depends(cfg)
+    for name, m in cfg["models"].items():
+        t1 = m.get("t1")
+        if t1 in T1_SOURCES and _reaches(graph, t1, name):
+            raise InputError(f"{source}: key `models.{name}.t1` is '{t1}', but the {t1} fit "
+                             f"itself waits for the {name} map (through `b1`/`t1` settings), "
+                             f"so neither could start; take {name}'s T1 from another source "
+                             "(e.g. ir) or set it to fixed.")
+
+
+def profile_for(setting, stem: str | None) -> str | None:
+    """The slice profile a series uses: ``models.<name>.slice_profile`` is one profile
+    for every series, or a mapping of series-name globs to profiles (the first glob
+    matching the series stem wins; ``none`` or no match: no profile)."""
+    import fnmatch
+    if isinstance(setting, dict):
+        if stem is None:
+            return None
+        setting = next((v for g, v in setting.items() if fnmatch.fnmatch(stem, g)), None)
+    return None if setting in (None, "none", False) else str(setting)
 
 
 def _schema() -> dict:
@@ -88,17 +187,25 @@ def validate_config(cfg: dict, source: str = "config") -> dict:
             raise InputError(f"{source}: key `models.{name}.b1` is 'dam' but no `models.dam` "
                              "is configured; add the dam series pattern or set b1 to "
                              f"'{B1_USERS[name]}'.")
-        for key in MODEL_OPTION_KEYS:
-            if key in m and m[key] is not False and name not in MODEL_OPTION_KEYS[key]:
+        keys = _option_keys()
+        for key in keys:
+            if key in m and m[key] is not False and name not in keys[key]:
                 raise InputError(f"{source}: key `models.{name}.{key}` applies to "
-                                 f"{', '.join(MODEL_OPTION_KEYS[key])} only; remove it.")
+                                 f"{', '.join(keys[key])} only; remove it.")
+    _check_t1(out, source)
     return out
 
 
-def model_options(cfg: dict, model: str) -> dict:
-    """The model options (as ``relaxline fit`` takes them) set in ``models.<model>``."""
+def model_options(cfg: dict, model: str, stem: str | None = None) -> dict:
+    """The model options (as ``relaxline fit`` takes them) set in ``models.<model>``, for
+    the series ``stem`` (its slice profile, :func:`profile_for`)."""
     m = cfg["models"][model]
-    return {k: m[k] for k in MODEL_OPTION_KEYS if k in m and m[k] is not False}
+    out = {k: m[k] for k in _option_keys() if k in m and m[k] is not False
+           and k != "slice_profile"}
+    prof = profile_for(m.get("slice_profile"), stem)
+    if prof:
+        out["slice_profile"] = prof
+    return out
 
 
 def _fill_defaults(obj: dict, schema: dict) -> None:
@@ -125,6 +232,14 @@ def resolve_paths(cfg: dict, base: str | Path | None = None) -> dict:
     for k in ("reference", "tolerances", "layout"):
         if ph.get(k):
             ph[k] = absolute(ph[k], root)
+    for m in out["models"].values():   # profile files relative to the config too
+        prof = m.get("slice_profile")
+        if isinstance(prof, str) and not prof.startswith("sinc:") and prof != "none":
+            m["slice_profile"] = absolute(prof, root)
+        elif isinstance(prof, dict):
+            m["slice_profile"] = {g: (absolute(v, root) if isinstance(v, str) and not
+                                      v.startswith("sinc:") and v != "none" else v)
+                                  for g, v in prof.items()}
     if out.get("dicom", {}).get("drop_dir"):
         out["dicom"]["drop_dir"] = absolute(out["dicom"]["drop_dir"], root)
     hist = out.setdefault("history", {})
@@ -158,6 +273,19 @@ def check_paths(cfg: dict, source: str = "config", create_input: bool = False) -
         p = ph.get(k)
         if p and not Path(p).is_file():
             raise InputError(f"{source}: key `phantom.{k}`: file {p} not found.")
+    from pipeline import profiles
+    for name, m in cfg["models"].items():   # slice profiles read and checked now
+        prof = m.get("slice_profile")
+        for v in (prof.values() if isinstance(prof, dict) else [prof]):
+            if v in (None, "none"):
+                continue
+            try:
+                profiles.check_spec(v)
+                if profiles.is_file_spec(v):
+                    profiles.read_profile(v)
+            except InputError as exc:
+                raise InputError(f"{source}: key `models.{name}.slice_profile`: {exc}") \
+                    from None
     for key, p in (("phantom.reference", ph.get("reference")),
                    ("phantom.tolerances", ph.get("tolerances")),
                    ("phantom.layout", ph.get("layout")), ("input_dir", cfg["input_dir"])):

@@ -54,14 +54,30 @@ RECORDED = "{sub}/{ses}/qc/history.json"
 
 # ---- steps run by the rules -------------------------------------------------------------
 
+def map_path(maps_manifest: str | Path, suffix: str) -> str:
+    """The ``suffix`` map (e.g. TB1map, T1map) listed in a fit's manifest."""
+    m = json.loads(Path(maps_manifest).read_text(encoding="utf-8"))
+    hits = [p for p in m["files"] if p.endswith(f"_{suffix}.nii.gz") and "_desc-" not in p]
+    if len(hits) != 1:
+        raise InputError(f"{maps_manifest}: expected one {suffix} in the {m.get('model')} "
+                         f"outputs, found {len(hits)}.")
+    return os.path.normpath(Path(maps_manifest).parent / hits[0])
+
+
 def b1_map_path(maps_manifest: str | Path) -> str:
     """The TB1map listed in a dam fit's manifest."""
-    m = json.loads(Path(maps_manifest).read_text(encoding="utf-8"))
-    hits = [p for p in m["files"] if p.endswith("_TB1map.nii.gz") and "_desc-" not in p]
-    if len(hits) != 1:
-        raise InputError(f"{maps_manifest}: expected one TB1map in the dam outputs, found "
-                         f"{len(hits)}.")
-    return os.path.normpath(Path(maps_manifest).parent / hits[0])
+    return map_path(maps_manifest, "TB1map")
+
+
+def _t1_fill(model: str, options: dict) -> dict:
+    """Options with ``t1_fixed`` set to the model's own default T1 when a T1 map feeds the
+    fit and the config gives none: voxels the map has no value for (the source fit's
+    failures, its background) use it and the sidecars count them."""
+    from fitting.spec import get_model
+    from pipeline.fitjob import MODEL_OPTIONS
+    if options.get("t1_fixed") is not None or model not in MODEL_OPTIONS["t1_fixed"][1]:
+        return options
+    return {**options, "t1_fixed": get_model(model).fixed_from_meta({}, {}).get("t1")}
 
 
 def session_dir(manifest: str | Path) -> Path:
@@ -82,44 +98,58 @@ def write_manifest(path: str | Path, files: Sequence[Path], inputs: Sequence[str
 
 def step_fit(model: str, inputs: Sequence[str], out_dir: str, manifest: str,
              b1_manifest: str | None, engine: str, threads: int, time_unit: str,
-             chunks: Sequence[str] = (), options: dict | None = None) -> None:
+             chunks: Sequence[str] = (), options: dict | None = None,
+             t1_manifest: str | None = None) -> None:
     """Fit one series (or gather its chunk results) and write the manifest last.
 
     ``out_dir``: the session folder; maps go into its ``anat/`` and ``fmap/`` folders.
-    ``options``: model options from the config (:func:`model_options`)."""
-    from pipeline.fitjob import fit_command, prepare, write_fit_outputs
+    ``options``: model options from the config (:func:`model_options`). ``b1_manifest``,
+    ``t1_manifest``: the fits whose TB1map / T1map feed this one."""
+    from pipeline.fitjob import fit_command, fit_notes, prepare, write_fit_outputs
+    from pipeline.t1map import load_t1_map
     b1 = b1_map_path(b1_manifest) if b1_manifest else None
+    t1 = map_path(t1_manifest, "T1map") if t1_manifest else None
     if not chunks:
         files = fit_command(model, inputs, out_dir, b1=b1, engine=engine, jobs=threads,
-                            time_unit=time_unit, show_progress=False, model_options=options,
-                            datatype_folders=True)
+                            time_unit=time_unit, show_progress=False,
+                            model_options=_t1_fill(model, options or {}) if t1 else options,
+                            datatype_folders=True, t1_map=t1)
     else:
-        _, series, _ = prepare(model, inputs, time_unit)
+        spec, series, _ = prepare(model, inputs, time_unit)
         parts = [np.load(c) for c in chunks]
         keys = parts[0]["__keys__"].tolist()
         options = json.loads(str(parts[0]["__options__"]))
         arrays = {k: np.concatenate([p[f"a{i}"] for p in parts], axis=2)
                   for i, k in enumerate(keys)}
+        from fitting.spec import configure_model
+        t1_arr = load_t1_map(configure_model(spec, options), series, t1) if t1 else None
+        notes = fit_notes(arrays, options, t1_arr, spec, series)
         files = write_fit_outputs(arrays, series, out_dir, model, options["engine"], options,
-                                  datatype_folders=True)
+                                  notes, datatype_folders=True)
     write_manifest(manifest, files, inputs, model)
 
 
 def step_chunk(model: str, inputs: Sequence[str], z0: int, z1: int, out: str,
                b1_manifest: str | None, engine: str, threads: int, time_unit: str,
-               options: dict | None = None) -> None:
+               options: dict | None = None, t1_manifest: str | None = None) -> None:
     """Fit slices z0:z1 of a series into an .npz (noise σ from the whole series)."""
+    from fitting.spec import configure_model
     from pipeline.fitjob import estimate_noise, fit_arrays, prepare
     from pipeline.outputs import atomic_write_bytes
     from pipeline.series import load_grid_map
+    from pipeline.t1map import load_t1_map
     import io
-    _, series, _ = prepare(model, inputs, time_unit)
+    spec, series, _ = prepare(model, inputs, time_unit)
     b1 = b1_map_path(b1_manifest) if b1_manifest else None
     b1_arr = load_grid_map(b1, series, what="B1 map") if b1 else None
+    t1 = map_path(t1_manifest, "T1map") if t1_manifest else None
     options = {"engine": engine, "jobs": int(threads), "time_unit": time_unit, "mask": None,
-               "b1_map": str(b1) if b1 else None, "noise_sigma": estimate_noise(series),
-               **(options or {})}
-    arrays = fit_arrays(model, series, None, b1_arr, options, z=slice(z0, z1))
+               "b1_map": str(b1) if b1 else None, "t1_map": t1,
+               "noise_sigma": estimate_noise(series), **(options or {})}
+    if t1:
+        options = _t1_fill(model, options)
+    t1_arr = load_t1_map(configure_model(spec, options), series, t1) if t1 else None
+    arrays = fit_arrays(model, series, None, b1_arr, options, z=slice(z0, z1), t1=t1_arr)
     keys = list(arrays)
     buf = io.BytesIO()
     np.savez(buf, __keys__=np.array(keys), __options__=np.array(json.dumps(options)),
@@ -315,31 +345,36 @@ def fit_inputs(cfg: dict, plan_: Plan, wc, chunks: bool = True) -> dict[str, lis
     acquisition parameter reruns the fit), its chunk files, the dam manifest."""
     from pipeline.series import sidecar_path
     job = plan_.job(wc.sub, wc.ses, wc.model, wc.stem)
-    src = plan_.b1_source(cfg, job)
+    b1, t1 = plan_.b1_source(cfg, job), plan_.t1_source(cfg, job)
     sidecars = [str(sidecar_path(p)) for p in job.inputs if sidecar_path(p).is_file()]
-    out = {"series": job.inputs, "sidecars": sidecars, "b1": [src.manifest()] if src else []}
+    out = {"series": job.inputs, "sidecars": sidecars, "b1": [b1.manifest()] if b1 else [],
+           "t1": [t1.manifest()] if t1 else []}
     if chunks:
         out["chunks"] = job.chunk_files()
     return out
 
 
-def fit_params(cfg: dict, job_model: str) -> dict:
+def fit_params(cfg: dict, job_model: str, stem: str | None = None) -> dict:
     """The settings that change a fit's result (a rule parameter: a change reruns the fits
-    of that model only)."""
+    of that model only, or of that series for a per-series slice profile)."""
+    from pipeline.wfconfig import t1_setting
     m = cfg["models"][job_model]
     return {"engine": m.get("engine", cfg["fit"]["engine"]), "time_unit": m.get("time_unit", "s"),
-            "b1": m.get("b1"), "options": model_options(cfg, job_model)}
+            "b1": m.get("b1"), "t1": t1_setting(cfg, job_model),
+            "options": model_options(cfg, job_model, stem)}
 
 
 def fit_command(cfg: dict, plan_: Plan, step: str, wc, input, output, threads: int,
                 log) -> str:
     """Shell command of a ``fit`` or ``chunk`` job (a separate process per job)."""
     job = plan_.job(wc.sub, wc.ses, wc.model, wc.stem)
-    fp = fit_params(cfg, job.model)
+    fp = fit_params(cfg, job.model, job.stem)
     args = ["--model", job.model, "--inputs", *input.series,
             "--engine", fp["engine"], "--threads", threads, "--time-unit", fp["time_unit"]]
     if input.b1:
         args += ["--b1-manifest", input.b1[0]]
+    if input.t1:
+        args += ["--t1-manifest", input.t1[0]]
     opts = fp["options"]
     if opts:
         args += ["--options", json.dumps(opts, sort_keys=True)]
@@ -372,6 +407,7 @@ def main(argv: Sequence[str] | None = None) -> int:
         p.add_argument("--model", required=True)
         p.add_argument("--inputs", nargs="+", required=True)
         p.add_argument("--b1-manifest")
+        p.add_argument("--t1-manifest")
         p.add_argument("--engine", default="fast")
         p.add_argument("--threads", type=int, default=1)
         p.add_argument("--time-unit", default="s")
@@ -393,10 +429,10 @@ def main(argv: Sequence[str] | None = None) -> int:
     try:
         if a.step == "fit":
             step_fit(a.model, a.inputs, a.out, a.manifest, a.b1_manifest, a.engine, a.threads,
-                     a.time_unit, a.chunks, a.options)
+                     a.time_unit, a.chunks, a.options, a.t1_manifest)
         elif a.step == "chunk":
             step_chunk(a.model, a.inputs, a.z[0], a.z[1], a.out, a.b1_manifest, a.engine,
-                       a.threads, a.time_unit, a.options)
+                       a.threads, a.time_unit, a.options, a.t1_manifest)
         else:
             settings = json.loads(a.settings)
             if a.step == "qc":

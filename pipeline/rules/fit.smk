@@ -11,7 +11,7 @@ rule fit_chunk:
     log:
         "logs/{sub}/{ses}/fit_{model}_{stem}_chunk-{chunk}.log",
     params:
-        fit=lambda wc: W.fit_params(CFG, wc.model),
+        fit=lambda wc: W.fit_params(CFG, wc.model, wc.stem),
     threads: CFG["fit"]["threads"]
     resources:
         mem_mb=CFG["fit"]["mem_mb"],
@@ -28,7 +28,7 @@ rule fit:
     log:
         "logs/{sub}/{ses}/fit_{model}_{stem}.log",
     params:
-        fit=lambda wc: W.fit_params(CFG, wc.model),
+        fit=lambda wc: W.fit_params(CFG, wc.model, wc.stem),
     threads: CFG["fit"]["threads"]
     resources:
         mem_mb=CFG["fit"]["mem_mb"],
