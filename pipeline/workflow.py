@@ -73,11 +73,16 @@ def _t1_fill(model: str, options: dict) -> dict:
     """Options with ``t1_fixed`` set to the model's own default T1 when a T1 map feeds the
     fit and the config gives none: voxels the map has no value for (the source fit's
     failures, its background) use it and the sidecars count them."""
+    from fitting.errors import RelaxlineError
     from fitting.spec import get_model
     from pipeline.fitjob import MODEL_OPTIONS
     if options.get("t1_fixed") is not None or model not in MODEL_OPTIONS["t1_fixed"][1]:
         return options
-    return {**options, "t1_fixed": get_model(model).fixed_from_meta({}, {}).get("t1")}
+    try:   # the model's T1 without sidecar or options
+        t1 = get_model(model).fixed_from_meta({}, {}).get("t1")
+    except RelaxlineError:
+        t1 = None
+    return options if t1 is None else {**options, "t1_fixed": float(t1)}
 
 
 def session_dir(manifest: str | Path) -> Path:
