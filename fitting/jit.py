@@ -11,7 +11,7 @@ The on-disk cache lives in one folder per version of the package's sources: numb
 checks only the time stamp of the file that defines a cached function, not of the
 files it calls, so a kernel calling a changed formula in another module would load
 stale machine code. The folder name therefore holds a hash of every ``fitting/*.py``
-(and of the numba and Python versions); editing any of them compiles afresh. It is
+(and of the numba, numpy, scipy and Python versions); editing any of them compiles afresh. It is
 ``$RELAXLINE_CACHE_DIR`` if set, else ``$XDG_CACHE_HOME/relaxline`` (default
 ``~/.cache/relaxline``), falling back to the temporary folder when that is not
 writable. ``NUMBA_CACHE_DIR``, when set, wins (numba's own setting).
@@ -32,7 +32,9 @@ _HERE = Path(__file__).resolve().parent
 
 
 def _source_hash() -> str:
-    h = hashlib.sha256(f"{numba.__version__} {sys.version_info[:2]}".encode())
+    import scipy   # compiled constants are interpolated from scipy functions (fitting.noise)
+    h = hashlib.sha256(f"{numba.__version__} {np.__version__} {scipy.__version__} "
+                       f"{sys.version_info[:2]}".encode())
     for path in sorted(_HERE.glob("*.py")):
         h.update(path.name.encode())
         h.update(path.read_bytes())
@@ -67,12 +69,13 @@ jit = partial(numba.njit, cache=True, nogil=True, error_model="numpy")
 
 
 
-def broadcast_apply(loop, *args: "np.ndarray") -> "np.ndarray":
-    """Call the compiled elementwise ``loop(*flat_args, out)`` on numpy arrays.
+def broadcast_apply(loop, *args: "np.ndarray", outputs: int = 1):
+    """Call the compiled elementwise ``loop(*flat_args, *outs)`` on numpy arrays.
 
-    The arguments are broadcast together and flattened (float64); the result has their
-    broadcast shape. This is how numpy callers reach a scalar kernel: each kernel has a
-    small compiled loop over its arguments (a numba ufunc cannot be cached safely).
+    The arguments are broadcast together and flattened (float64); each of the
+    ``outputs`` results has their broadcast shape (a tuple of them when ``outputs`` > 1).
+    This is how numpy callers reach a scalar kernel: each kernel has a small compiled
+    loop over its arguments (a numba ufunc cannot be cached safely).
     """
     arrs = [np.asarray(a, dtype=float) for a in args]
     shape = np.broadcast_shapes(*(a.shape for a in arrs))
@@ -81,6 +84,6 @@ def broadcast_apply(loop, *args: "np.ndarray") -> "np.ndarray":
         buf = np.empty(shape)
         buf[...] = a
         flat.append(buf.reshape(-1))
-    out = np.empty(shape)
-    loop(*flat, out.reshape(-1))
-    return out
+    outs = [np.empty(shape) for _ in range(outputs)]
+    loop(*flat, *(o.reshape(-1) for o in outs))
+    return outs[0] if outputs == 1 else tuple(outs)

@@ -26,9 +26,11 @@ import numpy as np
 
 from fitting.jit import jit
 from fitting.lm import FD_REL_STEP, STALL_ITER, STALL_RTOL
+from fitting.noise import RICIAN, rician_value
 from fitting.signals import ir_value, mono_value, spgr_value
 
-# model kinds (the constants row of each, in order)
+# model kinds (the constants row of each, in order); kind + RICIAN: the Rician expectation
+# of the kind's signal given σ, the last constant (fitting.noise.rician_spec)
 IR = 1      # inversion recovery: TR, α, signed (0: magnitude |S|)
 SPGR = 2    # spoiled gradient echo (vfa): TR, B1
 MONO = 3    # mono-exponential (+ plateau when a third parameter is fitted): none
@@ -48,44 +50,62 @@ def constants(n: int, *columns) -> np.ndarray:
 def model_train(kind, x, p, c, out):
     """Signal of one voxel at every acquisition value ``x`` into ``out``."""
     m = x.size
-    if kind == IR:
+    base = kind % RICIAN
+    if base == IR:
         for j in range(m):
             v = ir_value(x[j], p[0], p[1], p[2], c[0], c[1])
             out[j] = v if c[2] != 0.0 else abs(v)
-    elif kind == SPGR:
+    elif base == SPGR:
         for j in range(m):
             out[j] = spgr_value(x[j], p[0], p[1], c[0], c[1])
-    elif kind == MONO:
+    elif base == MONO:
         plateau = p[2] if p.size > 2 else 0.0
         for j in range(m):
             out[j] = mono_value(x[j], p[0], p[1], plateau)
     else:
         for j in range(m):
             out[j] = np.nan
+    if kind >= RICIAN:
+        sigma = c[c.size - 1]
+        for j in range(m):
+            out[j] = rician_value(out[j], sigma)[0]
 
 
 @jit
-def _jacobian(kind, x, p, c, f0, hi, scale, jac, q, fq):
+def _jacobian(kind, x, p, c, f0, hi, scale, jac, q, fq, base_f, slope):
     """dS/dp (M, P): forward differences pulled inside the upper bound, the scale
-    parameter exactly as S at M0 = 1 (as :func:`fitting.lm.jacobian`)."""
+    parameter exactly as S at M0 = 1 (as :func:`fitting.lm.jacobian`). For a Rician kind
+    the differences are taken on the underlying signal ν and multiplied by dE|S|/dν (the
+    chain rule; one expectation per point instead of one per column). ``base_f``, ``slope``:
+    work arrays (M,)."""
     npar = p.size
     m = x.size
+    base = kind % RICIAN
+    if kind >= RICIAN:
+        sigma = c[c.size - 1]
+        model_train(base, x, p, c, base_f)
+        for j in range(m):
+            slope[j] = rician_value(base_f[j], sigma)[1]
+    else:
+        for j in range(m):
+            base_f[j] = f0[j]
+            slope[j] = 1.0
     for i in range(npar):
         for k in range(npar):
             q[k] = p[k]
         if i == scale:
             q[i] = 1.0
-            model_train(kind, x, q, c, fq)
+            model_train(base, x, q, c, fq)
             for j in range(m):
-                jac[j, i] = fq[j]
+                jac[j, i] = fq[j] * slope[j]
             continue
         h = FD_REL_STEP * max(abs(p[i]), 1e-3)
         if p[i] + h > hi[i]:
             h = -h
         q[i] += h
-        model_train(kind, x, q, c, fq)
+        model_train(base, x, q, c, fq)
         for j in range(m):
-            jac[j, i] = (fq[j] - f0[j]) / h
+            jac[j, i] = (fq[j] - base_f[j]) / h * slope[j]
 
 
 @jit
@@ -137,7 +157,7 @@ def _cost(f, y, r):
 
 @jit
 def lm_voxel(kind, x, y, p, lo, hi, c, scale, max_iter, xtol, ftol, lam0, nielsen,
-             f, r, ft, rt, trial, jac, q, fq, jtj, jtr, a, b, step):
+             f, r, ft, rt, trial, jac, q, fq, base_f, slope, jtj, jtr, a, b, step):
     """Fit one voxel in place (``p`` holds the start, then the estimate).
 
     Returns (cost, state, iterations) with state :data:`CONVERGED`,
@@ -158,7 +178,7 @@ def lm_voxel(kind, x, y, p, lo, hi, c, scale, max_iter, xtol, ftol, lam0, nielse
     stall_ref = cost
     for it in range(max_iter):
         if need_jac:
-            _jacobian(kind, x, p, c, f, hi, scale, jac, q, fq)
+            _jacobian(kind, x, p, c, f, hi, scale, jac, q, fq, base_f, slope)
             _normal(jac, r, jtj, jtr)
             need_jac = False
         dmax = 0.0
@@ -217,13 +237,13 @@ def lm_voxel(kind, x, y, p, lo, hi, c, scale, max_iter, xtol, ftol, lam0, nielse
 
 
 @jit
-def stderr_voxel(kind, x, p, c, hi, scale, sigma, f, jac, q, fq, jtj, inv, err):
+def stderr_voxel(kind, x, p, c, hi, scale, sigma, f, jac, q, fq, base_f, slope, jtj, inv, err):
     """√diag(σ²·(JᵀJ)⁻¹) at ``p`` into ``err`` (NaN where JᵀJ is singular), inverting
     JᵀJ scaled to unit diagonal as :func:`fitting.uncertainty.covariance` does."""
     npar = p.size
     m = x.size
     model_train(kind, x, p, c, f)
-    _jacobian(kind, x, p, c, f, hi, scale, jac, q, fq)
+    _jacobian(kind, x, p, c, f, hi, scale, jac, q, fq, base_f, slope)
     finite = True
     for i in range(npar):
         for k in range(npar):
@@ -294,6 +314,7 @@ def fit_block(kind, x, y, p, lo, hi, c, scale, max_iter, xtol, ftol, lam0, niels
     n, m = y.shape
     npar = p.shape[1]
     f, r, ft, rt, fq = np.empty(m), np.empty(m), np.empty(m), np.empty(m), np.empty(m)
+    base_f, slope = np.empty(m), np.empty(m)
     trial, q, jtr = np.empty(npar), np.empty(npar), np.empty(npar)
     b, step = np.empty(npar), np.empty(npar)
     jac = np.empty((m, npar))
@@ -303,7 +324,7 @@ def fit_block(kind, x, y, p, lo, hi, c, scale, max_iter, xtol, ftol, lam0, niels
         pi = p[i]
         cost[i], state[i], n_iter[i] = lm_voxel(
             kind, x, y[i], pi, lo, hi, c[i], scale, max_iter, xtol, ftol, lam0, nielsen,
-            f, r, ft, rt, trial, jac, q, fq, jtj, jtr, a, b, step)
+            f, r, ft, rt, trial, jac, q, fq, base_f, slope, jtj, jtr, a, b, step)
         if state[i] != CONVERGED:
             for k in range(npar):
                 err[i, k] = np.nan
@@ -314,4 +335,5 @@ def fit_block(kind, x, y, p, lo, hi, c, scale, max_iter, xtol, ftol, lam0, niels
             sigma = math.sqrt(cost[i] / dof)
         else:
             sigma = np.nan
-        stderr_voxel(kind, x, pi, c[i], hi, scale, sigma, f, jac, q, fq, jtj, inv, err[i])
+        stderr_voxel(kind, x, pi, c[i], hi, scale, sigma, f, jac, q, fq, base_f, slope, jtj, inv,
+                     err[i])

@@ -33,6 +33,7 @@ rule, dE/dp = dE/dν · dν/dp.
 from __future__ import annotations
 
 import dataclasses
+import math
 from functools import partial
 
 import numpy as np
@@ -40,9 +41,92 @@ from numpy.typing import ArrayLike
 from scipy.special import i0e, i1e
 
 from fitting.errors import RelaxlineError
-from fitting.spec import ModelSpec
+from fitting.jit import broadcast_apply, jit
+from fitting.spec import Kernel, ModelSpec
 
-_SQRT_HALF_PI = np.sqrt(np.pi / 2.0)
+_SQRT_HALF_PI = math.sqrt(math.pi / 2.0)
+RICIAN = 100    # added to a model kind of fitting.kernels: its signal is then E|S| given σ
+
+# --------------------------------------------------------------------------- compiled
+# i0e and i1e as Chebyshev series on [0, 8] in u = x/4 − 1 (i0e(x), i1e(x)/x) and on (8, ∞)
+# in v = 16/x − 1 (√x·i0e(x), √x·i1e(x)), the split of the Cephes library's tables
+# (Moshier 1989, Methods and Programs for Mathematical Functions); the coefficients are
+# interpolated here from scipy's i0e/i1e at import, so this module holds no second table.
+# Agreement with scipy: below 1e-13 relative (tests/test_noise.py).
+_NEAR_DEGREE, _FAR_DEGREE = 30, 20     # each ~3e-14 relative or better
+
+
+def _chebyshev_coefficients(f, lo: float, hi: float, degree: int) -> tuple[float, ...]:
+    c = np.polynomial.chebyshev.chebinterpolate(lambda u: f(lo + (u + 1.0) * (hi - lo) / 2.0),
+                                                degree)
+    return tuple(float(v) for v in c)
+
+
+def _over_x(f):
+    return lambda x: np.where(x > 0, f(x) / np.where(x > 0, x, 1.0), 0.5)
+
+
+def _far(f):
+    return lambda v: np.sqrt(16.0 / (v + 1.0)) * f(16.0 / (v + 1.0))
+
+
+_I0_NEAR = _chebyshev_coefficients(i0e, 0.0, 8.0, _NEAR_DEGREE)
+_I1_NEAR = _chebyshev_coefficients(_over_x(i1e), 0.0, 8.0, _NEAR_DEGREE)
+_I0_FAR = _chebyshev_coefficients(_far(i0e), -1.0, 1.0, _FAR_DEGREE)
+_I1_FAR = _chebyshev_coefficients(_far(i1e), -1.0, 1.0, _FAR_DEGREE)
+
+
+@jit
+def _chebyshev(c, u):
+    """Σ c_k·T_k(u) by Clenshaw's recurrence."""
+    b0 = 0.0
+    b1 = 0.0
+    for k in range(len(c) - 1, 0, -1):
+        b0, b1 = 2.0 * u * b0 - b1 + c[k], b0
+    return u * b0 - b1 + c[0]
+
+
+@jit
+def bessel_i0e(x: float) -> float:
+    """e^(−|x|)·I₀(x), compiled (agrees with ``scipy.special.i0e``)."""
+    x = abs(x)
+    if x <= 8.0:
+        return _chebyshev(_I0_NEAR, x / 4.0 - 1.0)
+    return _chebyshev(_I0_FAR, 16.0 / x - 1.0) / math.sqrt(x)
+
+
+@jit
+def bessel_i1e(x: float) -> float:
+    """e^(−|x|)·I₁(x), compiled (odd in x; agrees with ``scipy.special.i1e``)."""
+    ax = abs(x)
+    if ax <= 8.0:
+        v = ax * _chebyshev(_I1_NEAR, ax / 4.0 - 1.0)
+    else:
+        v = _chebyshev(_I1_FAR, 16.0 / ax - 1.0) / math.sqrt(ax)
+    return -v if x < 0 else v
+
+
+@jit
+def rician_value(nu: float, sigma: float):
+    """(E|S|, dE|S|/dν) of one sample: the formulas of the module docstring, compiled.
+
+    σ ≤ 0 gives (|ν|, sign ν)."""
+    if sigma <= 0.0:
+        sign = 1.0 if nu > 0 else (-1.0 if nu < 0 else (0.0 if nu == 0 else np.nan))
+        return abs(nu), sign
+    r = nu / sigma
+    half_a = 0.25 * r * r                     # a/2 with a = ν²/2σ²
+    b0 = bessel_i0e(half_a)
+    b1 = bessel_i1e(half_a)
+    mean = sigma * _SQRT_HALF_PI * ((1.0 + 2.0 * half_a) * b0 + 2.0 * half_a * b1)
+    return mean, _SQRT_HALF_PI * 0.5 * r * (b0 + b1)
+
+
+@jit
+def _rician_loop(nu, sigma, mean, deriv):
+    for i in range(mean.size):
+        mean[i], deriv[i] = rician_value(nu[i], sigma[i])
+
 
 
 def rician_mean(nu: ArrayLike, sigma: ArrayLike) -> np.ndarray:
@@ -57,19 +141,7 @@ def rician_mean(nu: ArrayLike, sigma: ArrayLike) -> np.ndarray:
 
 def rician_mean_and_derivative(nu: ArrayLike, sigma: ArrayLike) -> tuple[np.ndarray, np.ndarray]:
     """E|S| and dE|S|/dν (module docstring); odd in ν for the derivative, even for E."""
-    nu = np.asarray(nu, dtype=float)
-    sigma = np.asarray(sigma, dtype=float)
-    nu, sigma = np.broadcast_arrays(nu, sigma)
-    zero = sigma <= 0
-    s = np.where(zero, 1.0, sigma)
-    r = nu / s
-    half_a = 0.25 * r * r                     # a/2 with a = ν²/2σ²
-    b0, b1 = i0e(half_a), i1e(half_a)
-    mean = s * _SQRT_HALF_PI * ((1.0 + 2.0 * half_a) * b0 + 2.0 * half_a * b1)
-    deriv = _SQRT_HALF_PI * 0.5 * r * (b0 + b1)
-    mean = np.where(zero, np.abs(nu), mean)
-    deriv = np.where(zero, np.sign(nu), deriv)
-    return mean, deriv
+    return broadcast_apply(_rician_loop, nu, sigma, outputs=2)
 
 
 def rician_wrap(signal: np.ndarray, jacobian: np.ndarray | None, sigma: ArrayLike,
@@ -114,18 +186,30 @@ def _rician_prepare(base_prepare, x, data, fixed):
     return base_prepare(x, np.abs(data) if np.iscomplexobj(data) else data, fixed)
 
 
+def _rician_kernel(base_build, x, fixed, n):
+    """The compiled form: the base kind + :data:`RICIAN`, σ appended to the constants."""
+    kind, xk, consts = base_build(x, fixed, n)
+    sigma = np.broadcast_to(_sigma(fixed).reshape(-1) if np.ndim(fixed["sigma"])
+                            else _sigma(fixed), (n,))
+    return kind + RICIAN, xk, np.column_stack([consts, sigma])
+
+
 def rician_spec(spec: ModelSpec) -> ModelSpec:
     """``spec`` fitted as a magnitude measurement: its signal ν becomes E|S| given σ.
 
     σ comes from ``fixed["sigma"]`` (scalar, or (N,) per voxel). The analytic Jacobian,
     if the model has one, is carried through by :func:`rician_wrap`; otherwise the
-    engine differentiates the wrapped signal numerically. Complex data are fitted as
+    engine differentiates the wrapped signal numerically. A model with a compiled form
+    keeps one (its kind + :data:`RICIAN`, σ the last constant). Complex data are fitted as
     their magnitude (the Rice distribution describes the magnitude). The result is
     picklable (partials of module functions) for the process-parallel lmfit engine.
     """
     jac = None if spec.jacobian is None else partial(_rician_jacobian, spec.signal, spec.jacobian)
+    signal = partial(_rician_signal, spec.signal)
+    kernel = None if spec.compiled is None else Kernel(signal, partial(_rician_kernel,
+                                                                       spec.compiled))
     return dataclasses.replace(
-        spec, signal=partial(_rician_signal, spec.signal), jacobian=jac,
+        spec, signal=signal, jacobian=jac, kernel=kernel,
         prepare=partial(_rician_prepare, spec.prepare), scale_param=None,
         voxel_fixed=tuple(spec.voxel_fixed) + ("sigma",),
         description=spec.description + " (Rician noise floor modelled)")

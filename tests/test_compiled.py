@@ -48,11 +48,13 @@ def _case(name: str):
                          f"the compiled engine is compared with the numpy engine on it")
 
 
-def _data(name: str, options: dict | None = None, snr: float = 200.0):
+def _data(name: str, options: dict | None = None, snr: float = 50.0):
     x, meta, opts, params, voxel = _case(name)
     opts = {**opts, **(options or {})}
     spec = configure_model(get_model(name), opts)
     fixed = {**spec.fixed_from_meta(meta, opts), **voxel}
+    if opts.get("noise") == "rician":
+        fixed["sigma"] = 1.0 / snr
     p = {k: params[k] for k in spec.params if k in params}
     if "plateau" in spec.params:
         p["plateau"] = _rng(name).uniform(0.0, 0.05, N)
@@ -62,8 +64,9 @@ def _data(name: str, options: dict | None = None, snr: float = 200.0):
     return spec, x, y, fixed
 
 
-VARIANTS = [(name, {}) for name in model_names()] + [("mese-mono", {"plateau": True}),
-                                                     ("mese-mono", {"skip_echoes": 1})]
+VARIANTS = [(name, {}) for name in model_names()] + [
+    ("mese-mono", {"plateau": True}), ("mese-mono", {"skip_echoes": 1}),
+    ("ir", {"noise": "rician"}), ("vfa", {"noise": "rician"}), ("megre", {"noise": "rician"})]
 
 
 @pytest.mark.parametrize("name,options", VARIANTS, ids=lambda v: str(v))
@@ -76,8 +79,11 @@ def test_compiled_engine_gives_the_numpy_engines_maps(name, options):
     assert same.mean() >= 0.99, np.bincount(fast.status[~same])
     ok = same & (ref.status == st.OK)
     for k in spec.params:
-        np.testing.assert_allclose(fast.params[k][ok], ref.params[k][ok], rtol=2e-6, atol=1e-9)
-        np.testing.assert_allclose(fast.stderr[k][ok], ref.stderr[k][ok], rtol=1e-4)
+        # the two iterations stop within their tolerances of the same minimum: estimates
+        # agree to 2e-6 relative, or (a parameter near 0) to 1/1000 of its standard error
+        a, b, se = fast.params[k][ok], ref.params[k][ok], ref.stderr[k][ok]
+        assert np.all(np.abs(a - b) <= np.fmax(2e-6 * np.abs(b), 1e-3 * se)), k
+        np.testing.assert_allclose(fast.stderr[k][ok], se, rtol=1e-3)
     np.testing.assert_allclose(fast.rmse[ok], ref.rmse[ok], rtol=1e-6)
 
 

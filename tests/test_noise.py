@@ -82,3 +82,17 @@ def test_wrapped_model_needs_sigma_and_known_noise_name():
         spec.evaluate(np.array([0.01, 0.02, 0.03]), np.array([[0.05, 1.0]]), {})
     with pytest.raises(RelaxlineError, match="gaussian or rician"):
         configure_model(get_model("megre"), {"noise": "poisson"})
+
+
+def test_compiled_bessel_functions_match_scipy():
+    """The compiled i0e/i1e behind the Rician expectation against scipy.special."""
+    from scipy.special import i0e, i1e
+
+    from fitting.noise import bessel_i0e, bessel_i1e
+    x = np.concatenate([np.linspace(0.0, 30.0, 3001), np.geomspace(30.0, 1e8, 300)])
+    a = np.array([bessel_i0e(v) for v in x])
+    b = np.array([bessel_i1e(v) for v in x])
+    # reference library: scipy.special (Cephes)
+    np.testing.assert_allclose(a, i0e(x), rtol=1e-13)
+    np.testing.assert_allclose(b[1:], i1e(x[1:]), rtol=1e-13)
+    assert b[0] == 0.0 and bessel_i1e(-2.0) == -bessel_i1e(2.0)
