@@ -2,8 +2,9 @@
 
 Every compiled function of ``fitting`` is declared with :data:`jit` (``njit`` with an
 on-disk cache and the GIL released, so Python threads run kernels side by side). A
-scalar formula reaches numpy callers through a compiled loop over flattened arguments
-(:func:`broadcast_apply`); numba's own ufuncs are not used, as a cached ufunc built from
+kernel reaches numpy callers through a compiled loop over flattened arguments
+(:func:`train_apply` for a voxel's train, :func:`broadcast_apply` elementwise); numba's
+own ufuncs are not used, as a cached ufunc built from
 a function that is also compiled on its own shares its cache entry and loads the wrong
 machine code.
 
@@ -69,6 +70,34 @@ jit = partial(numba.njit, cache=True, nogil=True, error_model="numpy")
 
 
 
+def _flat_broadcast(args):
+    """The broadcast shape of ``args`` and each of them as a fresh, writable, C-ordered
+    float64 copy of that shape, flattened (one compiled signature for every call)."""
+    arrs = [np.asarray(a, dtype=float) for a in args]
+    shape = np.broadcast_shapes(*(a.shape for a in arrs))
+    flat = []
+    for a in arrs:
+        buf = np.empty(shape)
+        buf[...] = a
+        flat.append(buf.reshape(-1))
+    return shape, flat
+
+
+def train_apply(loop, x, *params) -> "np.ndarray":
+    """Call the compiled ``loop(x, *flat_params, out)`` of a train kernel on numpy arrays.
+
+    ``x`` (the acquisition values) is flattened to (M,); the parameters broadcast to a
+    shape B and are flattened to (N,); the result has shape B + (M,) (the broadcasting
+    convention of :mod:`fitting.signals`). ``loop`` fills row i of ``out`` (N, M) with the
+    train of voxel i.
+    """
+    xs = np.ascontiguousarray(np.asarray(x, dtype=float).reshape(-1))
+    shape, flat = _flat_broadcast(params)
+    out = np.empty(shape + (xs.size,))
+    loop(xs, *flat, out.reshape(-1, xs.size))
+    return out
+
+
 def broadcast_apply(loop, *args: "np.ndarray", outputs: int = 1):
     """Call the compiled elementwise ``loop(*flat_args, *outs)`` on numpy arrays.
 
@@ -77,13 +106,7 @@ def broadcast_apply(loop, *args: "np.ndarray", outputs: int = 1):
     This is how numpy callers reach a scalar kernel: each kernel has a small compiled
     loop over its arguments (a numba ufunc cannot be cached safely).
     """
-    arrs = [np.asarray(a, dtype=float) for a in args]
-    shape = np.broadcast_shapes(*(a.shape for a in arrs))
-    flat = []
-    for a in arrs:   # fresh writable C arrays: one compiled signature for every call
-        buf = np.empty(shape)
-        buf[...] = a
-        flat.append(buf.reshape(-1))
+    shape, flat = _flat_broadcast(args)
     outs = [np.empty(shape) for _ in range(outputs)]
     loop(*flat, *(o.reshape(-1) for o in outs))
     return outs[0] if outputs == 1 else tuple(outs)

@@ -4,8 +4,9 @@ The ``fast`` engine (:mod:`fitting.voxelwise`) hands a block of voxels to
 :func:`fit_block`, which fits them one after the other with the GIL released, so
 Python threads fit blocks side by side on every core. Each voxel runs the same damped
 Gauss–Newton iteration as the numpy reference engine :func:`fitting.lm.levenberg_marquardt`
-(same damping rules, stopping tests, bound projection, finite-difference steps and
-exact scale-parameter column), then, if it converged, its standard errors
+(same damping rules, stopping tests and bound projection; exact derivatives from the
+model's train kernel where it has them, else the reference's finite differences), then,
+if it converged, its standard errors
 √diag(σ²(JᵀJ)⁻¹) from the Jacobian at the solution as :func:`fitting.uncertainty.covariance`
 computes them. Nothing is shared between voxels, so results are bitwise independent of
 the block size and of the number of threads.
@@ -27,7 +28,7 @@ import numpy as np
 from fitting.jit import jit
 from fitting.lm import FD_REL_STEP, STALL_ITER, STALL_RTOL
 from fitting.noise import RICIAN, rician_value
-from fitting.signals import ir_value, mono_value, spgr_value
+from fitting.signals import ir_train, mono_train, spgr_train
 
 # model kinds (the constants row of each, in order); kind + RICIAN: the Rician expectation
 # of the kind's signal given σ, the last constant (fitting.noise.rician_spec)
@@ -47,65 +48,65 @@ def constants(n: int, *columns) -> np.ndarray:
 
 
 @jit
-def model_train(kind, x, p, c, out):
-    """Signal of one voxel at every acquisition value ``x`` into ``out``."""
+def model_train(kind, x, p, c, out, jac):
+    """Signal of one voxel at every acquisition value ``x`` into ``out``; with ``jac``
+    (M, P) also its exact derivatives by the parameters (a (0, 0) ``jac``: signal only).
+    Returns whether the kind has exact derivatives (else ``jac`` is left untouched)."""
     m = x.size
     base = kind % RICIAN
+    exact = True
     if base == IR:
-        for j in range(m):
-            v = ir_value(x[j], p[0], p[1], p[2], c[0], c[1])
-            out[j] = v if c[2] != 0.0 else abs(v)
+        ir_train(x, p[0], p[1], p[2], c[0], c[1], out, jac)
+        if c[2] == 0.0:                     # magnitude |S|; d|S| = sign(S)·dS, + at 0
+            for j in range(m):
+                if out[j] < 0.0:
+                    out[j] = -out[j]
+                    for k in range(jac.shape[1] if jac.shape[0] else 0):
+                        jac[j, k] = -jac[j, k]
     elif base == SPGR:
-        for j in range(m):
-            out[j] = spgr_value(x[j], p[0], p[1], c[0], c[1])
+        spgr_train(x, p[0], p[1], c[0], c[1], out, jac)
     elif base == MONO:
-        plateau = p[2] if p.size > 2 else 0.0
-        for j in range(m):
-            out[j] = mono_value(x[j], p[0], p[1], plateau)
+        mono_train(x, p[0], p[1], p[2] if p.size > 2 else 0.0, out, jac)
     else:
+        exact = False
         for j in range(m):
             out[j] = np.nan
-    if kind >= RICIAN:
+    if kind >= RICIAN:                      # E|S| given σ; dE/dp = dE/dν·dν/dp
         sigma = c[c.size - 1]
         for j in range(m):
-            out[j] = rician_value(out[j], sigma)[0]
+            mean, slope = rician_value(out[j], sigma)
+            out[j] = mean
+            if exact:
+                for k in range(jac.shape[1] if jac.shape[0] else 0):
+                    jac[j, k] *= slope
+    return exact
 
 
 @jit
-def _jacobian(kind, x, p, c, f0, hi, scale, jac, q, fq, base_f, slope):
-    """dS/dp (M, P): forward differences pulled inside the upper bound, the scale
-    parameter exactly as S at M0 = 1 (as :func:`fitting.lm.jacobian`). For a Rician kind
-    the differences are taken on the underlying signal ν and multiplied by dE|S|/dν (the
-    chain rule; one expectation per point instead of one per column). ``base_f``, ``slope``:
-    work arrays (M,)."""
+def _jacobian(kind, x, p, c, f0, hi, scale, jac, q, fq, none):
+    """dS/dp (M, P) at ``p`` (``f0``: the signal there): exact where the kind has
+    derivatives, else forward differences pulled inside the upper bound with the scale
+    parameter exact as S at M0 = 1 (as :func:`fitting.lm.jacobian`)."""
+    if model_train(kind, x, p, c, fq, jac):
+        return
     npar = p.size
     m = x.size
-    base = kind % RICIAN
-    if kind >= RICIAN:
-        sigma = c[c.size - 1]
-        model_train(base, x, p, c, base_f)
-        for j in range(m):
-            slope[j] = rician_value(base_f[j], sigma)[1]
-    else:
-        for j in range(m):
-            base_f[j] = f0[j]
-            slope[j] = 1.0
     for i in range(npar):
         for k in range(npar):
             q[k] = p[k]
         if i == scale:
             q[i] = 1.0
-            model_train(base, x, q, c, fq)
+            model_train(kind, x, q, c, fq, none)
             for j in range(m):
-                jac[j, i] = fq[j] * slope[j]
+                jac[j, i] = fq[j]
             continue
         h = FD_REL_STEP * max(abs(p[i]), 1e-3)
         if p[i] + h > hi[i]:
             h = -h
         q[i] += h
-        model_train(base, x, q, c, fq)
+        model_train(kind, x, q, c, fq, none)
         for j in range(m):
-            jac[j, i] = (fq[j] - base_f[j]) / h * slope[j]
+            jac[j, i] = (fq[j] - f0[j]) / h
 
 
 @jit
@@ -157,7 +158,7 @@ def _cost(f, y, r):
 
 @jit
 def lm_voxel(kind, x, y, p, lo, hi, c, scale, max_iter, xtol, ftol, lam0, nielsen,
-             f, r, ft, rt, trial, jac, q, fq, base_f, slope, jtj, jtr, a, b, step):
+             f, r, ft, rt, trial, jac, q, fq, none, jtj, jtr, a, b, step):
     """Fit one voxel in place (``p`` holds the start, then the estimate).
 
     Returns (cost, state, iterations) with state :data:`CONVERGED`,
@@ -168,7 +169,7 @@ def lm_voxel(kind, x, y, p, lo, hi, c, scale, max_iter, xtol, ftol, lam0, nielse
     npar = p.size
     for i in range(npar):
         p[i] = min(max(p[i], lo[i]), hi[i])
-    model_train(kind, x, p, c, f)
+    model_train(kind, x, p, c, f, none)
     cost = _cost(f, y, r)
     if not math.isfinite(cost):
         return cost, BAD_START, 0
@@ -178,7 +179,7 @@ def lm_voxel(kind, x, y, p, lo, hi, c, scale, max_iter, xtol, ftol, lam0, nielse
     stall_ref = cost
     for it in range(max_iter):
         if need_jac:
-            _jacobian(kind, x, p, c, f, hi, scale, jac, q, fq, base_f, slope)
+            _jacobian(kind, x, p, c, f, hi, scale, jac, q, fq, none)
             _normal(jac, r, jtj, jtr)
             need_jac = False
         dmax = 0.0
@@ -195,7 +196,7 @@ def lm_voxel(kind, x, y, p, lo, hi, c, scale, max_iter, xtol, ftol, lam0, nielse
         for i in range(npar):
             trial[i] = min(max(p[i] + step[i], lo[i]), hi[i])
             rel_step = max(rel_step, abs(trial[i] - p[i]) / (abs(p[i]) + xtol))
-        model_train(kind, x, trial, c, ft)
+        model_train(kind, x, trial, c, ft, none)
         cost_t = _cost(ft, y, rt)
         ok = math.isfinite(cost_t) and cost_t < cost
         small_cost = ok and (cost - cost_t) <= ftol * cost
@@ -237,13 +238,13 @@ def lm_voxel(kind, x, y, p, lo, hi, c, scale, max_iter, xtol, ftol, lam0, nielse
 
 
 @jit
-def stderr_voxel(kind, x, p, c, hi, scale, sigma, f, jac, q, fq, base_f, slope, jtj, inv, err):
+def stderr_voxel(kind, x, p, c, hi, scale, sigma, f, jac, q, fq, none, jtj, inv, err):
     """√diag(σ²·(JᵀJ)⁻¹) at ``p`` into ``err`` (NaN where JᵀJ is singular), inverting
     JᵀJ scaled to unit diagonal as :func:`fitting.uncertainty.covariance` does."""
     npar = p.size
     m = x.size
-    model_train(kind, x, p, c, f)
-    _jacobian(kind, x, p, c, f, hi, scale, jac, q, fq, base_f, slope)
+    model_train(kind, x, p, c, f, none)
+    _jacobian(kind, x, p, c, f, hi, scale, jac, q, fq, none)
     finite = True
     for i in range(npar):
         for k in range(npar):
@@ -314,7 +315,7 @@ def fit_block(kind, x, y, p, lo, hi, c, scale, max_iter, xtol, ftol, lam0, niels
     n, m = y.shape
     npar = p.shape[1]
     f, r, ft, rt, fq = np.empty(m), np.empty(m), np.empty(m), np.empty(m), np.empty(m)
-    base_f, slope = np.empty(m), np.empty(m)
+    none = np.empty((0, 0))
     trial, q, jtr = np.empty(npar), np.empty(npar), np.empty(npar)
     b, step = np.empty(npar), np.empty(npar)
     jac = np.empty((m, npar))
@@ -324,7 +325,7 @@ def fit_block(kind, x, y, p, lo, hi, c, scale, max_iter, xtol, ftol, lam0, niels
         pi = p[i]
         cost[i], state[i], n_iter[i] = lm_voxel(
             kind, x, y[i], pi, lo, hi, c[i], scale, max_iter, xtol, ftol, lam0, nielsen,
-            f, r, ft, rt, trial, jac, q, fq, base_f, slope, jtj, jtr, a, b, step)
+            f, r, ft, rt, trial, jac, q, fq, none, jtj, jtr, a, b, step)
         if state[i] != CONVERGED:
             for k in range(npar):
                 err[i, k] = np.nan
@@ -335,5 +336,4 @@ def fit_block(kind, x, y, p, lo, hi, c, scale, max_iter, xtol, ftol, lam0, niels
             sigma = math.sqrt(cost[i] / dof)
         else:
             sigma = np.nan
-        stderr_voxel(kind, x, pi, c[i], hi, scale, sigma, f, jac, q, fq, base_f, slope, jtj, inv,
-                     err[i])
+        stderr_voxel(kind, x, pi, c[i], hi, scale, sigma, f, jac, q, fq, none, jtj, inv, err[i])

@@ -6,10 +6,12 @@ the tissue/scanner parameters broadcast together to a shape B (for example
 (N,) voxels, or scalars). The result has shape ``B + (M,)``. Times in seconds,
 angles in degrees.
 
-Each formula is written once, as a compiled scalar kernel (``*_value``, :mod:`fitting.jit`)
-that the compiled per-voxel engine (:mod:`fitting.kernels`) calls directly; the numpy
-functions here apply the same kernel elementwise, and every other caller (the numpy
-reference engine, the lmfit models, QC curves, protocol design) goes through them.
+Each formula is written once, as a compiled kernel of one voxel's train (``*_train``,
+:mod:`fitting.jit`: the signal at every acquisition value and, on request, its exact
+derivatives by the parameters) that the compiled per-voxel engine (:mod:`fitting.kernels`)
+calls directly; the numpy functions here run the same kernel over the broadcast
+parameters, and every other caller (the numpy reference engine, the lmfit models, QC
+curves, protocol design) goes through them.
 
 The extended-phase-graph CPMG model lives in :mod:`fitting.epg`.
 """
@@ -20,7 +22,7 @@ import math
 import numpy as np
 from numpy.typing import ArrayLike
 
-from fitting.jit import broadcast_apply, jit
+from fitting.jit import jit, train_apply
 
 _DEG = math.pi / 180.0
 
@@ -53,23 +55,44 @@ def ir_signal(ti: ArrayLike, t1: ArrayLike, m0: ArrayLike, eff: ArrayLike = 1.0,
     reduced-dimension fit. The signal is signed (real); magnitude data are |S|.
     TI, TR and T1 in seconds, α in degrees.
     """
-    ti, (t1, m0, eff, tr, alpha) = _prep(ti, t1, m0, eff, tr, alpha_deg)
-    return broadcast_apply(_ir_loop, ti, t1, m0, eff, tr, alpha)
+    return train_apply(_ir_loop, ti, t1, m0, eff, tr, alpha_deg)
 
 
 @jit
-def ir_value(ti: float, t1: float, m0: float, eff: float, tr: float, alpha_deg: float) -> float:
-    """:func:`ir_signal` at one TI (the compiled kernel; formula in its docstring)."""
+def ir_train(ti, t1: float, m0: float, eff: float, tr: float, alpha_deg: float, out, jac):
+    """:func:`ir_signal` of one voxel at every TI of ``ti`` into ``out`` (the compiled
+    kernel; formula in its docstring); with ``jac`` of shape (M, 3) also the exact
+    derivatives by (T1, M0, eff) (a (0, 0) ``jac`` skips them).
+
+    With E = e^(−TI/T1), E_R = e^(−TR/T1), N = 1 − (1 + eff)·E + eff·E_R and
+    D = 1 + eff·cos α·E_R: S = M0·sin α·N/D, dE/dT1 = E·TI/T1², dE_R/dT1 = E_R·TR/T1².
+    """
     a = alpha_deg * _DEG
+    sa = math.sin(a)
+    ca = math.cos(a)
     e_tr = math.exp(-tr / t1)
-    num = 1.0 - (1.0 + eff) * math.exp(-ti / t1) + eff * e_tr
-    return m0 * math.sin(a) * num / (1.0 + eff * math.cos(a) * e_tr)
+    den = 1.0 + eff * ca * e_tr
+    grad = jac.shape[0] > 0
+    if grad:
+        de_tr = e_tr * tr / (t1 * t1) if e_tr > 0.0 else 0.0     # TR = inf: E_R = 0
+        dden_t1 = eff * ca * de_tr
+        dden_eff = ca * e_tr
+    for j in range(ti.size):
+        e = math.exp(-ti[j] / t1)
+        num = 1.0 - (1.0 + eff) * e + eff * e_tr
+        out[j] = m0 * sa * num / den
+        if grad:
+            dnum_t1 = -(1.0 + eff) * e * ti[j] / (t1 * t1) + eff * de_tr
+            jac[j, 0] = m0 * sa * (dnum_t1 * den - num * dden_t1) / (den * den)
+            jac[j, 1] = sa * num / den
+            jac[j, 2] = m0 * sa * ((e_tr - e) * den - num * dden_eff) / (den * den)
 
 
 @jit
 def _ir_loop(ti, t1, m0, eff, tr, alpha, out):
-    for i in range(out.size):
-        out[i] = ir_value(ti[i], t1[i], m0[i], eff[i], tr[i], alpha[i])
+    none = np.empty((0, 0))
+    for i in range(out.shape[0]):
+        ir_train(ti, t1[i], m0[i], eff[i], tr[i], alpha[i], out[i], none)
 
 
 def ir_ab_from_params(t1: ArrayLike, m0: ArrayLike, eff: ArrayLike = 1.0,
@@ -120,23 +143,34 @@ def spgr_signal(alpha_deg: ArrayLike, t1: ArrayLike, m0: ArrayLike, tr: ArrayLik
     Rev Sci Instrum 37:93; Deoni, Rutt & Peters 2003, Magn Reson Med 49:515).
     Peaks at the Ernst angle arccos(E1). T2* decay at the echo time is folded into M0.
     """
-    alpha, (t1, m0, tr, b1) = _prep(alpha_deg, t1, m0, tr, b1)
-    return broadcast_apply(_spgr_loop, alpha, t1, m0, tr, b1)
+    return train_apply(_spgr_loop, alpha_deg, t1, m0, tr, b1)
 
 
 @jit
-def spgr_value(alpha_deg: float, t1: float, m0: float, tr: float, b1: float) -> float:
-    """:func:`spgr_signal` at one flip angle (the compiled kernel)."""
-    a = alpha_deg * _DEG * b1
+def spgr_train(alpha_deg, t1: float, m0: float, tr: float, b1: float, out, jac):
+    """:func:`spgr_signal` of one voxel at every flip angle into ``out`` (the compiled
+    kernel); with ``jac`` (M, 2) also the exact derivatives by (T1, M0):
+    dS/dE1 = M0·sin a·(cos a − 1)/(1 − cos a·E1)², dE1/dT1 = E1·TR/T1²."""
     # TR = inf (full recovery) gives E1 = 0 even for T1 = inf
     e1 = 0.0 if math.isinf(tr) else math.exp(-tr / t1)
-    return m0 * math.sin(a) * (1.0 - e1) / (1.0 - math.cos(a) * e1)
+    grad = jac.shape[0] > 0
+    de1 = e1 * tr / (t1 * t1) if e1 > 0.0 else 0.0
+    for j in range(alpha_deg.size):
+        a = alpha_deg[j] * _DEG * b1
+        sa = math.sin(a)
+        ca = math.cos(a)
+        out[j] = m0 * sa * (1.0 - e1) / (1.0 - ca * e1)
+        if grad:
+            den = 1.0 - ca * e1
+            jac[j, 0] = m0 * sa * (ca - 1.0) / (den * den) * de1
+            jac[j, 1] = sa * (1.0 - e1) / den
 
 
 @jit
 def _spgr_loop(alpha, t1, m0, tr, b1, out):
-    for i in range(out.size):
-        out[i] = spgr_value(alpha[i], t1[i], m0[i], tr[i], b1[i])
+    none = np.empty((0, 0))
+    for i in range(out.shape[0]):
+        spgr_train(alpha, t1[i], m0[i], tr[i], b1[i], out[i], none)
 
 
 def ernst_angle_deg(tr: ArrayLike, t1: ArrayLike) -> np.ndarray:
@@ -175,17 +209,26 @@ def mono_exp(te: ArrayLike, t2: ArrayLike, m0: ArrayLike, plateau: ArrayLike = 0
     The classic multi-echo spin-echo T2 model (``mese-mono``, optional constant
     plateau) and the T2* model of multi-echo gradient echo (``megre``) with T2 → T2*.
     """
-    te, (t2, m0, plateau) = _prep(te, t2, m0, plateau)
-    return broadcast_apply(_mono_loop, te, t2, m0, plateau)
+    return train_apply(_mono_loop, te, t2, m0, plateau)
 
 
 @jit
-def mono_value(te: float, t2: float, m0: float, plateau: float) -> float:
-    """:func:`mono_exp` at one echo time (the compiled kernel)."""
-    return m0 * math.exp(-te / t2) + plateau
+def mono_train(te, t2: float, m0: float, plateau: float, out, jac):
+    """:func:`mono_exp` of one voxel at every echo time into ``out`` (the compiled kernel);
+    with ``jac`` (M, 2) or (M, 3) also the exact derivatives by (T2, M0[, plateau])."""
+    grad = jac.shape[0] > 0
+    for j in range(te.size):
+        e = math.exp(-te[j] / t2)
+        out[j] = m0 * e + plateau
+        if grad:
+            jac[j, 0] = m0 * e * te[j] / (t2 * t2)
+            jac[j, 1] = e
+            if jac.shape[1] > 2:
+                jac[j, 2] = 1.0
 
 
 @jit
 def _mono_loop(te, t2, m0, plateau, out):
-    for i in range(out.size):
-        out[i] = mono_value(te[i], t2[i], m0[i], plateau[i])
+    none = np.empty((0, 0))
+    for i in range(out.shape[0]):
+        mono_train(te, t2[i], m0[i], plateau[i], out[i], none)
