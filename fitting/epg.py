@@ -25,8 +25,9 @@ Implementation notes
 --------------------
 * Dephasing is one order per ESP/2 lobe, so just before each refocusing pulse
   only odd orders k = 2j+1 exist and at echo times only even ones. States are
-  stored at the pulse times (positive orders, negative orders, Z̃), state-major
-  and voxel-minor, in blocks of voxels small enough to stay in cache.
+  stored at the pulse times (positive orders, negative orders, Z̃), one voxel at a
+  time in a compiled kernel (:func:`epg_train`, :mod:`fitting.jit`) that the numpy
+  functions here run over all voxels and the compiled fitting engine calls directly.
 * After pulse n (1-based) of N, a state of order 2j+1 cannot reach F_0 before
   echo n + j, so only j ≤ N − n is propagated: at most ⌈N/2⌉ states, and a loop
   over echoes (never over voxels or states).
@@ -43,10 +44,13 @@ Implementation notes
 """
 from __future__ import annotations
 
+import math
+
 import numpy as np
 from numpy.typing import ArrayLike
 
 from fitting.errors import RelaxlineError
+from fitting.jit import jit
 
 
 def _check(n_echoes: int, esp: float) -> tuple[int, float]:
@@ -56,9 +60,6 @@ def _check(n_echoes: int, esp: float) -> tuple[int, float]:
     if not esp > 0 or not np.isfinite(esp):
         raise RelaxlineError(f"cpmg_echoes: echo spacing must be a positive number of seconds, got {esp!r}")
     return int(n_echoes), esp
-
-
-_CHUNK = 4096  # voxels per block: keeps the (states × voxels) arrays in cache
 
 
 def _simulate(n_echoes: int, esp: float, t2: ArrayLike, t1: ArrayLike, b1: ArrayLike,
@@ -86,131 +87,142 @@ def _trains(n_echoes: int, esp: float, t2: ArrayLike, t1: ArrayLike, alpha: Arra
     shape = arrs[0].shape
     t2, t1, alpha, dalpha, f0, df0 = (p.reshape(-1) for p in arrs)
     nv = t2.size
-    out = np.empty((3 if derivs else 1, n, nv))
-    for lo in range(0, nv, _CHUNK):
-        sl = slice(lo, min(lo + _CHUNK, nv))
-        _recursion(n, esp, t2[sl], t1[sl], alpha[sl], dalpha[sl], f0[sl], df0[sl],
-                   out[:, :, sl])
+    out = np.empty((3 if derivs else 1, nv, n))
+    _recursion(n, esp, *(np.ascontiguousarray(a) for a in (t2, t1, alpha, dalpha, f0, df0)),
+               derivs, out)
     if not signed:                             # magnitude; d|S| = sign(S)·dS (sign 0 taken as +)
         neg = out[0] < 0
         out = np.where(neg, -out, out)
-    res = [np.ascontiguousarray(o.T).reshape(shape + (n,)) for o in out]
+    res = [o.reshape(shape + (n,)) for o in out]
     return tuple(res) if derivs else res[0]
 
 
-def _pulse_relax(a, b, z, u, d, w, s2e2, sae2, e2, ca1, hsa1) -> None:
-    """Refocusing pulse then ESP of relaxation, in place on (F_+, F_−, Z̃) given u = F_− − F_+.
+@jit
+def epg_train(n, esp, t2, t1, alpha, dalpha, f0, dfdb, derivs, s, dt2, db1, pos, neg, zz,
+              gpos, gneg, gzz):
+    """EPG state recursion of one voxel: the signed echoes into ``s`` and, if ``derivs``,
+    dS/dT2 and dS/dB1 into ``dt2``, ``db1`` (forward-mode: the derivative states are
+    carried through the same recursion, so they are exact to rounding).
 
-    F_+ ← e2·(F_+ + s²·u − sin α·Z̃), F_− ← e2·(F_− − s²·u + sin α·Z̃),
-    Z̃ ← e1·(cos α·Z̃ − ½ sin α·u), the relaxation factors folded into the coefficients.
-    ``d`` and ``w`` are scratch arrays of the same shape.
+    ``alpha``: the actual refocusing angle (rad); ``f0``: the transverse magnetisation
+    the excitation leaves on the CPMG axis; ``dalpha``, ``dfdb``: their derivatives by
+    the scale parameter B1. A refocusing pulse of angle α acts on (F_+, F_−, Z̃) of each
+    order as in the module docstring; relaxation over ESP is folded into its
+    coefficients: F_+ ← e2·(F_+ + s²·u − sin α·Z̃), F_− ← e2·(F_− − s²·u + sin α·Z̃),
+    Z̃ ← e1·(cos α·Z̃ − ½ sin α·u) with u = F_− − F_+. Positive orders F_+(2j+1) live at
+    ``pos[pp + j]`` (pp falls by one per pulse, the new F_+1 being the old F_−1),
+    negative orders at ``neg[qq + j]`` (qq rises by one), Z̃_(2j+1) at ``zz[j]``, so the
+    order shift between pulses is a change of offset; after pulse p only
+    min(p, n − p + 1) states can still reach an echo. ``pos``, ``neg`` (n + 1,), ``zz``
+    (⌈n/2⌉ + 1,) are work arrays, and ``gpos``, ``gneg`` (2, n + 1), ``gzz``
+    (2, ⌈n/2⌉ + 1) for the derivative states (d/dT2, d/dB1).
     """
-    np.multiply(s2e2, u, out=d)
-    np.multiply(sae2, z, out=w)
-    a *= e2
-    a += d
-    a -= w
-    b *= e2
-    b -= d
-    b += w
-    z *= ca1
-    np.multiply(hsa1, u, out=d)
-    z -= d
-
-
-def _recursion(n: int, esp: float, t2, t1, alpha, dalpha, f0, dfdb, out) -> None:
-    """EPG state recursion for one block of voxels, written into ``out`` (1 or 3, n, nv).
-
-    ``alpha``: refocusing angle (rad) per voxel; ``f0``: transverse magnetisation after the
-    excitation; ``dalpha``, ``dfdb``: their derivatives in the scale parameter B1.
-    States live in buffers indexed so that the order shift between pulses is a change
-    of offset, not a copy: positive orders F_+(2j+1) at ``pos[pp + j]`` (pp falls by one
-    per pulse, the new F_+1 being the old F_−1), negative orders F_−(2j+1) at
-    ``neg[qq + j]`` (qq rises by one), Z̃_(2j+1) at ``zz[j]``. Relaxation over ESP is
-    folded into the pulse coefficients. Derivative states (d/dT2, d/dB1) are carried
-    in the same layout with a leading axis of 2.
-    """
-    derivs = out.shape[0] == 3
-    nv = t2.size
-    sa, ca = np.sin(alpha), np.cos(alpha)
-    s2 = np.sin(0.5 * alpha) ** 2
+    sa = math.sin(alpha)
+    ca = math.cos(alpha)
+    s2 = math.sin(0.5 * alpha) ** 2
     hsa = 0.5 * sa
-    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
-        e2h = np.exp(-0.5 * esp / t2)          # F relaxation over ESP/2
-        e1 = np.exp(-esp / t1)                 # Z relaxation over ESP (regrowth never echoes)
-        r2 = esp / t2 ** 2                     # d ln(e2)/dT2 (e2 = e2h²)
-        r2 = np.where(np.isfinite(r2), r2, 0.0)
+    e2h = math.exp(-0.5 * esp / t2)
+    e1 = math.exp(-esp / t1)
+    r2 = esp / t2 ** 2
+    if not math.isfinite(r2):
+        r2 = 0.0
     e2 = e2h * e2h
-    s2e2, sae2 = s2 * e2, sa * e2
-    ca1, hsa1 = ca * e1, hsa * e1
-
-    nj = (n + 1) // 2 + 1                      # active states min(p, N − p + 1) ≤ ⌈N/2⌉
-    pos = np.zeros((n + 1, nv))                # slots pp + j ≤ n
-    neg = np.zeros((n + 1, nv))                # slots qq + j ≤ n − 1; never-used slots stay 0
-    zz = np.zeros((nj, nv))
-    tu = np.empty((nj, nv))
-    td = np.empty((nj, nv))
-    tw = np.empty((nj, nv))
-    pp, qq = n, 0
-    # The excitation puts f0 on the CPMG axis, then ESP/2 to pulse 1.
+    s2e2 = s2 * e2
+    sae2 = sa * e2
+    ca1 = ca * e1
+    hsa1 = hsa * e1
+    for i in range(n + 1):
+        pos[i] = 0.0
+        neg[i] = 0.0
+    for i in range(zz.size):
+        zz[i] = 0.0
+    pp = n
+    qq = 0
     pos[pp] = f0 * e2h
     if derivs:
-        gpos = np.zeros((2,) + pos.shape)
-        gneg = np.zeros((2,) + neg.shape)
-        gzz = np.zeros((2,) + zz.shape)
-        gu = np.empty((2, nj, nv))
-        gd = np.empty((2, nj, nv))
-        gw = np.empty((2, nj, nv))
-        gpos[0, pp] = f0 * e2h * (0.5 * r2)    # d e2h/dT2 = e2h·ESP/(2·T2²)
+        for k in range(2):
+            for i in range(n + 1):
+                gpos[k, i] = 0.0
+                gneg[k, i] = 0.0
+            for i in range(zz.size):
+                gzz[k, i] = 0.0
+        gpos[0, pp] = f0 * e2h * (0.5 * r2)
         gpos[1, pp] = dfdb * e2h
-        ds2 = hsa * dalpha                     # d s²/dB1
-        dsa = ca * dalpha
-        dca = -sa * dalpha
-        ds2e2, dsae2 = ds2 * e2, dsa * e2
-        dca1, hdsa1 = dca * e1, 0.5 * dsa * e1
-        de2h = e2h * (0.5 * r2)
-
+    ds2 = hsa * dalpha
+    dsa = ca * dalpha
+    dca = -sa * dalpha
+    ds2e2 = ds2 * e2
+    dsae2 = dsa * e2
+    dca1 = dca * e1
+    hdsa1 = 0.5 * dsa * e1
+    de2h = e2h * (0.5 * r2)
     for p in range(1, n + 1):
-        m = min(p, n - p + 1)                  # states that can still reach an echo
-        a, b, z = pos[pp:pp + m], neg[qq:qq + m], zz[:m]
-        u, d, w = tu[:m], td[:m], tw[:m]
-        np.subtract(b, a, out=u)
-        # Echo p: F_−1 just after the pulse, relaxed over ESP/2, is F_0.
-        fm1 = b[0] - s2 * u[0] + sa * z[0]
-        out[0, p - 1] = e2h * fm1
+        m = min(p, n - p + 1)
+        u0 = neg[qq] - pos[pp]
+        fm1 = neg[qq] - s2 * u0 + sa * zz[0]
+        s[p - 1] = e2h * fm1
         if derivs:
-            ga, gb, gz = gpos[:, pp:pp + m], gneg[:, qq:qq + m], gzz[:, :m]
-            gu_, gd_, gw_ = gu[:, :m], gd[:, :m], gw[:, :m]
-            np.subtract(gb, ga, out=gu_)
-            g_fm1 = gb[:, 0] - s2 * gu_[:, 0] + sa * gz[:, 0]
-            out[1, p - 1] = e2h * g_fm1[0] + de2h * fm1
-            out[2, p - 1] = e2h * (g_fm1[1] - ds2 * u[0] + dsa * z[0])
-            if p < n:
-                # linear part, then the pulse-coefficient terms of d/dB1 (need old a, b, z, u)
-                _pulse_relax(ga, gb, gz, gu_, gd_, gw_, s2e2, sae2, e2, ca1, hsa1)
-                np.multiply(ds2e2, u, out=gd_[0])
-                np.multiply(dsae2, z, out=gw_[0])
-                gd_[0] -= gw_[0]
-                ga[1] += gd_[0]
-                gb[1] -= gd_[0]
-                np.multiply(dca1, z, out=gd_[0])
-                np.multiply(hdsa1, u, out=gw_[0])
-                gd_[0] -= gw_[0]
-                gz[1] += gd_[0]
+            gu0 = gneg[0, qq] - gpos[0, pp]
+            gu1 = gneg[1, qq] - gpos[1, pp]
+            g0 = gneg[0, qq] - s2 * gu0 + sa * gzz[0, 0]
+            g1 = gneg[1, qq] - s2 * gu1 + sa * gzz[1, 0]
+            dt2[p - 1] = e2h * g0 + de2h * fm1
+            db1[p - 1] = e2h * (g1 - ds2 * u0 + dsa * zz[0])
         if p == n:
             break
-        _pulse_relax(a, b, z, u, d, w, s2e2, sae2, e2, ca1, hsa1)
-        if derivs:                             # d(e2)/dT2 = e2·r2 times the new (relaxed) F
-            np.multiply(r2, a, out=d)
-            ga[0] += d
-            np.multiply(r2, b, out=d)
-            gb[0] += d
-        # Orders move by +2: the old F_−1 becomes F_+1, every other state keeps its slot.
+        for j in range(m):
+            a = pos[pp + j]
+            b = neg[qq + j]
+            z = zz[j]
+            u = b - a
+            d = s2e2 * u
+            w = sae2 * z
+            na = a * e2 + d - w
+            nb = b * e2 - d + w
+            nz = z * ca1 - hsa1 * u
+            if derivs:
+                # d/dT2: the same pulse, plus d(e2)/dT2 = e2·r2 times the new (relaxed) F
+                ga = gpos[0, pp + j]
+                gb = gneg[0, qq + j]
+                gz = gzz[0, j]
+                gu = gb - ga
+                gd = s2e2 * gu
+                gw = sae2 * gz
+                gpos[0, pp + j] = ga * e2 + gd - gw + r2 * na
+                gneg[0, qq + j] = gb * e2 - gd + gw + r2 * nb
+                gzz[0, j] = gz * ca1 - hsa1 * gu
+                # d/dB1: the same pulse, plus the pulse coefficients' derivatives
+                ga = gpos[1, pp + j]
+                gb = gneg[1, qq + j]
+                gz = gzz[1, j]
+                gu = gb - ga
+                gd = s2e2 * gu
+                gw = sae2 * gz
+                t = ds2e2 * u - dsae2 * z
+                gpos[1, pp + j] = ga * e2 + gd - gw + t
+                gneg[1, qq + j] = gb * e2 - gd + gw - t
+                gzz[1, j] = gz * ca1 - hsa1 * gu + (dca1 * z - hdsa1 * u)
+            pos[pp + j] = na
+            neg[qq + j] = nb
+            zz[j] = nz
         pp -= 1
-        pos[pp] = b[0]
+        pos[pp] = neg[qq]
         if derivs:
-            gpos[:, pp] = gb[:, 0]
+            gpos[0, pp] = gneg[0, qq]
+            gpos[1, pp] = gneg[1, qq]
         qq += 1
+
+
+@jit
+def _recursion(n, esp, t2, t1, alpha, dalpha, f0, dfdb, derivs, out):
+    """:func:`epg_train` of every voxel: ``out`` (1 or 3, N, n) gets S (and dS/dT2, dS/dB1)."""
+    nj = (n + 1) // 2 + 1
+    pos, neg, zz = np.empty(n + 1), np.empty(n + 1), np.empty(nj)
+    gpos, gneg, gzz = np.empty((2, n + 1)), np.empty((2, n + 1)), np.empty((2, nj))
+    for i in range(t2.size):
+        k = 1 if derivs else 0
+        epg_train(n, esp, t2[i], t1[i], alpha[i], dalpha[i], f0[i], dfdb[i], derivs, out[0, i],
+                  out[k, i], out[2 * k, i], pos, neg, zz, gpos, gneg, gzz)
 
 
 def cpmg_echoes(n_echoes: int, esp: float, t2: ArrayLike, t1: ArrayLike, b1: ArrayLike = 1.0,

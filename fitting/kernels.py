@@ -27,6 +27,7 @@ import numpy as np
 
 from fitting.jit import jit
 from fitting.lm import FD_REL_STEP, STALL_ITER, STALL_RTOL
+from fitting.epg import epg_train
 from fitting.noise import RICIAN, rician_value
 from fitting.signals import ir_train, mono_train, spgr_train
 
@@ -35,6 +36,7 @@ from fitting.signals import ir_train, mono_train, spgr_train
 IR = 1      # inversion recovery: TR, α, signed (0: magnitude |S|)
 SPGR = 2    # spoiled gradient echo (vfa): TR, B1
 MONO = 3    # mono-exponential (+ plateau when a third parameter is fitted): none
+EPG = 4     # CPMG echo train (T2, M0[, B1]): ESP, T1, α_ref, α_exc (rad), B1 when not fitted
 
 CONVERGED, NOT_CONVERGED, BAD_START = 1, 0, -1
 
@@ -67,6 +69,8 @@ def model_train(kind, x, p, c, out, jac):
         spgr_train(x, p[0], p[1], c[0], c[1], out, jac)
     elif base == MONO:
         mono_train(x, p[0], p[1], p[2] if p.size > 2 else 0.0, out, jac)
+    elif base == EPG:
+        _epg(x, p, c, out, jac)
     else:
         exact = False
         for j in range(m):
@@ -80,6 +84,39 @@ def model_train(kind, x, p, c, out, jac):
                 for k in range(jac.shape[1] if jac.shape[0] else 0):
                     jac[j, k] *= slope
     return exact
+
+
+@jit
+def _epg(x, p, c, out, jac):
+    """|S| of the CPMG train (:func:`fitting.epg.epg_train`, both pulses scaled by B1) and,
+    with ``jac`` (M, 2 or 3), d|S|/d(T2, M0[, B1]) — the columns of the numpy model's
+    Jacobian: the train at M0 = 1 and its T2/B1 derivatives times M0."""
+    n = x.size
+    grad = jac.shape[0] > 0
+    t2, m0 = p[0], p[1]
+    b1 = p[2] if p.size > 2 else c[4]
+    a_ref, a_exc = c[2], c[3]
+    nj = (n + 1) // 2 + 1
+    pos, neg, zz = np.empty(n + 1), np.empty(n + 1), np.empty(nj)
+    if not grad:
+        gpos, gneg, gzz = np.empty((2, 0)), np.empty((2, 0)), np.empty((2, 0))
+        epg_train(n, c[0], t2, c[1], b1 * a_ref, a_ref, m0 * math.sin(b1 * a_exc), 0.0,
+                  False, out, out, out, pos, neg, zz, gpos, gneg, gzz)
+        for j in range(n):
+            out[j] = abs(out[j])
+        return
+    gpos, gneg, gzz = np.empty((2, n + 1)), np.empty((2, n + 1)), np.empty((2, nj))
+    dt2, db1 = np.empty(n), np.empty(n)
+    epg_train(n, c[0], t2, c[1], b1 * a_ref, a_ref, math.sin(b1 * a_exc),
+              a_exc * math.cos(b1 * a_exc), True, out, dt2, db1, pos, neg, zz, gpos, gneg, gzz)
+    for j in range(n):
+        sign = -1.0 if out[j] < 0.0 else 1.0     # d|S| = sign(S)·dS, + at 0
+        s1 = sign * out[j]
+        jac[j, 0] = sign * dt2[j] * m0
+        jac[j, 1] = s1
+        if jac.shape[1] > 2:
+            jac[j, 2] = sign * db1[j] * m0
+        out[j] = m0 * s1
 
 
 @jit

@@ -188,7 +188,10 @@ def _rician_prepare(base_prepare, x, data, fixed):
 
 def _rician_kernel(base_build, x, fixed, n):
     """The compiled form: the base kind + :data:`RICIAN`, σ appended to the constants."""
-    kind, xk, consts = base_build(x, fixed, n)
+    form = base_build(x, fixed, n)
+    if form is None:
+        return None
+    kind, xk, consts = form
     sigma = np.broadcast_to(_sigma(fixed).reshape(-1) if np.ndim(fixed["sigma"])
                             else _sigma(fixed), (n,))
     return kind + RICIAN, xk, np.column_stack([consts, sigma])

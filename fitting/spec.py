@@ -67,7 +67,9 @@ class Kernel:
 
     ``build(x, fixed, n) -> (kind, x_used, constants)``: the model kind, the acquisition
     values the kernel evaluates and an (n, K) array of each voxel's constants
-    (:func:`fitting.kernels.constants`). ``signal`` is the numpy signal it computes.
+    (:func:`fitting.kernels.constants`), or None when these constants have no compiled
+    form (the engine then runs the numpy iteration). ``signal`` is the numpy signal it
+    computes.
     """
 
     signal: Callable[[np.ndarray, Params, Fixed], np.ndarray]

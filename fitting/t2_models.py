@@ -193,6 +193,16 @@ def _train(x: np.ndarray, p: Params, fixed: Fixed, m0, derivs: bool):
              excite_deg=fixed["excite"], m0=m0)
 
 
+def _mese_kernel(x: np.ndarray, fixed: Fixed, n: int):
+    """The compiled form of the plain EPG train; None with a slice profile (its tabulated
+    model is evaluated by the numpy iteration)."""
+    if fixed.get("profile") is not None:
+        return None
+    return kernels.EPG, x, kernels.constants(
+        n, echo_spacing(x), fixed["t1"], np.deg2rad(fixed["refocus"]),
+        np.deg2rad(fixed["excite"]), fixed.get("b1", np.nan))
+
+
 def _mese_signal(x: np.ndarray, p: Params, fixed: Fixed) -> np.ndarray:
     return _train(x, p, fixed, p["M0"], derivs=False)
 
@@ -294,6 +304,7 @@ MESE = register(ModelSpec(
     fixed_from_meta=_mese_fixed,
     validate=_mese_validate,
     jacobian=_mese_jacobian,
+    kernel=Kernel(_mese_signal, _mese_kernel),
     scale_param="M0",
     primary="T2",
     description="multi-echo spin echo (CPMG) by extended phase graphs: T2, M0, B1",

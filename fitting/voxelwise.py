@@ -128,8 +128,9 @@ def fit_voxels(spec: ModelSpec, x: np.ndarray, data: np.ndarray, fixed: Fixed,
     def work(idx: np.ndarray):
         fx = subset_fixed(spec, fixed, idx)
         y, fx = spec.prepare(x, np.asarray(data[idx]), fx)
-        if compiled:
-            p, cost, stat, err = _compiled(spec, x, y, fx, max_iter, noise_sigma)
+        done = _compiled(spec, x, y, fx, max_iter, noise_sigma) if compiled else None
+        if done is not None:
+            p, cost, stat, err = done
         elif engine == "lmfit":
             vals, cost, ok = _lmfit_voxels(spec, x, y, fx, jobs)
             p, stat, err = vals, np.where(ok, st.OK, st.FAILED).astype(np.uint8), None
@@ -190,10 +191,14 @@ def _numpy_fast(spec: ModelSpec, x: np.ndarray, y: np.ndarray, fx: Fixed, max_it
 def _compiled(spec: ModelSpec, x: np.ndarray, y: np.ndarray, fx: Fixed, max_iter: int,
               noise_sigma: float | None):
     """Initialisation, then :func:`fitting.kernels.fit_block`: estimates, cost, status and
-    the standard errors of the converged voxels (NaN rows elsewhere)."""
+    the standard errors of the converged voxels (NaN rows elsewhere); None when the
+    kernel declines these constants (e.g. ``mese`` with a slice profile)."""
     from fitting import kernels
     n = y.shape[0]
-    kind, xk, consts = spec.compiled(x, fx, n)
+    form = spec.compiled(x, fx, n)
+    if form is None:          # this configuration has no compiled form (numpy iteration)
+        return None
+    kind, xk, consts = form
     p = np.array(spec.pack(spec.init(x, y, fx)), dtype=float, order="C")
     opt = _lm_settings(spec, max_iter)
     scale = spec.params.index(spec.scale_param) if spec.scale_param else -1
