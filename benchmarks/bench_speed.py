@@ -22,7 +22,7 @@ like on whatever load the machine carries (the load average is printed):
   ``--jobs 1`` over ``--jobs 2``.
 * ``--memory``: peak memory of ``fit ir`` on a 256×256×64×10 float32 series (uncompressed
   NIfTI) as a multiple of the series size (peak resident set growth over the imports,
-  and traced numpy/Python allocations), in a child process.
+  and traced numpy/Python allocations), in a child process (``bench_fit.py``'s part 2).
 * ``--demo``: wall time of ``relaxline demo`` (simulate + workflow + reports) on ``--cores``.
 
 The first CLI run of each model is a warm-up (it fills numba's on-disk cache), not timed.
@@ -44,6 +44,7 @@ from pathlib import Path
 import numpy as np
 
 from bench_fit import _Clock  # noqa: E402  (benchmarks/ is on sys.path when run as a script)
+from bench_fit import memory as fit_memory  # noqa: E402
 
 TI = np.array([0.05, 0.1, 0.2, 0.35, 0.5, 0.75, 1.0, 1.5, 2.2, 3.5])
 TR = 5.0
@@ -207,31 +208,6 @@ def end_to_end(model: str, path: Path, obj_rows: np.ndarray, x: np.ndarray, meta
     figures[model + ("-" + "-".join(e.strip("-") for e in extra) if extra else "")] = fig
 
 
-def memory(shape, work: Path) -> dict:
-    path, _ = write_ir(work, shape, 100.0, gz=False)
-    size = int(np.prod(shape)) * TI.size * 4
-    code = ("import json,sys,time,tracemalloc\n"
-            "from pathlib import Path\n"
-            "def rss(k):\n"
-            "    for l in open('/proc/self/status'):\n"
-            "        if l.startswith(k+':'): return int(l.split()[1])*1024\n"
-            "from pipeline.fitjob import fit_command\n"
-            "import fitting.voxelwise\n"
-            "base=rss('VmRSS'); tracemalloc.start(); t=time.perf_counter()\n"
-            f"fit_command('ir',[{str(path)!r}],{str(work / 'mem-out')!r},stream=open('/dev/null','w'))\n"
-            "el=time.perf_counter()-t; peak=tracemalloc.get_traced_memory()[1]\n"
-            "print(json.dumps({'base':base,'hwm':rss('VmHWM'),'traced':peak,'s':el}))\n")
-    res = run_child([sys.executable, "-c", code])
-    r = json.loads(res["stdout"].strip().splitlines()[-1])
-    out = {"series_bytes": size, "seconds": r["s"], "rss_growth_ratio": (r["hwm"] - r["base"]) / size,
-           "traced_ratio": r["traced"] / size, "rss_peak_ratio": r["hwm"] / size}
-    print(f"fit ir on {shape}x{TI.size} float32 ({size / 1e6:.0f} MB, uncompressed): "
-          f"{r['s']:.1f} s; peak RSS growth {out['rss_growth_ratio']:.2f}x series, traced "
-          f"allocations {out['traced_ratio']:.2f}x, whole-process peak RSS "
-          f"{out['rss_peak_ratio']:.2f}x")
-    return out
-
-
 def demo(work: Path, cores: int) -> dict:
     res = timed_child([_relaxline(), "demo", str(work / "demo"), "--cores", str(cores)])
     print(f"relaxline demo (4 sessions, --cores {cores}): {res['wall']:.1f} s wall, "
@@ -241,7 +217,7 @@ def demo(work: Path, cores: int) -> dict:
 
 def main(argv=None) -> int:
     p = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
-    p.add_argument("--ir-shape", default="96,96,48", help="x,y,z of the ir series")
+    p.add_argument("--ir-shape", default="128,128,64", help="x,y,z of the ir series")
     p.add_argument("--mese-shape", default="64,64,12", help="x,y,z of the mese series")
     p.add_argument("--sample", type=int, default=200, help="voxels of each per-voxel loop")
     p.add_argument("--jobs", default="1,2", help="--jobs values of the CLI runs")
@@ -285,7 +261,7 @@ def main(argv=None) -> int:
             else:
                 print("fit mese --slice-profile: not available in this checkout")
         if args.memory:
-            figures["memory"] = memory(tuple(int(v) for v in args.memory_shape.split(",")), work)
+            figures["memory"] = fit_memory(args)   # bench_fit's child-process measurement
         if args.demo:
             figures["demo"] = demo(work, args.cores)
     figures["load_after"] = os.getloadavg()
