@@ -88,11 +88,15 @@ def fit_one(model: Any, x: np.ndarray, y: np.ndarray, start: dict[str, float] | 
             voxel: dict[str, float] | None = None):
     """Fit one voxel; returns (values (P,), stderr (P,) or NaN, success, redchi-free cost).
 
-    ``start`` overrides the model's own ``guess``.
+    ``start`` overrides the model's own ``guess`` (which is skipped when ``start`` holds
+    every parameter: engines compute the starts of a whole batch in one vectorised call).
     """
     spec = model.spec
     voxel = voxel or {}
-    pars = model.guess(y, x=x, **voxel)
+    if start is not None and all(k in start for k in spec.params):
+        pars = model.make_params()       # bounds from the hints; values set below
+    else:
+        pars = model.guess(y, x=x, **voxel)
     if start is not None:
         for k in spec.params:
             v = start.get(k)

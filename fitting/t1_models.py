@@ -10,7 +10,9 @@ initialisation, sidecar handling and protocol validation.
   one-to-one onto the linear constants (a, b) of S = a + b·e^(−TI/T1), T1 is unbiased for
   any inversion angle, excitation angle or TR; ``eff`` then is the *apparent* efficiency
   (it also absorbs an excitation-angle error). Magnitude data are modelled as |S| with
-  polarity restored in the initialisation; complex data are phase-corrected
+  polarity restored in the initialisation, which refines every plausible position of
+  the null and keeps the lowest residual (:mod:`fitting.ir_search`), so the engines start
+  in the global minimum's basin even when a TI sits at the null; complex data are phase-corrected
   (φ = ½·arg Σ y², the sign chosen so the signal recovers with TI) and fitted as the
   signed real signal.
 * ``vfa`` — T1, M0 from spoiled gradient echoes at several flip angles, each nominal
@@ -20,12 +22,11 @@ initialisation, sidecar handling and protocol validation.
 """
 from __future__ import annotations
 
-from functools import lru_cache
 from typing import Any, Mapping
 
 import numpy as np
 
-from fitting import kernels
+from fitting import ir_search, kernels
 from fitting.errors import RelaxlineError
 from fitting.signals import dam_b1, dam_signals, ir_params_from_ab, ir_signal, spgr_signal
 from fitting.spec import Fixed, Kernel, ModelSpec, Params, register
@@ -84,62 +85,17 @@ def _ir_kernel(x: np.ndarray, fixed: Fixed, n: int):
                                             1.0 if fixed.get("signed") else 0.0)
 
 
-@lru_cache(maxsize=16)
-def _ir_grid(ti: tuple[float, ...], n: int = IR_GRID_POINTS):
-    """T1 grid, orthonormal bases Q of span{1, e^(−TI/T1)} as (M, 2G), and R⁻¹ (G, 2, 2)."""
-    t = np.asarray(ti)
-    grid = np.geomspace(T1_LOWER, T1_UPPER, n)
-    basis = np.stack([np.ones((n, t.size)), np.exp(-t[None, :] / grid[:, None])], axis=-1)
-    q, r = np.linalg.qr(basis)                      # (G, M, 2), (G, 2, 2)
-    rinv = np.linalg.inv(r)
-    qflat = np.ascontiguousarray(q.transpose(1, 0, 2).reshape(t.size, 2 * n))
-    return grid, qflat, rinv
-
-
 def _ir_init(x: np.ndarray, data: np.ndarray, fixed: Fixed) -> Params:
-    """Reduced-dimension non-linear least squares with polarity restoration.
+    """Reduced-dimension non-linear least squares over the polarity hypotheses.
 
-    For every T1 on a log grid the best (a, b) of S = a + b·e^(−TI/T1) are linear,
-    so the residual is ||y||² − ||Qᵀy||² with Q an orthonormal basis of the two
-    columns; maximising ||Qᵀy||² over the grid gives T1 (Barral et al. 2010,
-    Magn Reson Med 64:1057). Magnitude data are tried with the points before the
-    minimum negated, and with the minimum negated too (the zero crossing lies next
-    to the smallest magnitude; same reference). (M0, eff) follow exactly from (a, b)
-    at finite TR.
+    T1 and the linear constants (a, b) of S = a + b·e^(−TI/T1) come from
+    :func:`fitting.ir_search.search` (Barral et al. 2010, Magn Reson Med 64:1057): every
+    plausible sign pattern of magnitude data is refined and the lowest residual kept,
+    so the engines start in the global minimum's basin. (M0, eff) follow exactly from
+    (a, b) at finite TR.
     """
-    grid, qflat, rinv = _ir_grid(tuple(np.asarray(x, float).tolist()))
-    n, m = data.shape
-    g = grid.size
-    rows = np.arange(n)
-    if fixed.get("signed"):
-        y = data
-    else:
-        imin = np.argmin(data, axis=1)
-        y = np.where(np.arange(m)[None, :] < imin[:, None], -data, data)
-    # einsum (not BLAS) keeps each voxel's arithmetic independent of the batch size.
-    proj_a = np.einsum("nm,mk->nk", y, qflat)
-    projections = [proj_a]
-    if not fixed.get("signed"):
-        # second pattern: the minimum negated too, a rank-one change of the first
-        projections.append(proj_a - (2.0 * y[rows, imin])[:, None] * qflat[imin])
-    best = np.full(n, -np.inf)
-    best_g = np.zeros(n, dtype=int)
-    coef = np.zeros((n, 2))
-    for proj in projections:
-        proj = proj.reshape(n, g, 2)
-        score = np.einsum("ngj,ngj->ng", proj, proj)
-        gi = np.argmax(score, axis=1)
-        s = score[rows, gi]
-        better = s > best
-        best = np.where(better, s, best)
-        best_g = np.where(better, gi, best_g)
-        coef = np.where(better[:, None], proj[rows, gi], coef)
-    ab = np.einsum("nij,nj->ni", rinv[best_g], coef)
-    a, b = ab[:, 0], ab[:, 1]
-    if not fixed.get("signed"):  # |S| cannot tell the global sign: make the asymptote positive
-        flip = a < 0
-        a, b = np.where(flip, -a, a), np.where(flip, -b, b)
-    t1 = grid[best_g]
+    t1, a, b, _ = ir_search.search(x, data, bool(fixed.get("signed")), T1_LOWER, T1_UPPER,
+                                   IR_GRID_POINTS)
     m0, eff = ir_params_from_ab(t1, a, b, fixed["tr"], fixed["alpha"])
     fallback = np.max(np.abs(data), axis=1)
     m0 = np.where(np.isfinite(m0) & (m0 > 0), m0, fallback)

@@ -262,8 +262,10 @@ def _lmfit_chunk(spec: ModelSpec, x: np.ndarray, y: np.ndarray, fx: Fixed):
     vals = np.full((n, spec.n_params), np.nan)
     costs = np.full(n, np.nan)
     ok = np.zeros(n, bool)
+    starts = spec.init(x, y, fx)           # one vectorised call, the same per-voxel values
     for i in range(n):
-        v, _, success, c = fit_one(model, x, y[i], voxel=voxel_kwargs(spec, fx, i))
+        v, _, success, c = fit_one(model, x, y[i], voxel=voxel_kwargs(spec, fx, i),
+                                   start={k: float(starts[k][i]) for k in spec.params})
         vals[i], costs[i], ok[i] = v, c, success
     return vals, costs, ok
 

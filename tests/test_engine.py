@@ -123,9 +123,11 @@ def test_bad_voxels_get_status_and_nan(ir):
 def test_unconverged_voxels_fail_or_refit(ir):
     spec, fixed = ir
     _, y = _ir_data(20, 100, seed=6)
-    failed = fit_voxels(spec, TI, y, fixed, max_iter=1, refit=False)
+    # no iteration at all: the ir start (a refined reduced-dimension search) is often
+    # converged after a single LM step already
+    failed = fit_voxels(spec, TI, y, fixed, max_iter=0, refit=False)
     assert np.all(failed.status == st.FAILED) and np.isnan(failed.params["T1"]).all()
-    refit = fit_voxels(spec, TI, y, fixed, max_iter=1, refit=True)
+    refit = fit_voxels(spec, TI, y, fixed, max_iter=0, refit=True)
     assert np.all(refit.status == st.OK_REFIT)
     ref = fit_voxels(spec, TI, y, fixed)
     assert np.allclose(refit.params["T1"], ref.params["T1"], rtol=1e-3)
