@@ -28,7 +28,8 @@ import numpy as np
 
 from fitting import ir_search, kernels
 from fitting.errors import RelaxlineError
-from fitting.signals import dam_b1, dam_signals, ir_params_from_ab, ir_signal, spgr_signal
+from fitting.signals import (dam_b1, dam_signals, ir_params_from_ab, ir_signal,
+                             ir_signal_jacobian, spgr_signal)
 from fitting.spec import Fixed, Kernel, ModelSpec, Params, register
 
 T1_LOWER, T1_UPPER = 0.005, 20.0   # s; wide enough for phantoms and tissue at any field
@@ -85,6 +86,12 @@ def _ir_kernel(x: np.ndarray, fixed: Fixed, n: int):
                                             1.0 if fixed.get("signed") else 0.0)
 
 
+def _ir_jacobian(x: np.ndarray, p: Params, fixed: Fixed) -> np.ndarray:
+    """(N, M, 3) in the order (T1, M0, eff); magnitude data: d|S| = sign(S)·dS."""
+    s, jac = ir_signal_jacobian(x, p["T1"], p["M0"], p["eff"], fixed["tr"], fixed["alpha"])
+    return jac if fixed.get("signed") else np.where(s < 0, -1.0, 1.0)[..., None] * jac
+
+
 def _ir_init(x: np.ndarray, data: np.ndarray, fixed: Fixed) -> Params:
     """Reduced-dimension non-linear least squares over the polarity hypotheses.
 
@@ -112,6 +119,7 @@ IR = register(ModelSpec(
     xkey="InversionTime",
     signal=_ir_signal,
     init=_ir_init,
+    jacobian=_ir_jacobian,
     outputs={"T1": "T1map", "M0": "M0map", "eff": "InvEffmap"},
     min_volumes=3,   # = parameters; standard errors then need a background noise estimate
     fixed_from_meta=_ir_fixed,

@@ -3,7 +3,7 @@
 * Standard errors come from the Jacobian at the solution: cov = σ²·(JᵀJ)⁻¹ (the
   Gauss–Newton approximation of the inverse Fisher information for Gaussian noise).
 * σ is estimated from the residuals, σ² = RSS/(M − P), or taken from a background
-  (air) region when the series has one (:func:`background_sigma`).
+  (air) region when the series has one (:mod:`fitting.background`).
 * :func:`crlb` gives the Cramér–Rao lower bound on the standard deviation of each
   parameter for a protocol, true parameters and Gaussian noise σ (Kay 1993,
   Fundamentals of Statistical Signal Processing I, ch. 3); :func:`t1_crlb` is the
@@ -17,12 +17,6 @@ import numpy as np
 
 from fitting.lm import jacobian, normal_matrix
 from fitting.spec import Fixed, ModelSpec
-
-# Rayleigh background of a magnitude image: E[m²] = 2σ² (Henkelman 1985, Med Phys 12:232).
-RAYLEIGH_MEAN_SD_RATIO = np.sqrt(np.pi / 2) / np.sqrt((4 - np.pi) / 2)   # ≈ 1.913
-BACKGROUND_QUANTILE = 0.999
-MIN_BACKGROUND_SAMPLES = 1000
-
 
 def covariance(jac: np.ndarray, sigma: np.ndarray | float) -> np.ndarray:
     """σ²·(JᵀJ)⁻¹ per voxel, (N, P, P); NaN where JᵀJ is singular."""
@@ -60,73 +54,6 @@ def sigma_from_residuals(cost: np.ndarray, n_points: int, n_params: int) -> np.n
     if dof <= 0:
         return np.full(np.shape(cost), np.nan)
     return np.sqrt(np.asarray(cost, float) / dof)
-
-
-def background_sigma(values: np.ndarray, is_complex: bool = False) -> float | None:
-    """Noise σ from background samples, or None if they do not look like noise.
-
-    ``values``: samples (any shape) from voxels believed to hold no signal. Complex
-    data: σ is the standard deviation of the real and imaginary parts. Magnitude data:
-    Rayleigh-distributed, σ = √(mean(m²)/2) (Henkelman 1985, Med Phys 12:232; Gudbjartsson
-    & Patz 1995, Magn Reson Med 34:910). Rejected (None) when there are fewer than
-    :data:`MIN_BACKGROUND_SAMPLES` samples or, for magnitude, when mean/sd is more than
-    25 % off the Rayleigh value 1.913 (structured signal, zero-filled background).
-    """
-    v = np.asarray(values).ravel()
-    v = v[np.isfinite(v)]
-    if v.size < MIN_BACKGROUND_SAMPLES:
-        return None
-    if is_complex:
-        parts = np.concatenate([v.real, v.imag]).astype(float)
-        s = float(np.std(parts))
-        return s if s > 0 else None
-    m = np.abs(v).astype(float)
-    sd = m.std()
-    if not sd > 0:
-        return None
-    ratio = m.mean() / sd
-    if abs(ratio / RAYLEIGH_MEAN_SD_RATIO - 1) > 0.25:
-        return None
-    return float(np.sqrt(np.mean(m * m) / 2.0))
-
-
-def rayleigh_max_threshold(sigma: float, n_volumes: int,
-                           quantile: float = BACKGROUND_QUANTILE) -> float:
-    """Level the maximum of ``n_volumes`` independent Rayleigh(σ) samples stays below with
-    probability ``quantile``: σ·√(−2·ln(1 − q^(1/n))) (Rayleigh CDF 1 − e^(−m²/2σ²))."""
-    return float(sigma * np.sqrt(-2.0 * np.log(1.0 - quantile ** (1.0 / max(n_volumes, 1)))))
-
-
-def background_from_max(vmax: np.ndarray, samples_fn, n_volumes: int, is_complex: bool,
-                        iterations: int = 5) -> float | None:
-    """Find the background of a series and its σ iteratively.
-
-    ``vmax``: per-voxel maximum magnitude over the volumes (any shape). Starting from
-    the voxels below 5 % of the 99th percentile of ``vmax`` (background is far darker
-    than the object: common practice), σ is estimated, the background is redefined as
-    the voxels whose maximum stays under the Rayleigh max-of-n threshold
-    (:func:`rayleigh_max_threshold`) and σ re-estimated. ``samples_fn(sel)`` returns the
-    data samples of the voxels selected by the boolean array ``sel``.
-    """
-    vmax = np.asarray(vmax, float)
-    finite = np.isfinite(vmax) & (vmax > 0)
-    if finite.sum() < 10:
-        return None
-    top = np.percentile(vmax[finite], 99)
-    sel = finite & (vmax < 0.05 * top)
-    sigma = None
-    for _ in range(iterations):
-        if sel.sum() * n_volumes < MIN_BACKGROUND_SAMPLES:
-            return None
-        s = background_sigma(samples_fn(sel), is_complex)
-        if s is None:
-            return None
-        if sigma is not None and abs(s - sigma) <= 1e-3 * sigma:
-            sigma = s
-            break
-        sigma = s
-        sel = finite & (vmax < rayleigh_max_threshold(sigma, n_volumes))
-    return sigma
 
 
 def crlb(spec: ModelSpec, x: np.ndarray, params: Mapping[str, np.ndarray | float],

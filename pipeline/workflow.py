@@ -139,7 +139,7 @@ def step_chunk(model: str, inputs: Sequence[str], z0: int, z1: int, out: str,
                options: dict | None = None, t1_manifest: str | None = None) -> None:
     """Fit slices z0:z1 of a series into an .npz (noise σ from the whole series)."""
     from fitting.spec import configure_model
-    from pipeline.fitjob import estimate_noise, fit_arrays, prepare
+    from pipeline.fitjob import estimate_noise, fit_arrays, prepare, resolve_noise
     from pipeline.outputs import atomic_write_bytes
     from pipeline.series import load_grid_map
     from pipeline.t1map import load_t1_map
@@ -148,9 +148,13 @@ def step_chunk(model: str, inputs: Sequence[str], z0: int, z1: int, out: str,
     b1 = b1_map_path(b1_manifest) if b1_manifest else None
     b1_arr = load_grid_map(b1, series, what="B1 map") if b1 else None
     t1 = map_path(t1_manifest, "T1map") if t1_manifest else None
+    sigma = estimate_noise(series)     # whole series: every chunk resolves the same way
+    options = dict(options or {})
+    options["noise"] = resolve_noise(options.get("noise"), series, sigma, sys.stderr,
+                                     command="workflow chunk")
     options = {"engine": engine, "jobs": int(threads), "time_unit": time_unit, "mask": None,
-               "b1_map": str(b1) if b1 else None, "t1_map": t1,
-               "noise_sigma": estimate_noise(series), **(options or {})}
+               "b1_map": str(b1) if b1 else None, "t1_map": t1, "noise_sigma": sigma,
+               **options}
     if t1:
         options = _t1_fill(model, options)
     t1_arr = load_t1_map(configure_model(spec, options), series, t1) if t1 else None

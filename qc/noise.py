@@ -1,9 +1,9 @@
 """Background noise and signal-to-noise ratio per vial.
 
-The noise σ comes from the air around the phantom with the background finder and
-Rayleigh estimator of :mod:`fitting.uncertainty` (magnitude images: background values
-follow a Rayleigh distribution, σ = √(mean(m²)/2); Henkelman 1985, Med Phys 12:232;
-Gudbjartsson & Patz 1995, Magn Reson Med 34:910). This assumes single-channel
+The noise σ comes from the air around the phantom with the background estimator of
+:mod:`fitting.background` (magnitude images: background values follow a Rayleigh
+distribution; Gudbjartsson & Patz 1995, Magn Reson Med 34:910; σ from the truncated
+lower part of the background, so faint vials do not bias it). This assumes single-channel
 magnitude noise (or an equivalent); parallel-imaging reconstructions and multi-coil
 sum-of-squares images make the background non-Rayleigh (the estimator then declines
 and says why).
@@ -18,7 +18,7 @@ from typing import Mapping
 import numpy as np
 import pandas as pd
 
-from fitting.uncertainty import background_from_max, rayleigh_max_threshold
+from fitting.background import estimate, signal_mask, voxel_energy
 from qc.roi import roi_stats
 
 
@@ -35,13 +35,12 @@ def estimate_noise(series: np.ndarray, labels: np.ndarray,
                    names: Mapping[int, str] | None = None) -> NoiseEstimate:
     """σ of the background and per-vial SNR from a series ``(x, y, z, n)`` (or one volume).
 
-    Complex data are handled by :func:`fitting.uncertainty.background_sigma` (σ of the
-    real and imaginary parts); the vial signal is then the magnitude.
+    Complex data: σ of the real and imaginary parts (:func:`fitting.background.estimate`);
+    the vial signal is then the magnitude.
     """
     data = np.asarray(series)
     if data.ndim == 3:
         data = data[..., None]
-    is_complex = np.iscomplexobj(data)
     mag = np.abs(data).astype(float)
     lab = np.asarray(labels).astype(np.int64)
     names = names or {}
@@ -50,8 +49,9 @@ def estimate_noise(series: np.ndarray, labels: np.ndarray,
     means = [np.nanmean(mag[..., k][inside]) if inside.any() else np.nanmean(mag[..., k])
              for k in range(mag.shape[-1])]
     k = int(np.nanargmax(means))
-    vmax = np.nanmax(mag, axis=-1)
-    sigma = background_from_max(vmax, lambda sel: data[sel], data.shape[-1], is_complex)
+    flat = data.reshape(-1, data.shape[-1])
+    found = estimate(voxel_energy(flat), data.shape[-1])
+    sigma = None if found is None else found.sigma
     stats = roi_stats(mag[..., k], lab)   # finite voxels of each vial
     table = pd.DataFrame({"label": stats["label"],
                           "name": [names.get(v, f"label {v}") for v in stats["label"]],
@@ -62,6 +62,5 @@ def estimate_noise(series: np.ndarray, labels: np.ndarray,
                              "no usable background: too few air voxels, or their values do "
                              "not follow a Rayleigh distribution (zero-filled, masked or "
                              "multi-coil background); SNR not estimated")
-    n_bg = int(np.sum(np.isfinite(vmax) & (vmax < rayleigh_max_threshold(sigma,
-                                                                        data.shape[-1]))))
+    n_bg = int(np.sum(np.all(np.isfinite(flat), axis=1) & ~signal_mask(flat, sigma)))
     return NoiseEstimate(float(sigma), n_bg, k, table)

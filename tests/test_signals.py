@@ -133,3 +133,21 @@ def test_mono_exp_equals_epg_with_perfect_refocusing():
     np.testing.assert_allclose(mono_exp(te, t2, 1.4), cpmg_echoes(16, 0.01, t2, 1.0, m0=1.4),
                                rtol=1e-13)
     np.testing.assert_allclose(mono_exp(te, 0.05, 1.0, 0.2), np.exp(-te / 0.05) + 0.2, rtol=1e-14)
+
+
+@pytest.mark.parametrize("tr", [np.inf, 3.0])
+def test_ir_jacobian_matches_central_differences(tr):
+    # analytic derivatives of the steady-state IR signal against central differences
+    # (numerical differentiation, common practice)
+    from fitting.signals import ir_signal, ir_signal_jacobian
+    ti = np.array([0.05, 0.3, 1.0, 2.5])
+    p = {"t1": np.array([0.3, 1.2]), "m0": np.array([2.0, 0.7]), "eff": np.array([0.9, 0.6])}
+    s, jac = ir_signal_jacobian(ti, p["t1"], p["m0"], p["eff"], tr, 70.0)
+    np.testing.assert_allclose(s, ir_signal(ti, p["t1"], p["m0"], p["eff"], tr, 70.0))
+    for i, k in enumerate(("t1", "m0", "eff")):
+        h = 1e-6
+        up, dn = dict(p), dict(p)
+        up[k], dn[k] = p[k] + h, p[k] - h
+        fd = (ir_signal(ti, **up, tr=tr, alpha_deg=70.0)
+              - ir_signal(ti, **dn, tr=tr, alpha_deg=70.0)) / (2 * h)
+        np.testing.assert_allclose(jac[..., i], fd, atol=1e-8)

@@ -23,8 +23,10 @@ _InvEffmap (ir inversion efficiency, -cos of the inversion angle), _TB1map (rati
 _desc-stderr_<map>, _desc-rmse_<primary map> (rms residual, signal units) and
 _desc-fitstatus_mask (uint8: 0 outside, 1 converged, 2 converged after lmfit refit,
 3 parameter at bound, 4 failed, 5 non-finite or empty data), each with a JSON sidecar.
-Without --mask, background voxels (max signal below the noise level found in the
-image background) are marked outside.
+Without --mask, air is kept out of the fit: voxels whose signal stays within the noise
+of the image background (estimated from the Rayleigh statistics of the air) are marked
+outside. --noise auto (default) fits magnitude data with the Rician noise floor when a
+background is found.
 
 A QA and research tool, not a medical device."""
 
@@ -89,10 +91,11 @@ def add_model_arguments(p: argparse.ArgumentParser) -> None:
     g.add_argument("--skip-echoes", type=int, metavar="N",
                    help="mese-mono: leave out the first N echoes (e.g. 1: the first echo "
                         "carries no stimulated echo and breaks the train's pattern)")
-    g.add_argument("--noise", choices=("gaussian", "rician"), default="gaussian",
+    g.add_argument("--noise", choices=("auto", "gaussian", "rician"), default="auto",
                    help="rician: fit the Rician expectation of magnitude data given the "
                         "background noise (removes the noise-floor bias at low SNR; needs "
-                        "air around the object)")
+                        "air around the object); auto (default): rician for magnitude data "
+                        "with a background, gaussian for complex data or without one")
 
 
 def model_options(args: argparse.Namespace) -> dict:
@@ -100,7 +103,7 @@ def model_options(args: argparse.Namespace) -> dict:
     out = {"t1_fixed": args.t1_fixed, "plateau": args.plateau,
            "slice_profile": args.slice_profile,
            "skip_echoes": args.skip_echoes,
-           "noise": args.noise if args.noise != "gaussian" else None}
+           "noise": args.noise}
     # `is` tests: --t1-fixed 0 / --skip-echoes 0 must reach validation, not vanish as "== False"
     return {k: v for k, v in out.items() if v is not None and v is not False}
 

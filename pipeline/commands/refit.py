@@ -54,8 +54,9 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
                    help="half-open box of voxel indices from 0")
     g.add_argument("--voxel", metavar="x,y,z", help="one voxel (indices from 0)")
     p.add_argument("--label", type=int, metavar="N", help="label value (with --label-map)")
-    p.add_argument("--noise", choices=("gaussian", "rician"), default="gaussian",
-                   help="rician: model the magnitude noise floor (needs an image background)")
+    p.add_argument("--noise", choices=("auto", "gaussian", "rician"), default="auto",
+                   help="rician: model the magnitude noise floor (needs an image background); "
+                        "auto (default): rician for magnitude data with a background")
     p.add_argument("--json", action="store_true", help="print the numbers as one JSON object")
     p.add_argument("--plot", metavar="F.png", help="write data, fitted curve and residuals")
 
@@ -295,13 +296,15 @@ def run(args: argparse.Namespace) -> int:
         fit_region
     from fitting.spec import configure_model, t1_map_models
     from pipeline.fitjob import acquisition, check_model_options, estimate_noise, input_files, \
-        load_b1, prepare
+        load_b1, prepare, resolve_noise
     from pipeline import profiles
     from pipeline.t1map import check_t1_map_model, load_t1_map, t1_values
     from pipeline.outputs import atomic_write_bytes, refuse_overwriting_inputs
 
     spec, series, _ = prepare(args.model, args.inputs, args.time_unit)
-    options = {"b1_map": str(args.b1) if args.b1 else None, "noise": args.noise,
+    sigma = estimate_noise(series)
+    noise = resolve_noise(args.noise, series, sigma, sys.stderr, command="refit")
+    options = {"b1_map": str(args.b1) if args.b1 else None, "noise": noise,
                "t1_map": str(args.t1_map) if args.t1_map else None,
                "t1_fixed": args.t1_fixed, "slice_profile": args.slice_profile}
     if args.plot:
@@ -317,7 +320,6 @@ def run(args: argparse.Namespace) -> int:
     t1_arr = load_t1_map(spec, series, args.t1_map)
     sel, region = select_region(args, series)
     data, z = read_region(series, sel)
-    sigma = estimate_noise(series)
     per_voxel: dict[str, Any] = {}
     if b1_arr is not None:
         bv = b1_arr[:, :, z][sel[:, :, z]].astype(float)
@@ -329,10 +331,7 @@ def run(args: argparse.Namespace) -> int:
             print(f"relaxline refit: warning: the T1 map {args.t1_map} has no value in {gaps} "
                   f"voxel(s) of the region; T1 = {args.t1_fixed:g} s (--t1-fixed) used there.",
                   file=sys.stderr)
-    if args.noise == "rician":
-        if sigma is None:
-            raise InputError(f"{series.paths[0]}: --noise rician needs the background noise, "
-                             f"but no background region was found; use the Gaussian model.")
+    if noise == "rician":
         per_voxel["sigma"] = float(sigma)
 
     def constants(s, base):
@@ -355,7 +354,8 @@ def run(args: argparse.Namespace) -> int:
     doc = {"model": spec.name,
            "series": {"stem": series.stem, "inputs": [str(p) for p in series.paths],
                       "key": spec.xkey, "values": [float(v) for v in series.values]},
-           "region": region, **rep.to_dict(), "comparison_skipped": skipped, "warnings": []}
+           "region": region, **rep.to_dict(), "comparison_skipped": skipped, "warnings": [],
+           "noise_model": noise}
     for c in doc["comparison"]:
         c["thresholds"] = {"delta_clear": DELTA_CLEAR, "delta_strong": DELTA_STRONG}
     if rep.mean.sigma is not None and np.isfinite(rep.fit.chi2_p) \
