@@ -26,9 +26,11 @@ Statistic
 
     The background is rejected (``None``) when it has fewer than
     :data:`MIN_BACKGROUND_SAMPLES` samples, when it is smaller than the share of voxels
-    the start assumed to be air, or when the truncated sample does not follow
-    the truncated Gamma distribution (Kolmogorov distance above
-    :data:`MAX_KS_DISTANCE`): zero-filled, masked, smoothed or multi-coil backgrounds.
+    the start assumed to be air, when the truncated sample does not follow the truncated
+    Gamma distribution (Kolmogorov distance above :data:`MAX_KS_DISTANCE`: zero-filled,
+    masked, smoothed or multi-coil backgrounds), or when its volumes differ (in air each
+    volume holds the same noise; dark tissue of an object filling the field recovers or
+    decays from volume to volume).
 
 Signal mask
     A voxel holds signal when its s or its largest magnitude over the volumes exceeds
@@ -50,6 +52,8 @@ MIN_BACKGROUND_VOXELS = 50      # the darkest START_QUANTILE, but at least these
 START_QUANTILE = 0.05            # of all voxels: the darkest are air
 TRUNCATION_QUANTILE = 0.9        # of the background distribution
 MAX_KS_DISTANCE = 0.05           # plus 1.36/√K, Kolmogorov's 5 % critical value
+VOLUME_Z_MAX = 5.0              # per-volume mean of |m|² in air: |z| above this and ...
+VOLUME_RATIO_MAX = 1.25         # ... a max/min ratio above this is not air
 MASK_QUANTILE = 0.9999
 MAX_ITERATIONS = 50
 
@@ -117,14 +121,28 @@ def _ks_distance(s: np.ndarray, n: int, theta: float, cut: float) -> float:
     return float(max(np.max(emp_hi - model), np.max(model - emp_lo)))
 
 
-def estimate(energy: np.ndarray, n_volumes: int) -> Background | None:
-    """σ from the per-voxel s = ½·Σ|m|² of (a sample of) the series' voxels.
+def _volumes_differ(sq: np.ndarray) -> bool:
+    """True when the per-volume means of |m|² (rows: background voxels, (K, n)) differ
+    more than air allows: in air every volume holds the same noise, so the means agree
+    within sampling error (sd ≈ mean/√K for exponential |m|²); a smooth signal (dark
+    tissue of an object that fills the field) rises or decays from volume to volume."""
+    if sq.shape[1] < 2:
+        return False
+    q = sq.mean(axis=0)
+    z = np.abs(q / q.mean() - 1.0) * np.sqrt(sq.shape[0])
+    return bool(z.max() > VOLUME_Z_MAX and q.max() > VOLUME_RATIO_MAX * q.min())
 
-    Voxels with s = 0 (zero-filled or masked) and non-finite s are ignored.
+
+def estimate(samples: np.ndarray) -> Background | None:
+    """σ from (a sample of) the series' voxels, ``samples`` (N, n volumes).
+
+    Voxels with s = ½·Σ|m|² = 0 (zero-filled or masked) and non-finite s are ignored.
     """
-    s = np.asarray(energy, float)
-    s = s[np.isfinite(s) & (s > 0)]
-    n = int(n_volumes)
+    sq = np.abs(np.asarray(samples)).astype(float) ** 2
+    s = 0.5 * sq.sum(axis=1)
+    keep = np.isfinite(s) & (s > 0)
+    s, sq = s[keep], sq[keep]
+    n = sq.shape[1]
     if s.size < 2 * MIN_BACKGROUND_VOXELS:
         return None
     start = max(START_QUANTILE, MIN_BACKGROUND_VOXELS / s.size)   # small images
@@ -146,13 +164,16 @@ def estimate(energy: np.ndarray, n_volumes: int) -> Background | None:
         cut = theta * float(gammaincinv(n, TRUNCATION_QUANTILE))
         if converged:
             break
-    below = s[s < cut]
+    inside = s < cut
+    below = s[inside]
     # the start assumed the darkest share of the voxels is air: a background smaller
     # than that was something else (a faint vial in a zero-filled image)
     if below.size / TRUNCATION_QUANTILE < start * s.size or \
             below.size * n < MIN_BACKGROUND_SAMPLES:
         return None
     if _ks_distance(below, n, theta, cut) > MAX_KS_DISTANCE + 1.36 / np.sqrt(below.size):
+        return None
+    if _volumes_differ(sq[inside]):
         return None
     return Background(float(np.sqrt(theta)), int(below.size), cut)
 

@@ -37,7 +37,7 @@ import numpy as np
 
 from fitting import status as st
 from fitting.background import estimate as estimate_background
-from fitting.background import signal_mask, voxel_energy
+from fitting.background import signal_mask
 from fitting.spec import Fixed, ModelSpec, configure_model, get_model
 from fitting.voxelwise import ENGINES, available_cores, fit_voxels
 from pipeline import profiles
@@ -97,12 +97,12 @@ def acquisition(spec: ModelSpec, series: Series, options: Mapping[str, Any] | No
 def estimate_noise(series: Series, max_voxels: int = NOISE_SAMPLE_VOXELS) -> float | None:
     """Background noise σ of the whole series, or None when it has no background.
 
-    Reads the series once, slab by slab, keeping s = ½·Σ|m|² of a regular subsample of
-    voxels (every k-th voxel in file order, so the value is reproducible), and applies
+    Reads the series once, slab by slab, keeping a regular subsample of voxels (every
+    k-th voxel in file order, so the value is reproducible), and applies
     :func:`fitting.background.estimate`.
     """
     stride = max(1, int(np.ceil(series.n_voxels / max_voxels)))
-    energy = []
+    rows = []
     for z in series.slabs(SLAB_VOXELS):
         block = series.read(z)
         nz = block.shape[2]
@@ -111,9 +111,9 @@ def estimate_noise(series: Series, max_voxels: int = NOISE_SAMPLE_VOXELS) -> flo
                 + np.arange(series.shape[1])[None, :, None] * series.shape[2]
                 + np.arange(z.start, z.start + nz)[None, None, :])
         pick = (flat % stride == 0).ravel()
-        energy.append(voxel_energy(block.reshape(-1, block.shape[-1])[pick]))
+        rows.append(np.abs(block.reshape(-1, block.shape[-1])[pick]).astype(np.float32))
         del block
-    found = estimate_background(np.concatenate(energy), series.n_volumes)
+    found = estimate_background(np.concatenate(rows))
     return None if found is None else found.sigma
 
 

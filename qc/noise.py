@@ -18,7 +18,7 @@ from typing import Mapping
 import numpy as np
 import pandas as pd
 
-from fitting.background import estimate, signal_mask, voxel_energy
+from fitting.background import estimate, signal_mask
 from qc.roi import roi_stats
 
 
@@ -50,7 +50,7 @@ def estimate_noise(series: np.ndarray, labels: np.ndarray,
              for k in range(mag.shape[-1])]
     k = int(np.nanargmax(means))
     flat = data.reshape(-1, data.shape[-1])
-    found = estimate(voxel_energy(flat), data.shape[-1])
+    found = estimate(flat)
     sigma = None if found is None else found.sigma
     stats = roi_stats(mag[..., k], lab)   # finite voxels of each vial
     table = pd.DataFrame({"label": stats["label"],
