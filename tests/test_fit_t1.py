@@ -163,6 +163,6 @@ def test_ir_long_tis_at_low_field(tmp_path, capsys, unit):
                     {"RepetitionTime": tr * scale})
     code = main(["fit", "ir", str(path), "--out", str(tmp_path / "o"), "--time-unit", unit])
     assert code == 0, capsys.readouterr().err
-    got = nib.load(tmp_path / "o" / "lowfield_IRT1_T1map.nii.gz").get_fdata()[:, 0, 0]
+    got = nib.load(tmp_path / "o" / "lowfield_rec-ir_T1map.nii.gz").get_fdata()[:, 0, 0]
     # noiseless: the exact finite-TR model recovers T1 (Barral et al. 2010)
     np.testing.assert_allclose(got, t1, rtol=1e-4)

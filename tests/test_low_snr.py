@@ -37,11 +37,11 @@ def test_air_is_kept_out_at_peak_snr_8(tmp_path, capsys):
     path = write_4d(tmp_path, "low_T2starw", mag.astype(np.float32), "EchoTime", te)
     code, err = _cli(capsys, "megre", path, "--out", tmp_path / "o")
     assert code == 0, err
-    status = nib.load(tmp_path / "o" / "low_T2starw_desc-fitstatus_mask.nii.gz").get_fdata()
+    status = nib.load(tmp_path / "o" / "low_rec-megre_desc-fitstatus_mask.nii.gz").get_fdata()
     air = ~disc[:, :, None]
     assert np.mean(status[air] == st.OUTSIDE) > 0.99
     assert np.mean(status[~air] != st.OUTSIDE) > 0.99
-    opts = json.loads((tmp_path / "o" / "low_T2starw_T2starmap.json").read_text())["Options"]
+    opts = json.loads((tmp_path / "o" / "low_rec-megre_T2starmap.json").read_text())["Options"]
     # magnitude of complex Gaussian noise of σ = 1 (Gudbjartsson & Patz 1995)
     assert opts["noise_sigma"] == pytest.approx(1.0, rel=0.03)
     assert opts["noise"] == "rician"            # the default for magnitude data with air
@@ -74,7 +74,7 @@ def test_mese_10ms_vial_at_snr_50(tmp_path, capsys, noise, within):
         argv += ["--noise", noise]
     code, err = _cli(capsys, *argv)
     assert code == 0, err
-    t2 = nib.load(tmp_path / "o" / "vial_MESE_T2map.nii.gz").get_fdata()[:, :, 0][disc]
+    t2 = nib.load(tmp_path / "o" / "vial_rec-mese_T2map.nii.gz").get_fdata()[:, :, 0][disc]
     bias = np.nanmedian(t2) / 0.010 - 1
     if within is not None:
         assert abs(bias) < within, bias
