@@ -22,7 +22,7 @@ import math
 import numpy as np
 from numpy.typing import ArrayLike
 
-from fitting.jit import jit, train_apply
+from fitting.jit import _flat_broadcast, jit, train_apply
 
 _DEG = math.pi / 180.0
 
@@ -96,35 +96,21 @@ def _ir_loop(ti, t1, m0, eff, tr, alpha, out):
 
 
 def ir_signal_jacobian(ti: ArrayLike, t1: ArrayLike, m0: ArrayLike, eff: ArrayLike = 1.0,
-                       tr: ArrayLike = np.inf, alpha_deg: ArrayLike = 90.0
-                       ) -> tuple[np.ndarray, np.ndarray]:
-    """:func:`ir_signal` and its derivatives with respect to (T1, M0, eff), B + (M, 3).
+                       tr: ArrayLike = np.inf, alpha_deg: ArrayLike = 90.0) -> np.ndarray:
+    """Exact derivatives of :func:`ir_signal` by (T1, M0, eff), B + (M, 3), from the
+    compiled :func:`ir_train` (∂S/∂M0 = S/M0 carries the sign of S)."""
+    xs = np.ascontiguousarray(np.asarray(ti, dtype=float).reshape(-1))
+    shape, flat = _flat_broadcast((t1, m0, eff, tr, alpha_deg))
+    out = np.empty(shape + (xs.size, 3))
+    _ir_jac_loop(xs, *flat, out.reshape(-1, xs.size, 3))
+    return out
 
-    With x = e^(−TI/T1), E = e^(−TR/T1), k = sin α/(1 + eff·cos α·E) and
-    N = 1 − (1 + eff)·x + eff·E, S = M0·k·N and
 
-        ∂S/∂M0 = k·N,
-        ∂S/∂eff = M0·k·[(E − x) − N·cos α·E/(1 + eff·cos α·E)],
-        ∂S/∂T1 = M0·k·[eff·E·TR − (1 + eff)·x·TI − N·eff·cos α·E·TR/(1 + eff·cos α·E)]/T1²
-
-    (E·TR → 0 for TR → ∞).
-    """
-    ti, (t1, m0, eff, tr, alpha) = _prep(ti, t1, m0, eff, tr, alpha_deg)
-    a = np.deg2rad(alpha)
-    c = np.cos(a)
-    e_tr = np.exp(-tr / t1)
-    e_tr_tr = np.where(np.isinf(tr), 0.0, e_tr * np.where(np.isinf(tr), 0.0, tr))
-    x = np.exp(-ti / t1)
-    den = 1.0 + eff * c * e_tr
-    k = np.sin(a) / den
-    num = 1.0 - (1.0 + eff) * x + eff * e_tr
-    s = m0 * k * num
-    d_m0 = k * num
-    d_eff = m0 * k * ((e_tr - x) - num * c * e_tr / den)
-    d_t1 = m0 * k * (eff * e_tr_tr - (1.0 + eff) * x * ti - num * eff * c * e_tr_tr / den) \
-        / (t1 * t1)
-    d_m0, d_eff, d_t1 = np.broadcast_arrays(d_m0, d_eff, d_t1)
-    return s, np.stack([d_t1, d_m0, d_eff], axis=-1)
+@jit
+def _ir_jac_loop(ti, t1, m0, eff, tr, alpha, out):
+    s = np.empty(ti.size)
+    for i in range(out.shape[0]):
+        ir_train(ti, t1[i], m0[i], eff[i], tr[i], alpha[i], s, out[i])
 
 
 def ir_ab_from_params(t1: ArrayLike, m0: ArrayLike, eff: ArrayLike = 1.0,

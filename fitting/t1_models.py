@@ -87,9 +87,10 @@ def _ir_kernel(x: np.ndarray, fixed: Fixed, n: int):
 
 
 def _ir_jacobian(x: np.ndarray, p: Params, fixed: Fixed) -> np.ndarray:
-    """(N, M, 3) in the order (T1, M0, eff); magnitude data: d|S| = sign(S)·dS."""
-    s, jac = ir_signal_jacobian(x, p["T1"], p["M0"], p["eff"], fixed["tr"], fixed["alpha"])
-    return jac if fixed.get("signed") else np.where(s < 0, -1.0, 1.0)[..., None] * jac
+    """(N, M, 3) in the order (T1, M0, eff); magnitude data: d|S| = sign(S)·dS, the sign
+    of S being that of ∂S/∂M0 = S/M0."""
+    jac = ir_signal_jacobian(x, p["T1"], p["M0"], p["eff"], fixed["tr"], fixed["alpha"])
+    return jac if fixed.get("signed") else np.where(jac[..., 1:2] < 0, -1.0, 1.0) * jac
 
 
 def _ir_init(x: np.ndarray, data: np.ndarray, fixed: Fixed) -> Params:

@@ -142,8 +142,7 @@ def test_ir_jacobian_matches_central_differences(tr):
     from fitting.signals import ir_signal, ir_signal_jacobian
     ti = np.array([0.05, 0.3, 1.0, 2.5])
     p = {"t1": np.array([0.3, 1.2]), "m0": np.array([2.0, 0.7]), "eff": np.array([0.9, 0.6])}
-    s, jac = ir_signal_jacobian(ti, p["t1"], p["m0"], p["eff"], tr, 70.0)
-    np.testing.assert_allclose(s, ir_signal(ti, p["t1"], p["m0"], p["eff"], tr, 70.0))
+    jac = ir_signal_jacobian(ti, p["t1"], p["m0"], p["eff"], tr, 70.0)
     for i, k in enumerate(("t1", "m0", "eff")):
         h = 1e-6
         up, dn = dict(p), dict(p)
