@@ -59,7 +59,9 @@ STATUS_KEY = "desc-fitstatus_mask"
 
 
 def check_model_options(model: str, options: Mapping[str, Any]) -> None:
-    """Refuse a model option (:data:`MODEL_OPTIONS`) given for a model it does not apply to."""
+    """Refuse a model option (:data:`MODEL_OPTIONS`) given for a model it does not apply to
+    (an unknown model is named as such first)."""
+    get_model(model)
     for opt, (flag, models) in MODEL_OPTIONS.items():
         if options.get(opt) is not None and options.get(opt) is not False \
                 and model not in models:
