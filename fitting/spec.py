@@ -45,13 +45,50 @@ Params = dict[str, np.ndarray]
 Fixed = dict[str, Any]
 
 # Modules that register models when imported (see module docstring).
-MODEL_MODULES: list[str] = ["fitting.t1_models", "fitting.t2_models"]
+MODEL_MODULES: list[str] = ["fitting.t1_models", "fitting.t2_models", "fitting.recovery_models",
+                             "fitting.afi_models", "fitting.mp2rage_models",
+                             "fitting.t2dist_models"]
 
 MODELS: dict[str, "ModelSpec"] = {}
 
 
 def _no_validate(x: np.ndarray, fixed: Fixed) -> None:
     return None
+
+
+@dataclass(frozen=True)
+class ExtraOutput:
+    """A map a model writes besides its parameters (no standard-error map).
+
+    ``suffix``: BIDS-like suffix of the file; ``unit``: its ``Units``; ``description``:
+    the sidecar's ``Description``; ``axis``: for a vector output (one 4D volume per
+    point, e.g. a T2 distribution), ``axis(x, fixed) -> (K,)`` values of the fourth axis,
+    written to the sidecar as ``AxisValues`` with ``axis_name``/``axis_unit``.
+    """
+
+    suffix: str
+    unit: str
+    description: str
+    axis: Callable[[np.ndarray, Any], np.ndarray] | None = None
+    axis_name: str = ""
+    axis_unit: str = ""
+
+
+@dataclass
+class Solved:
+    """What a model's own solver (``ModelSpec.solver``) returns for N voxels.
+
+    ``params`` (N, P) in parameter order; ``cost`` (N,) the sum of squared residuals;
+    ``status`` (N,) codes of :mod:`fitting.status` (converged or failed; the engine
+    marks parameters at their bounds); ``stderr`` (N, P) or None to let the engine
+    compute it from the Jacobian of ``signal``; ``extras`` ``{name: (N,) or (N, K)}``.
+    """
+
+    params: np.ndarray
+    cost: np.ndarray
+    status: np.ndarray
+    stderr: np.ndarray | None = None
+    extras: dict[str, np.ndarray] = field(default_factory=dict)
 
 
 def _no_prepare(x: np.ndarray, data: np.ndarray, fixed: Fixed) -> tuple[np.ndarray, Fixed]:
@@ -123,6 +160,21 @@ class ModelSpec:
         (:mod:`fitting.kernels`) evaluates ``signal``. Used only while ``signal`` is the
         function the kernel was declared for (:attr:`compiled`), so a variant built with
         ``dataclasses.replace(spec, signal=...)`` falls back to the numpy iteration.
+    volume_keys : sidecar keys that may differ between the volumes of a series (for
+        example ``FlipAngle`` of the two MP2RAGE inversions); ``fixed_from_meta`` then
+        receives them as a list in volume order (sorted by ``xkey``), or as one number
+        when every volume has the same value.
+    solver : optional ``(x, data, fixed, noise_sigma) -> Solved``: the model's own fast
+        method, used by the fast engine instead of ``init`` + Levenberg–Marquardt (for
+        example a regularised NNLS over a basis). Models whose ``signal`` cannot be
+        fitted by lmfit set ``extra["lmfit"] = False``.
+    extra_outputs : ``{name: ExtraOutput}`` maps written besides the parameters; their
+        values come from ``Solved.extras`` or from ``extras``.
+    extras : optional ``(x, data, fixed, params (N, P)) -> {name: array}`` computing the
+        extra outputs after a fit (any engine); ``data`` is the prepared data.
+
+    A parameter missing from ``outputs`` is a nuisance parameter: fitted (and in the
+    region reports) but written as no map.
     """
 
     name: str
@@ -148,6 +200,11 @@ class ModelSpec:
     finalize: Callable[[Params, Fixed], Params] | None = None
     configure: Callable[["ModelSpec", Mapping[str, Any]], "ModelSpec"] | None = None
     kernel: "Kernel | None" = None
+    volume_keys: tuple[str, ...] = ()
+    solver: Callable[[np.ndarray, np.ndarray, Fixed, float | None], Solved] | None = None
+    extra_outputs: Mapping[str, ExtraOutput] = field(default_factory=dict)
+    extras: Callable[[np.ndarray, np.ndarray, Fixed, np.ndarray], dict[str, np.ndarray]] \
+        | None = None
 
     def __post_init__(self) -> None:
         n = len(self.params)
@@ -157,6 +214,13 @@ class ModelSpec:
             raise ValueError(f"model {self.name}: min_volumes below the parameter count")
         if self.scale_param is not None and self.scale_param not in self.params:
             raise ValueError(f"model {self.name}: scale_param {self.scale_param} not a parameter")
+        if self.primary_param not in self.outputs:
+            raise ValueError(f"model {self.name}: the primary parameter needs an output map")
+
+    @property
+    def written(self) -> tuple[str, ...]:
+        """Parameters written as maps (those with an output suffix), in parameter order."""
+        return tuple(k for k in self.params if k in self.outputs)
 
     @property
     def compiled(self) -> "Callable[[np.ndarray, Fixed, int], tuple] | None":

@@ -21,6 +21,11 @@ the rms residual and a fit-status code per voxel (:mod:`fitting.status`).
     one ``lmfit.Model.fit`` per voxel (model built from the spec by
     :mod:`fitting.lmfit_models`), in ``jobs`` processes.
 
+A model with its own fast method (``ModelSpec.solver``, e.g. a regularised NNLS) is
+solved by it in the fast engines (no refit); one whose signal lmfit cannot fit
+(``spec.extra["lmfit"] is False``) refuses the ``lmfit`` engine. Extra outputs
+(``spec.extra_outputs``) come from the solver or from ``spec.extras`` after the fit.
+
 All engines report standard errors the same way: √diag(σ²(JᵀJ)⁻¹) from the Jacobian
 at the solution, with σ the background noise when given, else √(RSS/(M − P)).
 Voxels with non-finite or all-zero data (or a non-finite per-voxel constant) get
@@ -32,12 +37,13 @@ from __future__ import annotations
 
 import os
 from concurrent.futures import ProcessPoolExecutor, ThreadPoolExecutor
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from typing import Callable, Iterable, Iterator
 
 import numpy as np
 
 from fitting import status as st
+from fitting.errors import RelaxlineError
 from fitting.lm import FTOL, LAM0, XTOL, jacobian, levenberg_marquardt
 from fitting.spec import Fixed, ModelSpec, subset_fixed
 from fitting.uncertainty import sigma_from_residuals, stderr_from_jacobian
@@ -68,12 +74,21 @@ class VoxelFit:
     stderr: dict[str, np.ndarray]
     rmse: np.ndarray
     status: np.ndarray     # uint8 codes of fitting.status
+    extras: dict[str, np.ndarray] = field(default_factory=dict)   # (N,) or (N, K)
 
     @classmethod
     def empty(cls, spec: ModelSpec, n: int) -> "VoxelFit":
         nan = lambda: np.full(n, np.nan)  # noqa: E731
         return cls({k: nan() for k in spec.params}, {k: nan() for k in spec.params}, nan(),
                    np.full(n, st.OUTSIDE, np.uint8))
+
+    def put_extras(self, extras: dict[str, np.ndarray], idx: np.ndarray, n: int) -> None:
+        """Store extra outputs of the voxels ``idx`` (arrays allocated on first use)."""
+        for k, v in extras.items():
+            v = np.asarray(v, float)
+            if k not in self.extras:
+                self.extras[k] = np.full((n,) + v.shape[1:], np.nan)
+            self.extras[k][idx] = v
 
 
 def bad_data(spec: ModelSpec, data: np.ndarray, fixed: Fixed) -> np.ndarray:
@@ -106,6 +121,9 @@ def fit_voxels(spec: ModelSpec, x: np.ndarray, data: np.ndarray, fixed: Fixed,
     """
     if engine not in ENGINES + (REFERENCE,):
         raise ValueError(f"engine must be one of {ENGINES}, got {engine!r}")
+    if engine == "lmfit" and spec.extra.get("lmfit") is False:
+        raise RelaxlineError(f"the {spec.name} model has no lmfit engine ({spec.description});"
+                             f" use --engine fast.")
     x = np.asarray(x, float)
     jobs = max(1, int(jobs))
     n = data.shape[0]
@@ -128,8 +146,13 @@ def fit_voxels(spec: ModelSpec, x: np.ndarray, data: np.ndarray, fixed: Fixed,
     def work(idx: np.ndarray):
         fx = subset_fixed(spec, fixed, idx)
         y, fx = spec.prepare(x, np.asarray(data[idx]), fx)
+        extras: dict[str, np.ndarray] = {}
         done = _compiled(spec, x, y, fx, max_iter, noise_sigma) if compiled else None
-        if done is not None:
+        if engine != "lmfit" and spec.solver is not None:
+            solved = spec.solver(x, y, fx, noise_sigma)
+            p, cost, stat = solved.params, solved.cost, solved.status.astype(np.uint8)
+            err, extras = solved.stderr, dict(solved.extras)
+        elif done is not None:
             p, cost, stat, err = done
         elif engine == "lmfit":
             vals, cost, ok = _lmfit_voxels(spec, x, y, fx, jobs)
@@ -137,13 +160,20 @@ def fit_voxels(spec: ModelSpec, x: np.ndarray, data: np.ndarray, fixed: Fixed,
         else:
             p, cost, stat = _numpy_fast(spec, x, y, fx, max_iter)
             err = None
-        return idx, y, fx, p, cost, stat, err
+        return idx, y, fx, p, cost, stat, err, extras
 
     chunks = [good[s:s + batch] for s in range(0, good.size, batch)]
-    for idx, y, fx, p, cost, stat, err in _in_threads(work, chunks, jobs if compiled else 1):
-        if engine != "lmfit":
+    for idx, y, fx, p, cost, stat, err, extras in _in_threads(work, chunks,
+                                                              jobs if compiled else 1):
+        if engine != "lmfit" and spec.solver is None:
             _refit(spec, x, y, fx, p, cost, stat, noise_sigma, jobs if refit else 0)
+        if spec.extras is not None:
+            extras.update(spec.extras(x, y, fx, p))
         _finish(spec, x, y, fx, p, cost, stat, noise_sigma, out, idx, err)
+        if extras:   # nothing is reported for a voxel whose fit failed
+            failed = out.status[idx] == st.FAILED
+            out.put_extras({k: np.where(failed.reshape((-1,) + (1,) * (np.ndim(v) - 1)),
+                                        np.nan, v) for k, v in extras.items()}, idx, n)
         if progress is not None:
             progress(idx.size)
     return out
@@ -304,7 +334,8 @@ def _finish(spec: ModelSpec, x: np.ndarray, y: np.ndarray, fx: Fixed, p: np.ndar
     """Status at bounds, rmse, standard errors; NaN where the fit failed.
 
     ``err``: standard errors already computed for the voxels whose status is OK (the
-    compiled engine's); the others are computed here from the numpy Jacobian.
+    compiled engine's, or a model's own solver's); the others are computed here from the
+    numpy Jacobian.
     """
     fin = np.all(np.isfinite(p), axis=1) & np.isfinite(cost)
     done = stat == st.OK

@@ -48,10 +48,15 @@ from pipeline.series import Series, load_grid_map, read_series, sidecar_path
 from pipeline.t1map import check_t1_map_model, gap_note, load_t1_map, t1_values
 
 # model options of `relaxline fit` -> (flag, models it applies to)
-MODEL_OPTIONS = {"t1_fixed": ("--t1-fixed", ("mese",)), "plateau": ("--plateau", ("mese-mono",)),
+MODEL_OPTIONS = {"t1_fixed": ("--t1-fixed", ("mese", "mese-multi", "afi")),
+                 "plateau": ("--plateau", ("mese-mono",)),
                  "skip_echoes": ("--skip-echoes", ("mese-mono",)),
                  "slice_profile": ("--slice-profile", ("mese",)),
-                 "noise": ("--noise", ("ir", "vfa", "dam", "mese", "mese-mono", "megre"))}
+                 "noise": ("--noise", ("ir", "vfa", "dam", "mese", "mese-mono", "megre",
+                                       "looklocker", "sr", "afi", "mp2rage", "mese-multi")),
+                 "ll_correction": ("--ll-correction", ("looklocker",)),
+                 "inversion_efficiency": ("--inversion-efficiency", ("mp2rage",)),
+                 "short_t2_cutoff": ("--short-t2-cutoff", ("mese-multi",))}
 NOISE_MODELS = ("auto", "gaussian", "rician")
 SLAB_VOXELS = 131072           # voxels read and fitted at a time (bounds memory)
 NOISE_SAMPLE_VOXELS = 200_000  # voxels sampled for the background-noise estimate
@@ -65,8 +70,10 @@ def check_model_options(model: str, options: Mapping[str, Any]) -> None:
     for opt, (flag, models) in MODEL_OPTIONS.items():
         if options.get(opt) is not None and options.get(opt) is not False \
                 and model not in models:
-            raise InputError(f"option {flag} applies to the {', '.join(models)} model only, "
-                             f"not to {model}; leave it out.")
+            which = f"the {models[0]} model" if len(models) == 1 else \
+                f"the {', '.join(models[:-1])} and {models[-1]} models"
+            raise InputError(f"option {flag} applies to {which} only, not to {model}; leave "
+                             f"it out.")
 
 
 def _spec(model: str | ModelSpec) -> ModelSpec:
@@ -77,7 +84,8 @@ def prepare(model: str | ModelSpec, inputs: Sequence[str | Path],
             time_unit: str = "s") -> tuple[ModelSpec, Series, Fixed]:
     """Read and validate the series for ``model``; returns (spec, series, fixed)."""
     spec = _spec(model)
-    series = read_series(inputs, spec.xkey, time_unit=time_unit, min_volumes=spec.min_volumes)
+    series = read_series(inputs, spec.xkey, time_unit=time_unit, min_volumes=spec.min_volumes,
+                         volume_keys=spec.volume_keys)
     fixed = acquisition(spec, series)
     return spec, series, fixed
 
@@ -86,6 +94,8 @@ def acquisition(spec: ModelSpec, series: Series, options: Mapping[str, Any] | No
                 ) -> Fixed:
     """The model's constants from the sidecars, validated against the varying values."""
     where = ", ".join(str(p) for p in series.paths)
+    if spec.extra.get("needs_complex") and not series.is_complex:
+        raise InputError(f"{where}: {spec.extra['needs_complex']}")
     try:
         fixed = spec.fixed_from_meta(series.meta, profiles.resolve(options or {}))
         spec.validate(series.values, fixed)
@@ -120,8 +130,12 @@ def estimate_noise(series: Series, max_voxels: int = NOISE_SAMPLE_VOXELS) -> flo
 
 
 def resolve_noise(choice: str | None, series: Series, sigma: float | None,
-                  stream: TextIO | None, command: str = "fit") -> str:
+                  stream: TextIO | None, command: str = "fit",
+                  spec: ModelSpec | None = None) -> str:
     """The noise model to fit for the user's ``choice`` (``auto`` when None).
+
+    A model that fits Gaussian noise only (``spec.extra["noise_models"]``, e.g. the NNLS of
+    ``mese-multi``) gets ``gaussian`` for ``auto`` and refuses ``rician``.
 
     ``auto``: ``rician`` for magnitude data whose background gave σ (a Gaussian fit reads
     the noise floor of decayed echoes as signal: T2 of a 10 ms vial at SNR 50 came out
@@ -132,6 +146,11 @@ def resolve_noise(choice: str | None, series: Series, sigma: float | None,
     choice = choice or "auto"
     if choice not in NOISE_MODELS:
         raise InputError(f"noise model {choice!r}: choose one of {', '.join(NOISE_MODELS)}.")
+    if spec is not None and "rician" not in spec.extra.get("noise_models", ("rician",)):
+        if choice == "rician":
+            raise InputError(f"--noise rician: the {spec.name} model fits with Gaussian noise "
+                             f"only; use --noise gaussian or auto.")
+        return "gaussian"
     if choice == "rician" and sigma is None:
         raise InputError(f"{series.paths[0]}: the Rician noise model needs the background "
                          f"noise, but no background region was found (too little air around "
@@ -161,9 +180,13 @@ def _z_slabs(series: Series, z: slice | None, max_voxels: int):
 
 
 def output_keys(spec: ModelSpec) -> list[str]:
-    """Keys of :func:`fit_arrays`' result, which are also the file-name tails."""
-    keys = [spec.outputs[k] for k in spec.params]
-    keys += [f"desc-stderr_{spec.outputs[k]}" for k in spec.params]
+    """Keys of :func:`fit_arrays`' result, which are also the file-name tails.
+
+    The parameter maps (nuisance parameters without an output suffix are not written),
+    their standard errors, the extra outputs, then the rmse and the status mask (last)."""
+    keys = [spec.outputs[k] for k in spec.written]
+    keys += [f"desc-stderr_{spec.outputs[k]}" for k in spec.written]
+    keys += [e.suffix for e in spec.extra_outputs.values()]
     keys += [f"desc-rmse_{spec.outputs[spec.primary_param]}", STATUS_KEY]
     return keys
 
@@ -226,6 +249,10 @@ def fit_arrays(model: str | ModelSpec, series: Series, mask: np.ndarray | None =
     keys = output_keys(spec)
     out = {k: np.full(shape, np.nan, np.float32) for k in keys[:-1]}
     out[STATUS_KEY] = np.full(shape, st.OUTSIDE, np.uint8)
+    for e in spec.extra_outputs.values():     # vector outputs: one volume per axis point
+        if e.axis is not None:
+            out[e.suffix] = np.full(shape + (len(e.axis(x, fixed)),), np.nan, np.float32)
+    threshold = rayleigh_max_threshold(sigma, n) if (sigma is not None and mask is None) else 0.0
     for zs in _z_slabs(series, z, SLAB_VOXELS):
         block = series.read(zs)
         oz = slice(zs.start - zr.start, zs.stop - zr.start)
@@ -247,10 +274,13 @@ def fit_arrays(model: str | ModelSpec, series: Series, mask: np.ndarray | None =
         if progress is not None and flat.shape[0] > idx.size:
             progress(flat.shape[0] - idx.size)
         slab_shape = block.shape[:3]
-        for k in spec.params:
+        for k in spec.written:
             suffix = spec.outputs[k]
             _put(out[suffix], oz, slab_shape, idx, res.params[k])
             _put(out[f"desc-stderr_{suffix}"], oz, slab_shape, idx, res.stderr[k])
+        for name, e in spec.extra_outputs.items():
+            if name in res.extras:
+                _put(out[e.suffix], oz, slab_shape, idx, res.extras[name])
         _put(out[keys[-2]], oz, slab_shape, idx, res.rmse)
         _put(out[STATUS_KEY], oz, slab_shape, idx, res.status)
         del block, flat
@@ -258,9 +288,11 @@ def fit_arrays(model: str | ModelSpec, series: Series, mask: np.ndarray | None =
 
 
 def _put(target: np.ndarray, oz: slice, slab_shape, idx: np.ndarray, values: np.ndarray):
-    view = target[:, :, oz].reshape(-1)   # a copy if not contiguous: write back below
+    """Scatter the values of voxels ``idx`` of a slab into ``target`` (3D or 4D)."""
+    tail = target.shape[3:]
+    view = target[:, :, oz].reshape((-1,) + tail)   # a copy if not contiguous: write back
     view[idx] = values
-    target[:, :, oz] = view.reshape(slab_shape)
+    target[:, :, oz] = view.reshape(tuple(slab_shape) + tail)
 
 
 def _split_key(key: str) -> tuple[str | None, str]:
@@ -314,20 +346,27 @@ def write_fit_outputs(arrays: Mapping[str, np.ndarray], series: Series, out_dir:
     # the core count changes no number in the maps, so it stays out of their provenance
     prov = provenance(spec.name, engine, {k: v for k, v in options.items() if k != "jobs"},
                       series)
-    units = {spec.outputs[k]: spec.unit(k) for k in spec.params}
+    units = {spec.outputs[k]: spec.unit(k) for k in spec.written}
     stem = derivative_stem(series.stem, spec.name)
     what = f"{spec.name} model fitted voxelwise to {series.stem}"
     output_notes = spec.extra.get("output_notes")
     per_map = output_notes(acquisition(spec, series, options)) if output_notes else {}
+    extra_out = {e.suffix: e for e in spec.extra_outputs.values()}
+    axes = {s: [float(v) for v in e.axis(series.values, acquisition(spec, series, options))]
+            for s, e in extra_out.items() if e.axis is not None}
     paths = []
     with output_set(out_dir, protect=input_files(series, options)):
         for key in output_keys(spec):
             arr = arrays[key]
-            if arr.shape != tuple(series.shape):
+            if arr.shape[:3] != tuple(series.shape):
                 raise ValueError(f"{key}: array shape {arr.shape} is not the series grid "
                                  f"{series.shape}")
             desc, suffix = _split_key(key)
             u, extra = _map_sidecar(spec, units, desc, suffix, what, notes, options)
+            if suffix in axes:      # a vector output: the values of its fourth axis
+                e = extra_out[suffix]
+                extra.update({"AxisName": e.axis_name, "AxisUnits": e.axis_unit,
+                              "AxisValues": axes[suffix]})
             if not desc and per_map.get(suffix):
                 extra["Notes"] = list(per_map[suffix])
             paths.append((_map_folder(out_dir, suffix, datatype_folders), suffix, arr, desc,
@@ -343,9 +382,13 @@ def write_fit_outputs(arrays: Mapping[str, np.ndarray], series: Series, out_dir:
 def _map_sidecar(spec: ModelSpec, units: Mapping[str, str], desc: str | None, suffix: str,
                  what: str, notes: Sequence[str], options: Mapping[str, Any]
                  ) -> tuple[str, dict[str, Any]]:
-    """Units and the extra sidecar keys (Description, StatusCodes, ...) of one map."""
+    """Units and the extra sidecar keys (Description, StatusCodes, ...) of one map.
+
+    Descriptions come from the spec where it gives them (``extra_outputs``,
+    ``extra["map_descriptions"]``, ``extra["stderr_description"]``)."""
     from pipeline.bidsderiv import QUANTITY, is_parametric
     extra: dict[str, Any] = {"Warnings": list(notes)} if notes else {}
+    extra_out = {e.suffix: e for e in spec.extra_outputs.values()}
     if desc == "fitstatus":
         u = "code"
         extra["StatusCodes"] = {str(c): name for c, name in st.NAMES.items()}
@@ -355,16 +398,22 @@ def _map_sidecar(spec: ModelSpec, units: Mapping[str, str], desc: str | None, su
         u = "arbitrary"
         extra["Description"] = ("root-mean-square fit residual sqrt(RSS/M), signal units; "
                                 + what)
+    elif not desc and suffix in extra_out:
+        u = extra_out[suffix].unit
+        extra["Description"] = f"{extra_out[suffix].description}; {what}"
     else:
         u = units[suffix]
         quantity = QUANTITY.get(suffix, f"parameter {suffix[:-3] or suffix}")
         extra["Description"] = f"{quantity}; {what}"
         if desc == "stderr":
-            extra["Description"] = ("standard error of the " + quantity + " from the "
-                                    "Jacobian at the solution; noise from " +
-                                    ("background" if options.get("noise_sigma") is not None
-                                     else "residuals") + "; " + what)
-        if suffix == "InvEffmap":
+            extra["Description"] = (spec.extra.get(
+                "stderr_description", "standard error of the " + quantity + " from the "
+                "Jacobian at the solution") + "; noise from " +
+                ("background" if options.get("noise_sigma") is not None else "residuals")
+                + "; " + what)
+        elif suffix in spec.extra.get("map_descriptions", {}):
+            extra["Description"] = f"{spec.extra['map_descriptions'][suffix]}; {what}"
+        elif suffix == "InvEffmap":
             extra["Description"] = ("inversion efficiency -cos(inversion angle): 1 ideal, "
                                     "0 none (apparent; absorbs excitation errors too); "
                                     + what)
@@ -382,7 +431,8 @@ def load_b1(spec: ModelSpec, series: Series, b1: str | Path | None, stream: Text
     """
     if b1 and "b1" not in spec.voxel_fixed:
         raise InputError(f"--b1 {b1}: the {spec.name} model does not use a B1 map "
-                         f"(it applies to: vfa, mese).")
+                         f"(it applies to: vfa, mese, mp2rage, looklocker with "
+                         f"--ll-correction readout).")
     b1_arr = load_grid_map(b1, series, what="B1 map") if b1 else None
     if b1_arr is not None:
         finite = b1_arr[np.isfinite(b1_arr)]
@@ -434,7 +484,7 @@ def fit_command(model: str, inputs: Sequence[str | Path], out: str | Path,
     spec, series, fixed = prepare(model, inputs, time_unit)
     check_t1_map_model(spec, t1_map)
     sigma = estimate_noise(series)
-    extra["noise"] = resolve_noise(extra.get("noise"), series, sigma, stream)
+    extra["noise"] = resolve_noise(extra.get("noise"), series, sigma, stream, spec=spec)
     maps = {"b1_map": str(b1) if b1 else None, "t1_map": str(t1_map) if t1_map else None}
     spec = configure_model(spec, {**extra, **maps})
     acquisition(spec, series, extra)          # validate the options before any reading

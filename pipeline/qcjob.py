@@ -23,7 +23,7 @@ from pipeline.errors import EXIT_OK, EXIT_QC_FAIL, InputError
 from pipeline.series import (_load_image, load_grid_map, load_label_map, read_json_file,
                              sidecar_path)
 
-QC_MAPS = ("T1map", "T2map", "T2starmap", "TB1map")
+QC_MAPS = ("T1map", "T2map", "T2starmap", "TB1map", "MWFmap", "T1starmap")
 ALL_MAPS = QC_MAPS + ("M0map",)
 TSV_COLUMNS = ["session", "model", "series", "map", "label", "name", "n_voxels", "n_excluded", "mean",
                "sd", "median", "iqr", "cv_pct", "median_stderr", "units", "reference",

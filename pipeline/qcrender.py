@@ -33,7 +33,13 @@ def open_source_series(mf: MapFile):
     if missing:
         return None, f"source series not found ({missing[0]})"
     try:
-        series = read_series(paths, key)
+        from fitting.errors import RelaxlineError
+        from fitting.spec import get_model
+        try:   # keys that may differ per volume (e.g. the MP2RAGE flip angles)
+            volume_keys = get_model(str(mf.sidecar.get("Model"))).volume_keys
+        except RelaxlineError:
+            volume_keys = ()
+        series = read_series(paths, key, volume_keys=volume_keys)
         if tuple(series.shape) != mf.shape or not np.allclose(series.affine, mf.affine,
                                                               atol=1e-3):
             return None, "the source series is not on the map's grid"
@@ -117,7 +123,9 @@ def fitted_curves(mf: MapFile, series, labels: np.ndarray, keep: np.ndarray,
 
 XLABEL = {"InversionTime": ("inversion time", 1000.0, "ms"), "EchoTime": ("echo time", 1000.0,
           "ms"), "FlipAngle": ("flip angle", 1.0, "degrees"),
-          "RepetitionTime": ("repetition time", 1000.0, "ms")}
+          "RepetitionTime": ("repetition time", 1000.0, "ms"),
+          "RepetitionTimeExcitation": ("repetition time", 1000.0, "ms"),
+          "SaturationDelay": ("saturation delay", 1000.0, "ms")}
 
 
 def render(result: QCResult, reference, tol, out_figures: bool, erode_mm: float,

@@ -27,20 +27,30 @@ import numpy as np
 from fitting.errors import excerpt
 from pipeline.errors import InputError
 
+# RepetitionTimeExcitation / RepetitionTimePreparation: BIDS keys of the MP2RAGE family
+# (readout pulse spacing; time between preparations). SaturationDelay is relaxline's key
+# for the time from a saturation pulse to the readout (BIDS defines none).
+TIME_KEYS = ("InversionTime", "EchoTime", "RepetitionTime", "RepetitionTimeExcitation",
+             "RepetitionTimePreparation", "SaturationDelay")
 ANGLE_KEYS = ("FlipAngle", "RefocusingFlipAngle")
-SCALAR_KEYS = ("InversionTime", "EchoTime", "RepetitionTime") + ANGLE_KEYS + (
-    "MagneticFieldStrength",)
-TIME_KEYS = ("InversionTime", "EchoTime", "RepetitionTime", "RepetitionTimeExcitation")
+SCALAR_KEYS = TIME_KEYS + ANGLE_KEYS + ("MagneticFieldStrength",)
+# BIDS NumberShots: excitations per readout block; a number, or a list of two numbers
+# (excitations before and after the k-space centre line)
+SHOT_KEYS = ("NumberShots",)
 MS_THRESHOLD_S = 30.0  # a "time" above this is almost certainly milliseconds
 # with --time-unit ms, a longest time (ms) below this is really seconds (common practice:
 # no T1-mapping IR ends its TIs under 10 ms, no echo train or TR under 1 ms)
-MS_FLOOR = {"InversionTime": 10.0, "EchoTime": 1.0, "RepetitionTime": 1.0}
+MS_FLOOR = {"InversionTime": 10.0, "EchoTime": 1.0, "RepetitionTime": 1.0,
+            "SaturationDelay": 10.0, "RepetitionTimePreparation": 10.0,
+            "RepetitionTimeExcitation": 1.0}
 AFFINE_ATOL_MM = 1e-3
 # BIDS anat sidecars may give the excitation TR as RepetitionTimeExcitation (BIDS qMRI
 # requires it for VFA); it stands in for RepetitionTime when that key is absent.
 KEY_ALIASES = {"RepetitionTime": ("RepetitionTimeExcitation",)}
 # BIDS entities that index the volumes of a split series; dropped to form the stem.
-_INDEX_ENTITY = re.compile(r"_(inv|echo|flip|part|mt)-[0-9A-Za-z]+")
+# acq-tr<k>: the two interleaved TRs of actual flip-angle imaging (TB1AFI), from memory
+# of the BIDS qMRI appendix.
+_INDEX_ENTITY = re.compile(r"_(inv|echo|flip|part|mt)-[0-9A-Za-z]+|_acq-tr[0-9]+")
 
 
 def nifti_stem(path: str | Path) -> str:
@@ -334,7 +344,7 @@ def check_same_grid(ref_shape: Sequence[int], ref_affine: np.ndarray, img, path:
 
 
 def read_series(inputs: Sequence[str | Path], key: str, time_unit: str = "s",
-                min_volumes: int = 1) -> Series:
+                min_volumes: int = 1, volume_keys: Sequence[str] = ()) -> Series:
     """Validate and open a series whose volumes vary in ``key``.
 
     Parameters
@@ -343,6 +353,9 @@ def read_series(inputs: Sequence[str | Path], key: str, time_unit: str = "s",
     key : the varying BIDS key (``InversionTime``, ``FlipAngle``, ``EchoTime``).
     time_unit : ``"s"`` (BIDS) or ``"ms"`` for sidecars written in milliseconds.
     min_volumes : fewer volumes than this is an error (e.g. the model's parameter count).
+    volume_keys : scalar keys that may differ between volumes (e.g. the ``FlipAngle`` of
+        each MP2RAGE inversion); ``meta`` then holds a list in sorted volume order when
+        they differ (a 4D sidecar may give them as a list with one value per volume).
     """
     if time_unit not in ("s", "ms"):
         raise InputError(f"--time-unit must be 's' or 'ms', got {time_unit!r}.")
@@ -406,8 +419,8 @@ def read_series(inputs: Sequence[str | Path], key: str, time_unit: str = "s",
         raise InputError(f"{', '.join(map(str, paths))}: duplicate '{key}' value(s) "
                          f"{uniq[counts > 1].tolist()}; each volume needs a distinct value.")
 
-    meta = _common_meta(paths, metas, key, time_unit)
     order = np.argsort(vals, kind="stable")
+    meta = _common_meta(paths, metas, key, time_unit, volume_keys, order, len(vals))
     dt = images[0].get_data_dtype()
     stem = _series_stem(paths)
     return Series(paths=paths, key=key, values=vals[order], shape=shape,
@@ -417,11 +430,83 @@ def read_series(inputs: Sequence[str | Path], key: str, time_unit: str = "s",
                   _images=images)
 
 
-def _common_meta(paths: list[Path], metas: list[dict], key: str, time_unit: str) -> dict:
-    """Scalar acquisition parameters; they must agree across the volumes of a series."""
+def _volume_values(paths: list[Path], metas: list[dict], k: str, time_unit: str,
+                   order: np.ndarray, n: int) -> Any:
+    """Per-volume values of key ``k`` in sorted order (one number when they all agree),
+    or None when no sidecar gives it. A 4D sidecar may hold a list of ``n`` values."""
+    if len(metas) == 1 and isinstance(metas[0].get(k), list):
+        where = str(sidecar_path(paths[0]))
+        raw = metas[0][k]
+        if len(raw) != n:
+            raise InputError(f"{where}: key '{k}' has {len(raw)} values but the series has "
+                             f"{n} volumes; give one value per volume (or a single number).")
+        vals = [_check_unit(k, _as_number(v, where, k), where, time_unit) for v in raw]
+    else:
+        found = [(p, sc[k]) for p, sc in zip(paths, metas) if sc.get(k) is not None]
+        if not found:
+            return None
+        if len(found) != len(metas) and len(metas) > 1:
+            missing = [str(sidecar_path(p)) for p, sc in zip(paths, metas) if sc.get(k) is None]
+            raise InputError(f"{missing[0]}: key '{k}' is missing here but given in the other "
+                             f"volumes' sidecars; give it for every volume.")
+        vals = []
+        for p, v in found:
+            where = str(sidecar_path(p))
+            if isinstance(v, list):
+                raise InputError(f"{where}: key '{k}' must be a single number for this volume, "
+                                 f"got a list.")
+            vals.append(_check_unit(k, _as_number(v, where, k), where, time_unit))
+        if len(vals) == 1:
+            return vals[0]
+    vals = [vals[i] for i in order]
+    return vals[0] if all(math.isclose(v, vals[0], rel_tol=1e-6, abs_tol=1e-9)
+                          for v in vals) else vals
+
+
+def _shots(value: Any, where: str, key: str) -> Any:
+    """A BIDS NumberShots value: a positive whole number or a list of two whole numbers
+    (excitations before and after the k-space centre)."""
+    def whole(v: Any) -> int:
+        x = _as_number(v, where, key)
+        if x != round(x) or x < 0:
+            raise InputError(f"{where}: key '{key}' must hold whole numbers of excitations, "
+                             f"got {v!r}.")
+        return int(round(x))
+    if isinstance(value, list):
+        if len(value) != 2:
+            raise InputError(f"{where}: key '{key}' as a list must hold two numbers (the "
+                             f"excitations before and after the k-space centre), got "
+                             f"{value!r}.")
+        return [whole(v) for v in value]
+    n = whole(value)
+    if n < 1:
+        raise InputError(f"{where}: key '{key}' = {value!r} must be at least 1.")
+    return n
+
+
+def _common_meta(paths: list[Path], metas: list[dict], key: str, time_unit: str,
+                 volume_keys: Sequence[str] = (), order: np.ndarray | None = None,
+                 n: int = 0) -> dict:
+    """Scalar acquisition parameters; they must agree across the volumes of a series,
+    except ``volume_keys`` (:func:`_volume_values`)."""
     meta: dict[str, Any] = {}
+    for k in volume_keys:
+        if k != key:
+            v = _volume_values(paths, metas, k, time_unit, order, n)
+            if v is not None:
+                meta[k] = v
+    for k in SHOT_KEYS:
+        seen = [(p, _shots(sc[k], str(sidecar_path(p)), k)) for p, sc in zip(paths, metas)
+                if sc.get(k) is not None]
+        for p, v in seen[1:]:
+            if v != seen[0][1]:
+                raise InputError(f"{sidecar_path(p)}: key '{k}' = {v!r} differs from "
+                                 f"{seen[0][1]!r} in {sidecar_path(seen[0][0])}; all volumes "
+                                 f"of a series must share it.")
+        if seen:
+            meta[k] = seen[0][1]
     for k in SCALAR_KEYS:
-        if k == key:
+        if k == key or k in volume_keys:
             continue
         seen = []
         for p, sc in zip(paths, metas):

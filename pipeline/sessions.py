@@ -15,6 +15,7 @@ from pathlib import Path
 
 from fitting.errors import excerpt
 from pipeline.errors import InputError
+from pipeline.wfconfig import B1_SOURCES
 
 MANIFEST = "{sub}/{ses}/fits/{model}/{stem}.fit.json"   # maps: {sub}/{ses}/anat|fmap/
 CHUNK = "{sub}/{ses}/chunks/{model}/{stem}/chunk-{chunk}.npz"
@@ -103,7 +104,7 @@ class Plan:
         return None
 
     def b1_source(self, cfg: dict, job: SeriesJob) -> SeriesJob | None:
-        """The dam fit whose TB1map feeds ``job`` (vfa/mese with ``b1: dam``)."""
+        """The B1 fit (dam or afi) whose TB1map feeds ``job`` (``b1: dam`` or ``b1: afi``)."""
         return self.companion(cfg, job, "b1")
 
     def t1_source(self, cfg: dict, job: SeriesJob) -> SeriesJob | None:

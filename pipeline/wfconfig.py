@@ -14,7 +14,9 @@ from pipeline.errors import InputError
 
 SCHEMA = Path(__file__).with_name("schemas") / "config.schema.yaml"
 # models that take a B1 map, with the setting that uses none (or fits it)
-B1_USERS = {"vfa": "none", "mese": "fitted"}
+B1_USERS = {"vfa": "none", "mese": "fitted", "mp2rage": "none", "looklocker": "none"}
+# models whose TB1map can feed another model's fit (the `b1` value names the model)
+B1_SOURCES = ("dam", "afi")
 # models whose T1map can feed another model's fit (`models.<name>.t1`), in the order
 # `auto` prefers them
 T1_SOURCES = ("ir", "vfa")
@@ -41,11 +43,11 @@ def t1_setting(cfg: dict, model: str) -> str:
 
 
 def _depends(cfg: dict) -> dict[str, set[str]]:
-    """Companion-map edges a fit waits for: B1 from dam, T1 from an explicit source."""
+    """Companion-map edges a fit waits for: B1 from dam or afi, T1 from an explicit source."""
     out: dict[str, set[str]] = {name: set() for name in cfg["models"]}
     for name, m in cfg["models"].items():
-        if m.get("b1") == "dam":
-            out[name].add("dam")
+        if m.get("b1") in B1_SOURCES:
+            out[name].add(m["b1"])
         if m.get("t1") in T1_SOURCES:
             out[name].add(m["t1"])
     return out
@@ -70,7 +72,7 @@ def companion_models(cfg: dict, model: str, kind: str) -> tuple[list[str], bool]
     itself, directly or through others, is skipped)."""
     m = cfg["models"][model]
     if kind == "b1":
-        return (["dam"], True) if m.get("b1") == "dam" else ([], False)
+        return ([m["b1"]], True) if m.get("b1") in B1_SOURCES else ([], False)
     setting = t1_setting(cfg, model)
     if setting in T1_SOURCES:
         return [setting], True
@@ -176,17 +178,21 @@ def validate_config(cfg: dict, source: str = "config") -> dict:
         b1 = m.get("b1")
         if b1 is not None and name not in B1_USERS:
             raise InputError(f"{source}: key `models.{name}.b1`: the {name} model takes no "
-                             "B1 map (only vfa and mese do); remove the key.")
+                             f"B1 map (only {', '.join(B1_USERS)} do); remove the key.")
         if b1 == "fitted" and name != "mese":
             raise InputError(f"{source}: key `models.{name}.b1`: 'fitted' applies to mese "
-                             "only; use 'dam' or 'none'.")
+                             "only; use 'dam', 'afi' or 'none'.")
         if b1 == "none" and name == "mese":
             raise InputError(f"{source}: key `models.mese.b1`: use 'fitted' (B1 fitted from "
-                             "the echoes) or 'dam'.")
-        if b1 == "dam" and "dam" not in out["models"]:
-            raise InputError(f"{source}: key `models.{name}.b1` is 'dam' but no `models.dam` "
-                             "is configured; add the dam series pattern or set b1 to "
-                             f"'{B1_USERS[name]}'.")
+                             "the echoes), 'dam' or 'afi'.")
+        if name == "looklocker" and b1 in B1_SOURCES and m.get("ll_correction") != "readout":
+            raise InputError(f"{source}: key `models.looklocker.b1` is '{b1}', but only the "
+                             "readout correction uses a B1 map; set `ll_correction: readout` "
+                             "or remove the key.")
+        if b1 in B1_SOURCES and b1 not in out["models"]:
+            raise InputError(f"{source}: key `models.{name}.b1` is '{b1}' but no "
+                             f"`models.{b1}` is configured; add the {b1} series pattern or "
+                             f"set b1 to '{B1_USERS[name]}'.")
         keys = _option_keys()
         for key in keys:
             if key in m and m[key] is not False and name not in keys[key]:

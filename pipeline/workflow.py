@@ -65,7 +65,7 @@ def map_path(maps_manifest: str | Path, suffix: str) -> str:
 
 
 def b1_map_path(maps_manifest: str | Path) -> str:
-    """The TB1map listed in a dam fit's manifest."""
+    """The TB1map listed in a B1 fit's manifest (dam or afi)."""
     return map_path(maps_manifest, "TB1map")
 
 
@@ -151,7 +151,7 @@ def step_chunk(model: str, inputs: Sequence[str], z0: int, z1: int, out: str,
     sigma = estimate_noise(series)     # whole series: every chunk resolves the same way
     options = dict(options or {})
     options["noise"] = resolve_noise(options.get("noise"), series, sigma, sys.stderr,
-                                     command="workflow chunk")
+                                     command="workflow chunk", spec=spec)
     options = {"engine": engine, "jobs": int(threads), "time_unit": time_unit, "mask": None,
                "b1_map": str(b1) if b1 else None, "t1_map": t1, "noise_sigma": sigma,
                **options}
@@ -351,7 +351,7 @@ def _cmd(step: str, args: Sequence[str], log: Sequence[str]) -> str:
 
 def fit_inputs(cfg: dict, plan_: Plan, wc, chunks: bool = True) -> dict[str, list[str]]:
     """Inputs of a fit (or chunk) job: the series and its JSON sidecars (an edited
-    acquisition parameter reruns the fit), its chunk files, the dam manifest."""
+    acquisition parameter reruns the fit), its chunk files, the B1 fit's manifest."""
     from pipeline.series import sidecar_path
     job = plan_.job(wc.sub, wc.ses, wc.model, wc.stem)
     b1, t1 = plan_.b1_source(cfg, job), plan_.t1_source(cfg, job)

@@ -21,6 +21,8 @@ import pandas as pd
 
 from qc.tolerance import TIME_MAPS
 
+RATIO_MAPS = ("TB1map", "MWFmap")   # unitless: shown as bare ratios
+
 STATUS_STYLE = {  # marker shape carries the status without colour
     "pass": {"marker": "o", "color": "#1b7837"},
     "warn": {"marker": "s", "color": "#b35806"},
@@ -28,6 +30,7 @@ STATUS_STYLE = {  # marker shape carries the status without colour
     "n/a": {"marker": "D", "color": "#4d4d4d"},
 }
 QUANTITY_LABEL = {"T1map": "T1", "T2map": "T2", "T2starmap": "T2*", "TB1map": "B1 (ratio)",
+                  "MWFmap": "short-T2 fraction", "T1starmap": "apparent T1*",
                   "M0map": "M0"}
 
 
@@ -35,7 +38,7 @@ def display_scale(map_name: str, units: str) -> tuple[float, str]:
     """Factor and unit for display: times in ms (files keep seconds), B1 as a bare ratio."""
     if map_name in TIME_MAPS and units in ("s", ""):
         return 1000.0, "ms"
-    return 1.0, "" if map_name == "TB1map" else units
+    return 1.0, "" if map_name in RATIO_MAPS else units
 
 
 def for_display(df: pd.DataFrame) -> pd.DataFrame:
@@ -73,7 +76,7 @@ def to_png(fig, dpi: int = 110, tight: bool = True) -> bytes:
 
 def _axis_label(map_name: str, units: str) -> str:
     q = QUANTITY_LABEL.get(map_name, map_name)
-    if map_name == "TB1map" or not units:
+    if map_name in RATIO_MAPS or not units:
         return q
     return f"{q} ({units})"
 

@@ -24,7 +24,7 @@ STATUS_TEXT = {"pass": "PASS", "warn": "WARN", "fail": "FAIL", "n/a": "N/A"}
 STATUS_SYMBOL = {"pass": "✔", "warn": "▲", "fail": "✖", "n/a": "–"}
 AGREEMENT = "Agreement with reference"
 MAP_TITLE = {"T1map": "T1", "T2map": "T2", "T2starmap": "T2*", "TB1map": "B1 (ratio to nominal)",
-             "M0map": "M0"}
+             "M0map": "M0", "MWFmap": "short-T2 fraction", "T1starmap": "apparent T1*"}
 
 CSS = """
 body{font-family:system-ui,-apple-system,"Segoe UI",Roboto,"DejaVu Sans",sans-serif;

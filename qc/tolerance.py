@@ -43,10 +43,10 @@ DEFAULT_TOLERANCES: dict[str, dict[str, float]] = {
 }
 """Illustrative defaults; set real values in the config from the local QA procedure."""
 
-KNOWN_MAPS = ("T1map", "T2map", "T2starmap", "TB1map", "M0map")
-RANGE_MAPS = ("T1map", "T2map", "T2starmap", "TB1map")
+KNOWN_MAPS = ("T1map", "T2map", "T2starmap", "TB1map", "M0map", "MWFmap", "T1starmap")
+RANGE_MAPS = ("T1map", "T2map", "T2starmap", "TB1map", "MWFmap", "T1starmap")
 """Maps the QC evaluates, so the maps a range may be given for."""
-TIME_MAPS = ("T1map", "T2map", "T2starmap")
+TIME_MAPS = ("T1map", "T2map", "T2starmap", "T1starmap")
 PASS, WARN, FAIL, NA = "pass", "warn", "fail", "n/a"
 CONFIG_KEYS = ("maps", "vials", "temperature", "ranges", "range_warn_margin_pct")
 

@@ -13,8 +13,19 @@ T2, M0 and the refocusing scale TB1map, reported below the symmetry point of the
 train, 180/nominal refocusing angle, or as fitted with --slice-profile; with --b1 the B1 scale
 comes from the map and only T2 and M0 are fitted; with --t1-map each voxel's T1 comes
 from a T1 map, e.g. from `relaxline fit ir`; echoes must sit at TE = k*ESP),
-mese-mono (mono-exponential T2, optional --plateau and --skip-echoes N) and megre
-(T2* from multi-echo gradient echo magnitudes).
+mese-mono (mono-exponential T2, optional --plateau and --skip-echoes N), megre
+(T2* from multi-echo gradient echo magnitudes), looklocker (inversion recovery with a
+continuous readout, and the modified sequences used for cardiac T1: T1 = T1*(B/A - 1),
+M0, apparent T1* as _T1starmap; --ll-correction readout takes T1 from T1* and the
+readout angle FlipAngle and pulse spacing RepetitionTimeExcitation, with --b1), sr
+(saturation recovery, delays in the sidecar key SaturationDelay: T1, M0, saturation
+efficiency _SatEffmap), afi (actual flip-angle imaging, two volumes with their
+RepetitionTime TR1 < TR2: TB1map; --t1-fixed for the exact finite-TR solution and M0),
+mp2rage (complex inv-1/inv-2 images with the BIDS MP2RAGE keys: T1 and the uniform
+image _UNIT1 by lookup, M0; --b1 corrects the readout angles) and mese-multi (T2
+distribution of a long CPMG train by regularised NNLS over an EPG basis with fitted
+refocusing angle: geometric-mean T2, short-T2 fraction _MWFmap, M0, TB1map, and the
+distribution as the 4D _T2distmap; fast engine only).
 
 Outputs in --out, with BIDS-derivative names: the input's stem without its raw
 suffix and volume entities, the model in rec- (sub-01_ses-1_IRT1 fitted by ir ->
@@ -33,12 +44,15 @@ A QA and research tool, not a medical device."""
 
 def add_series_arguments(p: argparse.ArgumentParser) -> None:
     """MODEL, INPUT..., --b1 and --time-unit (shared with ``relaxline refit``)."""
-    p.add_argument("model", metavar="MODEL", help="ir, vfa, dam (or a registered T2 model)")
+    p.add_argument("model", metavar="MODEL",
+                   help="ir, vfa, dam, mese, mese-mono, megre, looklocker, sr, afi, mp2rage, "
+                        "mese-multi")
     p.add_argument("inputs", metavar="INPUT", nargs="+",
                    help="one 4D NIfTI or several 3D NIfTIs, each with a JSON sidecar")
     p.add_argument("--b1", metavar="F",
                    help="B1 map (actual/nominal flip-angle ratio) on the series grid "
-                        "(vfa; mese: B1 then fixed from the map)")
+                        "(vfa, mp2rage, looklocker --ll-correction readout; mese: B1 then "
+                        "fixed from the map)")
     p.add_argument("--t1-map", metavar="F",
                    help="T1 map in seconds on the series grid: each voxel's own T1 for the "
                         "models that use one (mese). Inside the fitted region it must hold "
@@ -61,9 +75,17 @@ def add_series_arguments(p: argparse.ArgumentParser) -> None:
                         "a TSV's scales are multiplied by B1, the built-in pulse is simulated "
                         "at each B1")
     p.add_argument("--t1-fixed", type=float, metavar="S",
-                   help="mese: T1 (s) of the echo-train model (default 1.0; it only weights "
-                        "the stimulated echoes); with --t1-map, the T1 used where the map "
-                        "has no value")
+                   help="mese, mese-multi: T1 (s) of the echo-train model (default 1.0; it "
+                        "only weights the stimulated echoes); with --t1-map, the T1 used where "
+                        "the map has no value. afi: the T1 (s) of the exact finite-TR solution "
+                        "(default: the TR << T1 closed form)")
+    p.add_argument("--ll-correction", choices=("ratio", "readout"),
+                   help="looklocker: ratio = T1*(B/A - 1) (default, no readout parameters); "
+                        "readout = from T1*, FlipAngle and RepetitionTimeExcitation (continuous "
+                        "spoiled readout only)")
+    p.add_argument("--inversion-efficiency", type=float, metavar="E",
+                   help="mp2rage: inversion efficiency of the lookup, -Mz after/Mz before "
+                        "(default 0.96)")
     p.add_argument("--time-unit", choices=("s", "ms"), default="s",
                    help="unit of the times in the sidecars (BIDS: s)")
 
@@ -85,6 +107,8 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
 def add_model_arguments(p: argparse.ArgumentParser) -> None:
     """Model options: T2 model variants and the noise model."""
     g = p.add_argument_group("model options")
+    g.add_argument("--short-t2-cutoff", type=float, metavar="S",
+                   help="mese-multi: upper T2 (s) of the short-T2 fraction (default 0.040)")
     g.add_argument("--plateau", action="store_true",
                    help="mese-mono: also fit a constant signal level the decay tends to "
                         "(noise floor, non-decaying component); written as _Plateaumap")
@@ -98,11 +122,18 @@ def add_model_arguments(p: argparse.ArgumentParser) -> None:
                         "with a background, gaussian for complex data or without one")
 
 
+def series_options(args: argparse.Namespace) -> dict:
+    """Model options of :func:`add_series_arguments` (shared with refit), only those set."""
+    out = {"t1_fixed": args.t1_fixed, "slice_profile": args.slice_profile,
+           "ll_correction": args.ll_correction,
+           "inversion_efficiency": args.inversion_efficiency}
+    return {k: v for k, v in out.items() if v is not None}
+
+
 def model_options(args: argparse.Namespace) -> dict:
     """The model options given on the command line (only those set)."""
-    out = {"t1_fixed": args.t1_fixed, "plateau": args.plateau,
-           "slice_profile": args.slice_profile,
-           "skip_echoes": args.skip_echoes,
+    out = {**series_options(args), "plateau": args.plateau,
+           "skip_echoes": args.skip_echoes, "short_t2_cutoff": args.short_t2_cutoff,
            "noise": args.noise}
     # `is` tests: --t1-fixed 0 / --skip-echoes 0 must reach validation, not vanish as "== False"
     return {k: v for k, v in out.items() if v is not None and v is not False}

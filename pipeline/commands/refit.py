@@ -23,7 +23,7 @@ import sys
 from pathlib import Path
 from typing import Any
 
-from pipeline.commands.fit import add_series_arguments
+from pipeline.commands.fit import add_series_arguments, series_options
 from pipeline.errors import InputError
 
 HELP = "Careful lmfit refit of one region with full fit statistics and model comparison"
@@ -302,11 +302,15 @@ def run(args: argparse.Namespace) -> int:
     from pipeline.outputs import atomic_write_bytes, refuse_overwriting_inputs
 
     spec, series, _ = prepare(args.model, args.inputs, args.time_unit)
+    if spec.solver is not None:
+        raise InputError(f"refit does not apply to {spec.name}: the model is solved by its own "
+                         f"method (regularised NNLS over a basis), not by a curve fit with "
+                         f"lmfit statistics. Fit the voxels with `relaxline fit {spec.name}` "
+                         f"and read the region's statistics with `relaxline qc`.")
     sigma = estimate_noise(series)
-    noise = resolve_noise(args.noise, series, sigma, sys.stderr, command="refit")
+    noise = resolve_noise(args.noise, series, sigma, sys.stderr, command="refit", spec=spec)
     options = {"b1_map": str(args.b1) if args.b1 else None, "noise": noise,
-               "t1_map": str(args.t1_map) if args.t1_map else None,
-               "t1_fixed": args.t1_fixed, "slice_profile": args.slice_profile}
+               "t1_map": str(args.t1_map) if args.t1_map else None, **series_options(args)}
     if args.plot:
         refuse_overwriting_inputs([*input_files(series, options), args.label_map],
                                   [Path(args.plot)], "`relaxline refit --plot`")
