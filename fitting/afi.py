@@ -52,8 +52,9 @@ def afi_signals(tr: ArrayLike, b1: ArrayLike, amp: ArrayLike, alpha_deg: float,
     e1, e2, rho = _terms(tr1, tr2, t1)
     c, s = np.cos(a), np.sin(a)
     den = 1.0 - e1 * e2 * c * c
-    return np.stack([amp * s * (rho + e2 * c) / den, amp * s * (1.0 + rho * e1 * c) / den],
-                    axis=-1)
+    with np.errstate(divide="ignore", invalid="ignore"):   # α = 0 or π at T1 = ∞: singular
+        return np.stack([amp * s * (rho + e2 * c) / den, amp * s * (1.0 + rho * e1 * c) / den],
+                        axis=-1)
 
 
 def afi_amplitude_to_m0(amp: ArrayLike, tr1: float, t1: ArrayLike) -> np.ndarray:
@@ -75,8 +76,8 @@ def afi_b1(s1: ArrayLike, s2: ArrayLike, tr1: float, tr2: float, alpha_deg: floa
 
     T1 = ∞: the closed form cos α = (r·n − 1)/(n − r) (Yarnykh 2007). Finite T1 (scalar
     or per voxel): r(α) of :func:`afi_ratio` is inverted by bisection on (0, π) (it
-    falls monotonically from r(0) to r(π)). Ratios beyond the reachable range give the
-    nearest end (α = 0 or π); S1 ≤ 0 gives NaN.
+    falls monotonically from r(0) to r(π)). A ratio above r(0) gives α = 0 (the caller
+    flags it); one below r(π), which no angle produces, and S1 ≤ 0 give NaN.
     """
     s1 = np.asarray(s1, float)
     s2 = np.asarray(s2, float)
@@ -96,4 +97,6 @@ def afi_b1(s1: ArrayLike, s2: ArrayLike, tr1: float, tr2: float, alpha_deg: floa
             lo = np.where(above, mid, lo)
             hi = np.where(above, hi, mid)
         alpha = np.where(finite, 0.5 * (lo + hi), closed)
-    return np.where((s1 > 0) & np.isfinite(r), alpha / np.deg2rad(alpha_deg), np.nan)
+    reachable = r >= afi_ratio(np.pi, tr1, tr2, t1)
+    return np.where((s1 > 0) & np.isfinite(r) & reachable, alpha / np.deg2rad(alpha_deg),
+                    np.nan)

@@ -22,7 +22,7 @@ from fitting.afi import afi_amplitude_to_m0, afi_b1, afi_signals
 from fitting.errors import RelaxlineError
 from fitting.spec import Fixed, ModelSpec, Params, register
 
-B1_UPPER = 3.0
+B1_LOWER, B1_UPPER = 0.01, 3.0    # B1 → 0: the TR ≪ T1 signal is singular (sin α → 0)
 
 
 def _afi_fixed(meta: Mapping[str, Any], options: Mapping[str, Any]) -> Fixed:
@@ -70,7 +70,7 @@ def _afi_init(x: np.ndarray, data: np.ndarray, fixed: Fixed) -> Params:
     tr1, tr2 = float(x[0]), float(x[1])
     t1 = fixed["t1"]
     b1 = afi_b1(data[:, 0], data[:, 1], tr1, tr2, fixed["alpha"], t1)
-    b1 = np.minimum(b1, B1_UPPER)
+    b1 = np.clip(b1, B1_LOWER, B1_UPPER)      # beyond the reachable ratios: at a bound
     unit = afi_signals(x, np.where(np.isfinite(b1), b1, 1.0), 1.0, fixed["alpha"], t1)
     with np.errstate(divide="ignore", invalid="ignore"):
         amp = np.einsum("nm,nm->n", data, unit) / np.einsum("nm,nm->n", unit, unit)
@@ -88,7 +88,7 @@ AFI = register(ModelSpec(
     name="afi",
     params=("B1", "A"),
     units=("ratio", "arbitrary"),
-    lower=(0.0, 0.0),
+    lower=(B1_LOWER, 0.0),
     upper=(B1_UPPER, np.inf),
     xkey="RepetitionTime",
     signal=_afi_signal,

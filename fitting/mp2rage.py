@@ -144,7 +144,9 @@ def t1_from_uni(uni: ArrayLike, prot: Protocol, b1: ArrayLike = 1.0,
 
     UNI(T1) is tabulated on a log grid of :data:`LOOKUP_POINTS` T1 values in ``t1_range``
     at each voxel's B1; its monotonic branch is the stretch between the grid's largest
-    and smallest UNI (UNI falls with T1 there; Marques et al. 2010 use this branch). The
+    and smallest UNI (UNI falls with T1 there; Marques et al. 2010 use this branch). A UNI
+    above that of the shortest T1 of the range is ambiguous (the curve folds: a shorter
+    T1 gives the same value) and gets the lower end of ``t1_range``. The
     grid interval holding the voxel's UNI is refined by bisection in log T1 on the exact
     signal equations. UNI beyond the branch gives the nearer end of ``t1_range`` (the
     engine then marks the voxel at a bound); non-finite UNI gives NaN. Vectorised over
@@ -175,7 +177,10 @@ def t1_from_uni(uni: ArrayLike, prot: Protocol, b1: ArrayLike = 1.0,
         lo = np.where(higher, mid, lo)
         hi = np.where(higher, hi, mid)
     t1 = np.exp(0.5 * (lo + hi))
-    t1 = np.where(uni > top, t1_range[0], np.where(uni < bottom, t1_range[1], t1))
+    # Above UNI(shortest T1) the curve has folded: a T1 left of its maximum gives the same
+    # UNI, so the value is ambiguous and reported at the lower bound.
+    ambiguous = (uni > table[:, 0]) & (i_hi > 0)
+    t1 = np.where((uni > top) | ambiguous, t1_range[0], np.where(uni < bottom, t1_range[1], t1))
     return np.where(np.isfinite(uni), t1, np.nan)
 
 

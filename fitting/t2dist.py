@@ -42,8 +42,9 @@ ANGLE_TABLE_STEP = 0.0025    # B1 step of the basis table (linear interpolation 
 SPLINE_POINTS = 401          # fine B1 grid on which the spline of χ² is minimised
 CHI2_FACTOR = 1.02           # regularised misfit / unregularised (Prasloski et al. 2012)
 MU_BISECTION = 60            # steps of the bisection in ln μ² of the first guess
-MU_STEPS = 12                # NNLS evaluations of the μ search at most
-MU_RTOL = 0.002              # accepted |χ²/χ²_min − factor| relative to the factor
+MU_STEPS = 24                # NNLS evaluations of the μ search at most
+MU_RTOL = 0.002              # |χ²/χ²_min − factor| relative to the factor that ends the search
+MU_ACCEPT = 0.02             # ... and that is still accepted when the steps run out
 SUB_BATCH = 2048             # voxels per block (the per-voxel normal matrices are G×G)
 
 
@@ -203,6 +204,7 @@ def regularise(a: np.ndarray, y: np.ndarray, h: np.ndarray, f: np.ndarray,
     chi2 = np.full(n, np.inf)
     done = chi2_min <= 1e-24 * np.einsum("nm,nm->n", y, y)   # exact fit: no regularisation
     converged = done.copy()
+    solved = done.copy()
     if done.any():
         w[done], p[done], _ = nnls(h[done], f[done], passive=p[done])
         chi2[done] = chi2_min[done]
@@ -214,6 +216,7 @@ def regularise(a: np.ndarray, y: np.ndarray, h: np.ndarray, f: np.ndarray,
         wn, pn, conv = nnls(h[todo], f[todo], mu2=m2, passive=p[todo])
         c2 = _misfit(a[todo], y[todo], wn)
         w[todo], p[todo], mu2[todo], chi2[todo] = wn, pn, m2, c2
+        solved[todo] = conv
         ratio = c2 / chi2_min[todo]
         ok = np.abs(ratio - factor) <= MU_RTOL * factor
         converged[todo] = conv & ok
@@ -238,6 +241,9 @@ def regularise(a: np.ndarray, y: np.ndarray, h: np.ndarray, f: np.ndarray,
         fx_all[todo] = fval
         prev = (x.copy(), fx_all)
         x[todo] = nx
+    last = ~done     # kinks of χ²(μ) where the passive set changes can stall the secant
+    converged[last] = solved[last] & (np.abs(chi2[last] / chi2_min[last] - factor)
+                                      <= MU_ACCEPT * factor)
     return w, mu2, chi2, p, converged
 
 
