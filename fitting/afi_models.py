@@ -8,8 +8,9 @@ memory of the qMRI appendix), with the nominal ``FlipAngle``. The signal formula
 * Default: the published closed form, valid for TR1, TR2 ≪ T1 (Yarnykh 2007, Magn Reson
   Med 57:192). Parameters B1 (``TB1map``) and the amplitude A = M0·(1 − e^(−TR1/T1)), a
   nuisance parameter written as no map (without T1 it is not M0).
-* With a T1 (option ``t1_fixed``, seconds): the exact finite-TR steady state is inverted
-  for that T1, and M0 is identifiable (``M0map``).
+* With a T1 (option ``t1_fixed``, seconds, or per voxel from a T1 map, option ``t1_map``):
+  the exact finite-TR steady state is inverted for that T1, and M0 is identifiable
+  (``M0map``).
 """
 from __future__ import annotations
 
@@ -20,7 +21,7 @@ import numpy as np
 
 from fitting.afi import afi_amplitude_to_m0, afi_b1, afi_signals
 from fitting.errors import RelaxlineError
-from fitting.spec import Fixed, ModelSpec, Params, register
+from fitting.spec import Fixed, ModelSpec, Params, per_voxel, register
 
 B1_LOWER, B1_UPPER = 0.01, 3.0    # B1 → 0: the TR ≪ T1 signal is singular (sin α → 0)
 
@@ -49,7 +50,7 @@ def _afi_validate(x: np.ndarray, fixed: Fixed) -> None:
         raise RelaxlineError(f"'FlipAngle' = {fixed['alpha']:g} degrees: the nominal angle must "
                              f"lie in (0, 180).")
     t1 = fixed["t1"]
-    if not (t1 > 0):
+    if np.ndim(t1) == 0 and not t1 > 0:
         raise RelaxlineError(f"fixed T1 = {t1!r} s must be a positive number of seconds "
                              f"(option --t1-fixed).")
 
@@ -81,6 +82,8 @@ def _afi_init(x: np.ndarray, data: np.ndarray, fixed: Fixed) -> Params:
 
 
 def _afi_configure(spec: ModelSpec, options: Mapping[str, Any]) -> ModelSpec:
+    if options.get("t1_map"):             # each voxel's T1 from a T1 map (fixed["t1"] (N,))
+        return per_voxel(AFI_T1, "t1")
     return AFI_T1 if options.get("t1_fixed") is not None else spec
 
 

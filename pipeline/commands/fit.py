@@ -55,7 +55,7 @@ def add_series_arguments(p: argparse.ArgumentParser) -> None:
                         "fixed from the map)")
     p.add_argument("--t1-map", metavar="F",
                    help="T1 map in seconds on the series grid: each voxel's own T1 for the "
-                        "models that use one (mese). Inside the fitted region it must hold "
+                        "models that use one (mese; afi: the exact finite-TR solution). Inside the fitted region it must hold "
                         "T1 > 0 everywhere, unless --t1-fixed gives the T1 used where the map "
                         "has no value (NaN or 0)")
     p.add_argument("--slice-profile", metavar="F.tsv|sinc:TBW[:RATIO]",
