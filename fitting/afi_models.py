@@ -1,8 +1,9 @@
 """The B1 model ``afi`` (actual flip-angle imaging) as a :class:`~fitting.spec.ModelSpec`.
 
-The series is the AFI pair: two volumes whose ``RepetitionTime`` is the interval in which
-each was read (TR1 < TR2; in BIDS the files ``acq-tr1``/``acq-tr2`` of ``TB1AFI``, from
-memory of the qMRI appendix), with the nominal ``FlipAngle``. The signal formulas are
+The series is the AFI pair: two volumes whose ``RepetitionTimeExcitation`` is the interval
+in which each was read (TR1 < TR2; the key the BIDS validator requires of ``TB1AFI``;
+``RepetitionTime`` is accepted in its place), in BIDS the files ``acq-tr1``/``acq-tr2``
+(from memory of the qMRI appendix), with the nominal ``FlipAngle``. The signal formulas are
 :mod:`fitting.afi`; B1 is solved in closed form (no iterative fit), like ``dam``.
 
 * Default: the published closed form, valid for TR1, TR2 ≪ T1 (Yarnykh 2007, Magn Reson
@@ -38,12 +39,14 @@ def _afi_fixed(meta: Mapping[str, Any], options: Mapping[str, Any]) -> Fixed:
 def _afi_validate(x: np.ndarray, fixed: Fixed) -> None:
     if x.size != 2:
         raise RelaxlineError(f"afi needs exactly two volumes (the images read in the TR1 and "
-                             f"TR2 intervals), got {x.size} 'RepetitionTime' values "
+                             f"TR2 intervals), got {x.size} 'RepetitionTimeExcitation' values "
                              f"{x.tolist()}.")
     if not x[0] > 0:
-        raise RelaxlineError(f"'RepetitionTime' values {x.tolist()} s must be positive.")
+        raise RelaxlineError(f"'RepetitionTimeExcitation' values {x.tolist()} s must be "
+                             f"positive.")
     if x[1] / x[0] < 1.5:
-        raise RelaxlineError(f"'RepetitionTime' values {x.tolist()} s: the ratio TR2/TR1 = "
+        raise RelaxlineError(f"'RepetitionTimeExcitation' values {x.tolist()} s: the ratio "
+                             f"TR2/TR1 = "
                              f"{x[1] / x[0]:.3g} is too close to 1 for a B1 estimate (the "
                              f"method uses n = TR2/TR1 of about 5; at least 1.5 is required).")
     if not 0.0 < fixed["alpha"] < 180.0:
@@ -93,7 +96,7 @@ AFI = register(ModelSpec(
     units=("ratio", "arbitrary"),
     lower=(B1_LOWER, 0.0),
     upper=(B1_UPPER, np.inf),
-    xkey="RepetitionTime",
+    xkey="RepetitionTimeExcitation",
     signal=_afi_signal,
     init=_afi_init,
     outputs={"B1": "TB1map"},           # A is a nuisance parameter (module docstring)

@@ -8,8 +8,9 @@ NNLS misfit over angles, then the T2 distribution by regularised NNLS over an EP
 engine for it and no closed-form signal.
 
 Outputs: ``T2map`` the geometric-mean T2 of the distribution; ``MWFmap`` the short-T2
-fraction (components with T2 ≤ ``short_t2_cutoff``, default :data:`SHORT_T2_CUTOFF`:
-the myelin water fraction in white matter; BIDS suffix MWFmap, from memory); ``M0map`` the
+fraction in percent (components with T2 ≤ ``short_t2_cutoff``, default
+:data:`SHORT_T2_CUTOFF`: the myelin water fraction in white matter; BIDS suffix MWFmap,
+whose values the specification recommends in percent, 0–100); ``M0map`` the
 total amplitude; ``TB1map`` the refocusing scale (folded to ≤ 1 as for ``mese``); and the
 distribution itself, ``T2distmap`` (relaxline's name): 4D, one volume per T2 of the grid
 (listed in the sidecar's ``AxisValues``). The basis uses a fixed T1 (option ``t1_fixed``,
@@ -89,8 +90,8 @@ def _solve(x: np.ndarray, y: np.ndarray, fixed: Fixed, noise_sigma: float | None
         with np.errstate(divide="ignore", invalid="ignore"):
             se_b1 = np.where(d.b1_curvature > 0, sigma * np.sqrt(2.0 / d.b1_curvature), np.nan)
         ok = d.converged & (total > 0) & np.isfinite(gm)
-        params[sl] = np.stack([gm, frac, total, d.b1], axis=1)
-        err[sl] = np.stack([se_gm, se_frac, se_m0, se_b1], axis=1)
+        params[sl] = np.stack([gm, 100.0 * frac, total, d.b1], axis=1)     # MWF in percent
+        err[sl] = np.stack([se_gm, 100.0 * se_frac, se_m0, se_b1], axis=1)
         cost[sl] = d.chi2
         dist[sl] = d.weights
         status[sl] = np.where(ok, st.OK, st.FAILED)
@@ -109,11 +110,11 @@ def _no_init(x: np.ndarray, data: np.ndarray, fixed: Fixed) -> Params:
 MESE_MULTI = register(ModelSpec(
     name="mese-multi",
     params=("T2", "MWF", "M0", "B1"),
-    units=("s", "ratio", "arbitrary", "ratio"),
-    # MWF and B1 bounds lie outside what the solver returns ([0, 1], [B1_MIN, 1]), so a
+    units=("s", "percent", "arbitrary", "ratio"),
+    # MWF and B1 bounds lie outside what the solver returns ([0, 100], [B1_MIN, 1]), so a
     # single-component voxel (MWF 0) or a perfect refocusing (B1 1) is not "at a bound".
-    lower=(1e-3, -1.0, 0.0, B1_MIN - 0.1),
-    upper=(10.0, 2.0, np.inf, 1.8),
+    lower=(1e-3, -100.0, 0.0, B1_MIN - 0.1),
+    upper=(10.0, 200.0, np.inf, 1.8),
     xkey="EchoTime",
     signal=_no_signal,
     init=_no_init,
@@ -132,5 +133,7 @@ MESE_MULTI = register(ModelSpec(
     extra={"lmfit": False, "noise_models": ("gaussian",),   # NNLS: no Rician expectation
            "stderr_description": "standard error linearised on the final NNLS passive set "
                                  "and regularisation (B1: curvature of the misfit)",
-           "map_descriptions": {"MWFmap": "short-T2 fraction of the T2 distribution"}},
+           "map_descriptions": {"MWFmap": "short-T2 fraction of the T2 distribution, percent "
+                                          "(T2 up to the cutoff in the sidecar's Options, "
+                                          "default 0.040 s)"}},
 ))

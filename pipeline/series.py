@@ -47,6 +47,9 @@ AFFINE_ATOL_MM = 1e-3
 # BIDS anat sidecars may give the excitation TR as RepetitionTimeExcitation (BIDS qMRI
 # requires it for VFA); it stands in for RepetitionTime when that key is absent.
 KEY_ALIASES = {"RepetitionTime": ("RepetitionTimeExcitation",)}
+# ... and the other way round for a varying key: TB1AFI (BIDS) gives each image's TR as
+# RepetitionTimeExcitation, scanner converters write RepetitionTime.
+VARYING_ALIASES = {"RepetitionTimeExcitation": ("RepetitionTime",)}
 # BIDS entities that index the volumes of a split series; dropped to form the stem.
 # acq-tr<k>: the two interleaved TRs of actual flip-angle imaging (TB1AFI), from memory
 # of the BIDS qMRI appendix.
@@ -343,6 +346,15 @@ def check_same_grid(ref_shape: Sequence[int], ref_affine: np.ndarray, img, path:
                          f"series. It must share the series' voxel grid; resample it first.")
 
 
+def _with_alias(sidecar: dict[str, Any], key: str) -> dict[str, Any]:
+    """The sidecar with the varying ``key`` taken from an alias (:data:`VARYING_ALIASES`)
+    when it lacks the key itself."""
+    if key in sidecar:
+        return sidecar
+    alias = next((a for a in VARYING_ALIASES.get(key, ()) if a in sidecar), None)
+    return {**sidecar, key: sidecar[alias]} if alias else sidecar
+
+
 def read_series(inputs: Sequence[str | Path], key: str, time_unit: str = "s",
                 min_volumes: int = 1, volume_keys: Sequence[str] = ()) -> Series:
     """Validate and open a series whose volumes vary in ``key``.
@@ -366,7 +378,7 @@ def read_series(inputs: Sequence[str | Path], key: str, time_unit: str = "s",
         raise InputError("the same input file is given twice: "
                          + ", ".join(sorted({str(p) for p in paths if paths.count(p) > 1})))
     images = [_load_image(p) for p in paths]
-    sidecars = [read_sidecar(sidecar_path(p)) for p in paths]
+    sidecars = [_with_alias(read_sidecar(sidecar_path(p)), key) for p in paths]
     ndims = [len(img.shape) for img in images]
 
     if len(paths) == 1 and ndims[0] == 4 and images[0].shape[3] > 1:
@@ -506,12 +518,12 @@ def _common_meta(paths: list[Path], metas: list[dict], key: str, time_unit: str,
         if seen:
             meta[k] = seen[0][1]
     for k in SCALAR_KEYS:
-        if k == key or k in volume_keys:
-            continue
+        if k == key or k in volume_keys or k in VARYING_ALIASES.get(key, ()):
+            continue      # (the varying key may be read from an alias: that one varies too)
         seen = []
         for p, sc in zip(paths, metas):
             name = k if sc.get(k) is not None else next(
-                (a for a in KEY_ALIASES.get(k, ()) if sc.get(a) is not None), k)
+                (a for a in KEY_ALIASES.get(k, ()) if a != key and sc.get(a) is not None), k)
             if sc.get(name) is not None:
                 where = str(sidecar_path(p))
                 if isinstance(sc[name], list):

@@ -21,7 +21,7 @@ import pandas as pd
 
 from qc.tolerance import TIME_MAPS
 
-RATIO_MAPS = ("TB1map", "MWFmap")   # unitless: shown as bare ratios
+RATIO_MAPS = ("TB1map",)   # unitless: shown as bare ratios
 
 STATUS_STYLE = {  # marker shape carries the status without colour
     "pass": {"marker": "o", "color": "#1b7837"},
