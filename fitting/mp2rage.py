@@ -32,6 +32,9 @@ import numpy as np
 from numpy.typing import ArrayLike
 
 from fitting.errors import RelaxlineError
+from fitting.recovery import compose as _then
+from fitting.recovery import relax_map as _relax
+from fitting.recovery import train_map as _block
 
 LOOKUP_POINTS = 64          # coarse log grid of T1 on which UNI(T1) is tabulated per voxel
 BISECTION_STEPS = 40        # refinement of log T1 inside the bracketing grid interval
@@ -83,26 +86,6 @@ class Protocol:
         if not 0.0 < self.eff <= 1.0:
             raise RelaxlineError(f"inversion efficiency {self.eff:g}: must lie in (0, 1] "
                                  f"(option --inversion-efficiency).")
-
-
-def _relax(t, t1):
-    e = np.exp(-t / t1)
-    return e, 1.0 - e
-
-
-def _block(k: int, alpha, tau: float, t1):
-    """Affine map of k excitations (angle α, radians) each followed by τ of relaxation."""
-    e = np.exp(-tau / t1)
-    q = e * np.cos(alpha)
-    qk = q ** k
-    with np.errstate(divide="ignore", invalid="ignore"):
-        geo = np.where(np.abs(1.0 - q) > 1e-12, (1.0 - qk) / (1.0 - q), float(k))
-    return qk, (1.0 - e) * geo
-
-
-def _then(f, g):
-    """The map g∘f (first f, then g) of two affine maps (a, b)."""
-    return g[0] * f[0], g[0] * f[1] + g[1]
 
 
 def mp2rage_signals(t1: ArrayLike, prot: Protocol, b1: ArrayLike = 1.0,

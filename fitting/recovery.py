@@ -119,3 +119,61 @@ def sr_signal(td: ArrayLike, t1: ArrayLike, m0: ArrayLike, eff: ArrayLike = 1.0)
     efficiency (1: Mz = 0 after the pulse; Chow et al. 2014, Magn Reson Med 71:2082)."""
     td, (t1, m0, eff) = _prep(td, t1, m0, eff)
     return m0 * (1.0 - eff * np.exp(-td / t1))
+
+
+# --------------------------------------------------------------------------- whole cycles
+# Longitudinal magnetisation under spoiled pulses and relaxation evolves by affine maps
+# Mz → a·Mz + b·M0; a sequence is their composition and its steady state b/(1 − a).
+
+def relax_map(t, t1):
+    """Relaxation over t: (e^(−t/T1), 1 − e^(−t/T1))."""
+    e = np.exp(-t / t1)
+    return e, 1.0 - e
+
+
+def train_map(k, alpha_rad, tau: float, t1):
+    """k (an integer, or an array broadcasting with α and T1) spoiled excitations of angle
+    α (radians), each followed by τ of relaxation:
+    (q^k, (1 − E)·(1 − q^k)/(1 − q)) with E = e^(−τ/T1), q = E·cos α."""
+    e = np.exp(-tau / t1)
+    q = e * np.cos(alpha_rad)
+    qk = q ** k
+    with np.errstate(divide="ignore", invalid="ignore"):
+        geo = np.where(np.abs(1.0 - q) > 1e-12, (1.0 - qk) / (1.0 - q), np.asarray(k, float))
+    return qk, (1.0 - e) * geo
+
+
+def compose(f, g):
+    """The map g∘f (first f, then g) of two affine maps (a, b)."""
+    return g[0] * f[0], g[0] * f[1] + g[1]
+
+
+def ll_cycle_signals(t1: ArrayLike, m0: ArrayLike, alpha_deg: ArrayLike, tau: float,
+                     n_images: int, first: float, t_prep: float, eff: float = 1.0
+                     ) -> np.ndarray:
+    """Signed signals of the steady-state cycle of a continuous Look-Locker acquisition.
+
+    Every ``t_prep`` an inversion (Mz → −eff·Mz), after ``first`` the first of ``n_images``
+    spoiled readouts of angle α spaced τ, then recovery until the next inversion. Readout k
+    (at TI = first + k·τ) gives sin α·Mz just before it. Unlike :func:`ll_signal` (one
+    recovery from a known start), this includes the pause before the train and the
+    incomplete recovery between inversions. Shape B + (n_images,).
+    """
+    t1, m0, a = np.broadcast_arrays(*(np.asarray(v, float) for v in (t1, m0, alpha_deg)))
+    ar = np.deg2rad(a)
+    start = compose((-eff * np.ones_like(t1), np.zeros_like(t1)), relax_map(first, t1))
+    cycle = compose(compose(start, train_map(n_images, ar, tau, t1)),
+                    relax_map(t_prep - first - n_images * tau, t1))
+    mstar = cycle[1] / (1.0 - cycle[0])
+    k = np.arange(n_images)
+    before = train_map(k, ar[..., None], tau, t1[..., None])        # k pulses done
+    mz = before[0] * (start[0] * mstar + start[1])[..., None] + before[1]
+    return m0[..., None] * np.sin(ar)[..., None] * mz
+
+
+def sr_efficiency(t1: ArrayLike, sat_deg: ArrayLike, wait: float) -> np.ndarray:
+    """Saturation efficiency η = 1 − cos θ·(1 − e^(−wait/T1)) of a saturation pulse θ that
+    follows a 90° readout (which leaves Mz = 0) after ``wait``: Mz then recovers to
+    M0·(1 − e^(−wait/T1)) and the pulse keeps cos θ of it (the η of :func:`sr_signal`)."""
+    t1, th = np.broadcast_arrays(np.asarray(t1, float), np.asarray(sat_deg, float))
+    return 1.0 - np.cos(np.deg2rad(th)) * -np.expm1(-wait / t1)

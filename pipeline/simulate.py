@@ -4,7 +4,11 @@ Each session is a BIDS-like folder ``OUTDIR/sub-relaxlinedemo/ses-<date>/anat/``
 holding one series per model in the design §3 input form (inversion recovery,
 variable flip angle, double angle, multi-echo spin echo, multi-echo gradient echo),
 a vial label map (``_dseg``) on the scan grid, and under ``OUTDIR/phantom/`` the
-reference table, the layout and the per-session ground truth.
+reference table, the layout and the per-session ground truth. The first session
+(:data:`METHODS_SESSION`) also holds one series of each further method: continuous
+Look-Locker (``LLT1``), saturation recovery (``SRT1``), actual flip-angle imaging
+(``fmap/…_acq-tr1/tr2_TB1AFI``) and MP2RAGE (complex ``inv-1/inv-2``); its MESE train
+serves the multi-component T2 model.
 
 Physics
 -------
@@ -35,7 +39,7 @@ from __future__ import annotations
 
 import datetime as _dt
 import math
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Callable
 
@@ -65,10 +69,27 @@ MESE_TR = 10.0              # ≥ 4·T1 of every compartment: full recovery assu
 MEGRE_TE = [0.003, 0.008, 0.015, 0.025, 0.040, 0.060]
 MEGRE_FLIP = 20.0
 MEGRE_TR = 0.08
+# Further acquisition methods, simulated in the first session only (METHODS_SESSION).
+LL_TAU = 0.1                # Look-Locker: readouts of LL_ALPHA every LL_TAU from LL_FIRST
+LL_ALPHA = 8.0
+LL_IMAGES = 40
+LL_FIRST = 0.05
+LL_TR = 12.0                # time between inversions: every vial recovers
+SR_DELAYS = [0.03, 0.08, 0.15, 0.3, 0.6, 1.2, 2.4, 5.0]
+SR_WAIT = 0.4               # from the previous (90°) readout to the saturation pulse
+AFI_TR = [0.020, 0.100]     # TR1, TR2 (Yarnykh 2007's recommended n = 5)
+AFI_ALPHA = 60.0
+MP2RAGE_TI = [0.5, 2.5]
+MP2RAGE_ALPHA = [4.0, 5.0]
+MP2RAGE_TAU = 0.007
+MP2RAGE_SHOTS = 128
+MP2RAGE_TR = 5.0
+METHODS_SESSION = 0
 
 # Independent random streams inside a session (order fixed: part of the output contract);
 # a series' noise stream is named by its BIDS suffix.
-_STREAMS = ("geometry", "IRT1", "VFA", "TB1DAM", "MESE", "MEGRE")
+_STREAMS = ("geometry", "IRT1", "VFA", "TB1DAM", "MESE", "MEGRE", "LLT1", "SRT1", "TB1AFI",
+            "MP2RAGE")
 ACQ_CLOCK = "07:30:00"      # invented time of day of every simulated session
 BIDS_VERSION = "1.10.0"
 
@@ -218,13 +239,17 @@ class SimSeries:
     sidecar: dict         # keys shared by every volume (BIDS units)
     description: str      # SeriesDescription
     signals: np.ndarray
+    labels: tuple[str, ...] = ()    # entity labels (default 1 … n)
+    per_volume: dict = field(default_factory=dict)   # key -> one value per volume
+    complex_data: bool = False      # store complex images (magnitude and phase)
+    split: bool = True              # one 3D file per volume (False: one 4D file)
 
 
 def _inside(st: SessionState, signal: Callable[..., np.ndarray]) -> np.ndarray:
     """Evaluate ``signal(t1, t2, t2s, pd, b1)`` inside the phantom; zero in air."""
     m = st.inside
     sig = signal(st.t1[m], st.t2[m], st.t2s[m], st.pd[m], st.b1[m])
-    full = np.zeros(m.shape + (sig.shape[-1],))
+    full = np.zeros(m.shape + (sig.shape[-1],), sig.dtype)
     full[m] = sig
     return full
 
@@ -300,16 +325,94 @@ def megre_series(st: SessionState) -> SimSeries:
                          MEGRE_TE, t2s, spgr_signal([MEGRE_FLIP], t1, pd, MEGRE_TR, b1)[:, 0])))
 
 
+def looklocker_series(st: SessionState) -> SimSeries:
+    """Continuous Look-Locker: adiabatic inversion, spoiled readouts every LL_TAU (B1 scales
+    their angle); relaxline's suffix LLT1 (BIDS has none), one 4D file."""
+    from fitting.recovery import ll_cycle_signals
+    ti = LL_FIRST + LL_TAU * np.arange(LL_IMAGES)
+    return SimSeries("LLT1", "anat", "", "InversionTime", _round(ti),
+                     {"FlipAngle": LL_ALPHA, "RepetitionTimeExcitation": LL_TAU,
+                      "RepetitionTimePreparation": LL_TR, "MRAcquisitionType": "2D",
+                      "PulseSequenceType": "inversion recovery, continuous spoiled gradient-"
+                      "echo readout (Look-Locker)", "ScanningSequence": "IR\\GR",
+                      "SequenceVariant": "SP"},
+                     "Look-Locker inversion recovery",
+                     _inside(st, lambda t1, t2, t2s, pd, b1: ll_cycle_signals(
+                         t1, pd, LL_ALPHA * b1, LL_TAU, LL_IMAGES, LL_FIRST, LL_TR,
+                         st.inversion_efficiency)), split=False)
+
+
+def sr_series(st: SessionState) -> SimSeries:
+    """Saturation recovery: a 90°·B1 saturation pulse SR_WAIT after the previous 90° readout;
+    relaxline's suffix SRT1 and key SaturationDelay (BIDS has neither), one 4D file."""
+    from fitting.recovery import sr_efficiency, sr_signal
+    return SimSeries("SRT1", "anat", "", "SaturationDelay", _round(SR_DELAYS),
+                     {"FlipAngle": 90.0, "MRAcquisitionType": "2D",
+                      "PulseSequenceType": "saturation recovery", "ScanningSequence": "GR",
+                      "SequenceVariant": "SP"},
+                     "saturation recovery",
+                     _inside(st, lambda t1, t2, t2s, pd, b1: sr_signal(
+                         SR_DELAYS, t1, pd, sr_efficiency(t1, 90.0 * b1, SR_WAIT))),
+                     split=False)
+
+
+def afi_series(st: SessionState) -> SimSeries:
+    """Actual flip-angle imaging pair (BIDS TB1AFI in fmap/, files acq-tr1 and acq-tr2, each
+    with its interval as RepetitionTimeExcitation)."""
+    from fitting.afi import afi_signals
+    return SimSeries("TB1AFI", "fmap", "acq", "RepetitionTimeExcitation", _round(AFI_TR),
+                     {"FlipAngle": AFI_ALPHA, "MRAcquisitionType": "3D",
+                      "PulseSequenceType": "actual flip-angle imaging (interleaved TRs)",
+                      "ScanningSequence": "GR", "SequenceVariant": "SP"},
+                     "actual flip-angle imaging B1",
+                     _inside(st, lambda t1, t2, t2s, pd, b1: afi_signals(
+                         AFI_TR, b1, pd * -np.expm1(-AFI_TR[0] / t1), AFI_ALPHA, t1)),
+                     labels=("tr1", "tr2"))
+
+
+def mp2rage_series(st: SessionState) -> SimSeries:
+    """MP2RAGE inversion images (BIDS MP2RAGE, inv-1/inv-2), complex: the receive phase is a
+    smooth invented field; B1 scales both readout angles, the inversion is adiabatic."""
+    from fitting.mp2rage import mp2rage_signals, protocol_from_meta
+    prot = protocol_from_meta(MP2RAGE_TI, MP2RAGE_ALPHA, MP2RAGE_TAU, MP2RAGE_TR,
+                              MP2RAGE_SHOTS, st.inversion_efficiency)
+    phase = _receive_phase(st)[st.inside][:, None]
+    return SimSeries("MP2RAGE", "anat", "inv", "InversionTime", _round(MP2RAGE_TI),
+                     {"RepetitionTimeExcitation": MP2RAGE_TAU,
+                      "RepetitionTimePreparation": MP2RAGE_TR, "NumberShots": MP2RAGE_SHOTS,
+                      "MRAcquisitionType": "3D", "PulseSequenceType": "MP2RAGE",
+                      "ScanningSequence": "IR\\GR", "SequenceVariant": "SP\\MP"},
+                     "MP2RAGE",
+                     _inside(st, lambda t1, t2, t2s, pd, b1: mp2rage_signals(t1, prot, b1, pd)
+                             * np.exp(1j * phase)),
+                     per_volume={"FlipAngle": list(MP2RAGE_ALPHA)}, complex_data=True)
+
+
+def _receive_phase(st: SessionState) -> np.ndarray:
+    """A smooth receive phase (radians) over the grid (invented): a gentle tilt."""
+    i, j, k = np.meshgrid(*[np.linspace(-1, 1, n) for n in st.labels.shape], indexing="ij")
+    return 0.6 + 1.1 * i - 0.7 * j + 0.2 * k
+
+
 SERIES_KINDS: tuple[Callable[[SessionState], SimSeries], ...] = (
     ir_series, vfa_series, dam_series, mese_series, megre_series)
+# written in session METHODS_SESSION only (further methods, one session of each)
+METHOD_KINDS: tuple[Callable[[SessionState], SimSeries], ...] = (
+    looklocker_series, sr_series, afi_series, mp2rage_series)
 
 
-def clean_signals(st: SessionState) -> dict[str, np.ndarray]:
-    """Noise-free (signed) signals of every series by suffix, ``(x, y, z, n)``.
+def session_kinds(index: int) -> tuple[Callable[[SessionState], SimSeries], ...]:
+    """The series kinds simulated in session ``index``."""
+    return SERIES_KINDS + (METHOD_KINDS if index == METHODS_SESSION else ())
+
+
+def clean_signals(st: SessionState, index: int = -1) -> dict[str, np.ndarray]:
+    """Noise-free (signed) signals of every series by suffix, ``(x, y, z, n)``, of the
+    session ``index`` (default: the series every session has).
 
     Volumes are in acquisition order (the order of the protocol lists above).
     """
-    return {s.suffix: s.signals for s in (kind(st) for kind in SERIES_KINDS)}
+    return {s.suffix: s.signals for s in (kind(st) for kind in session_kinds(index))}
 
 
 def rician_magnitude(clean: np.ndarray, sigma: float, rng: np.random.Generator) -> np.ndarray:
@@ -318,6 +421,14 @@ def rician_magnitude(clean: np.ndarray, sigma: float, rng: np.random.Generator) 
         return np.abs(clean).astype(np.float32)
     noise = rng.standard_normal((2,) + clean.shape)
     return np.hypot(clean + sigma * noise[0], sigma * noise[1]).astype(np.float32)
+
+
+def complex_noisy(clean: np.ndarray, sigma: float, rng: np.random.Generator) -> np.ndarray:
+    """S + n_re + i·n_im with n ~ N(0, σ²) on each part, complex64."""
+    if sigma == 0.0:
+        return clean.astype(np.complex64)
+    noise = rng.standard_normal((2,) + clean.shape)
+    return (clean + sigma * (noise[0] + 1j * noise[1])).astype(np.complex64)
 
 
 def _common_sidecar(st: SessionState, sigma: float, desc: str) -> dict:
@@ -359,15 +470,20 @@ def write_session(outdir: Path, index: int, options: SimOptions,
         if sidecar is not None:
             written.append(atomic_write_json(folder / f"{name}.json", sidecar))
 
-    for kind in SERIES_KINDS:
+    for kind in session_kinds(index):
         s = kind(st)
         sigma = 0.0 if math.isinf(options.snr) else float(np.abs(s.signals).max()) / options.snr
-        mag = rician_magnitude(s.signals, sigma, _rng(options.seed, index, s.suffix))
+        noisy = complex_noisy if s.complex_data else rician_magnitude
+        mag = noisy(s.signals, sigma, _rng(options.seed, index, s.suffix))
         folder = ensure_dir(outdir / sub / ses / s.datatype)
         common = {**_common_sidecar(st, sigma, s.description), **s.sidecar}
-        for k, value in enumerate(s.values):
-            put(folder, f"{stem}_{s.entity}-{k + 1}_{s.suffix}", mag[..., k],
-                {**common, s.key: value})
+        if not s.split:
+            put(folder, f"{stem}_{s.suffix}", mag, {**common, s.key: s.values,
+                                                     **s.per_volume})
+        for k, value in enumerate(s.values if s.split else ()):
+            label = s.labels[k] if s.labels else str(k + 1)
+            put(folder, f"{stem}_{s.entity}-{label}_{s.suffix}", mag[..., k],
+                {**common, s.key: value, **{key: v[k] for key, v in s.per_volume.items()}})
         if progress:
             progress(1)
 
@@ -431,7 +547,8 @@ Beside the BIDS data (listed in `.bidsignore`):
 
 For quality assurance and research only; not a medical device.
 """
-BIDSIGNORE = "phantom\n*_dseg.nii.gz\n*_dseg.tsv\n"
+# LLT1/SRT1: relaxline's suffixes for Look-Locker and saturation recovery (not BIDS)
+BIDSIGNORE = "phantom\n*_dseg.nii.gz\n*_dseg.tsv\n*_LLT1.*\n*_SRT1.*\n"
 
 
 def _sessions_table(path: Path, states: list[SessionState]):

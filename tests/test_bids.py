@@ -12,8 +12,8 @@ from pipeline import phantom
 from pipeline.cli import main
 from pipeline.series import read_series
 from pipeline.sessions import plan
-from pipeline.simulate import (IR_TI, MESE_ECHOES, VFA_FLIPS, VFA_TR, SimOptions, series_paths,
-                               session_label, simulate)
+from pipeline.simulate import (IR_TI, MESE_ECHOES, MP2RAGE_ALPHA, MP2RAGE_TI, VFA_FLIPS, VFA_TR,
+                               SimOptions, series_paths, session_label, simulate)
 from pipeline.wfconfig import resolve_paths, validate_config
 from seriesio import write_3d_set
 
@@ -29,7 +29,16 @@ def test_simulated_raw_dataset_is_valid_bids(tmp_path):
     assert len(list((ses / "anat").glob("*_inv-*_IRT1.nii.gz"))) == len(IR_TI)
     assert len(list((ses / "anat").glob("*_echo-*_MESE.nii.gz"))) == MESE_ECHOES
     assert sorted(p.name for p in (ses / "fmap").glob("*.nii.gz")) == [
+        f"{SUB}_ses-{session_label(0)}_acq-tr{k}_TB1AFI.nii.gz" for k in (1, 2)] + [
         f"{SUB}_ses-{session_label(0)}_flip-{k}_TB1DAM.nii.gz" for k in (1, 2)]
+    # the further methods are in the first session only; the validator checks the keys the
+    # BIDS qMRI appendix requires of TB1AFI (RepetitionTimeExcitation) and MP2RAGE
+    later = tmp_path / SUB / f"ses-{session_label(1)}"
+    assert not list(later.glob("*/*_TB1AFI.*")) and not list(later.glob("*/*_MP2RAGE.*"))
+    mp = json.loads((ses / "anat" / f"{SUB}_ses-{session_label(0)}_inv-2_MP2RAGE.json")
+                    .read_text())
+    assert mp["InversionTime"] == MP2RAGE_TI[1] and mp["FlipAngle"] == MP2RAGE_ALPHA[1]
+    assert {"RepetitionTimeExcitation", "RepetitionTimePreparation", "NumberShots"} <= set(mp)
     vfa = json.loads((ses / "anat" / f"{SUB}_ses-{session_label(0)}_flip-1_VFA.json").read_text())
     # BIDS qMRI: VFA needs PulseSequenceType and RepetitionTimeExcitation (s), one FlipAngle
     assert vfa["RepetitionTimeExcitation"] == VFA_TR and vfa["FlipAngle"] == VFA_FLIPS[0]

@@ -182,3 +182,22 @@ def test_bad_protocols(model, meta, options, x, match):
     with pytest.raises(RelaxlineError, match=match):
         fixed = spec.fixed_from_meta(meta, options)
         spec.validate(np.asarray(x, float), fixed)
+
+
+# --------------------------------------------------------------------------- simulators' models
+@pytest.mark.parametrize("t1", [0.2, 1.0, 2.5])
+def test_ll_cycle_signals_match_the_simulation(t1):
+    # the whole steady-state cycle (pause, train, incomplete recovery, 164° inversion)
+    # that `relaxline simulate` uses, against the event-by-event simulation
+    from fitting.recovery import ll_cycle_signals
+    ti, s = looklocker(t1, ALPHA, TAU, 40, FIRST, 12.0, inversion_deg=164.0)
+    got = ll_cycle_signals(t1, 1.0, ALPHA, TAU, 40, FIRST, 12.0, -np.cos(np.deg2rad(164.0)))
+    np.testing.assert_allclose(got, s, atol=1e-12)
+
+
+@pytest.mark.parametrize("t1", [0.2, 1.0, 2.5])
+def test_sr_efficiency_matches_the_simulation(t1):
+    from fitting.recovery import sr_efficiency, sr_signal
+    got = sr_signal(SD, t1, 1.0, sr_efficiency(t1, 81.0, 0.4))
+    np.testing.assert_allclose(got, saturation_recovery(t1, SD, sat_deg=81.0, pre_wait=0.4),
+                               atol=1e-12)

@@ -81,7 +81,7 @@ def test_single_component_vials_noiseless(vials):
     # the angle is read from how the echoes alternate: short trains (T2 ≤ 40 ms) carry
     # less of it and the T2 grid's discreteness shifts their misfit minimum a little
     np.testing.assert_allclose(res.params["B1"][long_], B1, rtol=0.02)
-    np.testing.assert_allclose(res.params["B1"][VIAL_T2 > 0.05], B1, rtol=0.004)
+    np.testing.assert_allclose(res.params["B1"][VIAL_T2 > 0.05], B1, rtol=0.005)
     np.testing.assert_allclose(res.params["M0"][long_], 1.0, rtol=0.02)
     assert np.all(res.params["MWF"][VIAL_T2 > 0.06] < 1.0)        # percent
     assert np.all(res.params["MWF"][VIAL_T2 < 0.03] > 99.0)

@@ -50,13 +50,17 @@ def test_same_seed_same_bytes_different_seed_different(tmp_path):
     simulate(tmp_path / "b", SimOptions(seed=5, **small))
     simulate(tmp_path / "c", SimOptions(seed=6, **small))
     a, b, c = (_files(tmp_path / k) for k in "abc")
-    # per session: 56 volumes + sidecars, dseg image + table, 3 truth files; dataset:
-    # description, README, .bidsignore, sessions table + sidecar, reference, layout
+    # per session: 56 volumes + sidecars, dseg image + table, 3 truth files; the first
+    # session also 6 files of further methods (LLT1, SRT1 4D; AFI and MP2RAGE pairs) +
+    # sidecars; dataset: description, README, .bidsignore, sessions table + sidecar,
+    # reference, layout
     n_vol = len(IR_TI) + len(VFA_FLIPS) + 2 + MESE_ECHOES + len(MEGRE_TE)
-    assert len(a) == 2 * (2 * n_vol + 2 + 3) + 7 and a.keys() == b.keys() == c.keys()
+    n_methods = 1 + 1 + 2 + 2
+    assert len(a) == 2 * (2 * n_vol + 2 + 3) + 2 * n_methods + 7
+    assert a.keys() == b.keys() == c.keys()
     assert a == b
     images = [k for k in a if k.startswith("sub-") and k.endswith(".nii.gz") and "dseg" not in k]
-    assert len(images) == 2 * n_vol
+    assert len(images) == 2 * n_vol + n_methods
     assert all(a[k] != c[k] for k in images)
     # Session k does not depend on how many sessions were asked for.
     simulate(tmp_path / "d", SimOptions(seed=5, sessions=1, matrix=40, slices=2))

@@ -22,7 +22,21 @@ DEMO_MODELS = {
     "mese": {"pattern": "*_MESE.nii.gz", "b1": "fitted"},
     "mese-mono": {"pattern": "*_MESE.nii.gz"},
     "megre": {"pattern": "*_MEGRE.nii.gz"},
+    # further methods, simulated in the first session only (pipeline.simulate)
+    "afi": {"pattern": "*_TB1AFI.nii.gz"},
+    "looklocker": {"pattern": "*_LLT1.nii.gz", "ll_correction": "readout", "b1": "afi"},
+    "sr": {"pattern": "*_SRT1.nii.gz"},
+    "mp2rage": {"pattern": "*_MP2RAGE.nii.gz", "b1": "afi"},
 }
+# mese-multi on the MESE train of the first session only (a T2 distribution per voxel
+# costs more than the other fits); the pattern names that session (demo_models)
+
+
+def demo_models() -> dict:
+    """The demo's models: :data:`DEMO_MODELS` plus mese-multi on the first session's MESE."""
+    from pipeline.simulate import METHODS_SESSION, session_label
+    first = session_label(METHODS_SESSION)
+    return {**DEMO_MODELS, "mese-multi": {"pattern": f"*_ses-{first}_echo-*_MESE.nii.gz"}}
 
 
 def add_arguments(p: argparse.ArgumentParser) -> None:
@@ -40,7 +54,7 @@ def demo_config(sessions: int) -> dict:
     return {
         "input_dir": "rawdata",
         "output_dir": "results",
-        "models": DEMO_MODELS,
+        "models": demo_models(),
         "phantom": {"reference": "rawdata/phantom/reference.tsv", "labels": "*_dseg.nii.gz"},
         # the first sessions form the baseline; the mono-exponential mese-mono T2 of the
         # long-T2 vials sits about 6 % above the reference (stimulated echoes), so the

@@ -41,7 +41,7 @@ def run(args: argparse.Namespace) -> int:
     import time
 
     from pipeline.progress import Progress
-    from pipeline.simulate import SERIES_KINDS, SimOptions, simulate
+    from pipeline.simulate import SimOptions, session_kinds, simulate
 
     from pipeline.errors import InputError
     step = (0, 0.0, 1)
@@ -58,7 +58,8 @@ def run(args: argparse.Namespace) -> int:
     opts.validate()
     t0 = time.monotonic()
     files = simulate(args.outdir, opts,
-                     progress=Progress(opts.sessions * len(SERIES_KINDS), "simulate"))
+                     progress=Progress(sum(len(session_kinds(i)) for i in range(opts.sessions)),
+                                       "simulate"))
     print(f"relaxline simulate: wrote {opts.sessions} session(s), {len(files)} files to "
           f"{args.outdir} in {time.monotonic() - t0:.1f} s")
     return 0
