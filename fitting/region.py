@@ -34,7 +34,8 @@ Honest standard errors
 Model comparison
     :func:`alternatives` names the competing model on the same data: ``ir`` against
     ``ir`` with the inversion efficiency fixed at 1 (the same spec, lmfit parameter
-    ``vary=False``), ``mese`` against ``mese-mono`` and back. Both are fitted to the same
+    ``vary=False``), ``sr`` likewise with the saturation efficiency fixed at 1, ``mese``
+    against ``mese-mono`` and back. Both are fitted to the same
     mean signal with the same weights; ΔAIC and ΔBIC are read with the usual scale
     (|Δ| < 2 no real difference, > 10 decisive: Burnham & Anderson 2002, Model Selection
     and Multimodel Inference, §2.6 — common practice).
@@ -275,13 +276,14 @@ def _erf_level(s: float) -> float:
 def alternatives(spec: ModelSpec) -> list[tuple[ModelSpec, dict[str, float], str]]:
     """Competing models for the same data: ``(spec, fixed parameters, label)``.
 
-    ``ir``: the same spec with ``eff`` fixed at 1 (ideal inversion). ``mese`` (with or
+    ``ir``, ``sr``: the same spec with ``eff`` fixed at 1 (ideal inversion or saturation).
+    ``mese`` (with or
     without a B1 map): ``mese-mono``. ``mese-mono``: ``mese``. Others: none. The caller
     configures the returned spec for its options and supplies its constants.
     """
     base = spec.name
-    if base == "ir" and "eff" in spec.params:
-        return [(spec, {"eff": 1.0}, "ir (eff = 1)")]
+    if base in ("ir", "sr") and "eff" in spec.params:     # ideal inversion / saturation
+        return [(spec, {"eff": 1.0}, f"{base} (eff = 1)")]
     if base == "mese":
         return [(get_model("mese-mono"), {}, "mese-mono")]
     if base == "mese-mono":

@@ -31,8 +31,9 @@ DESCRIPTION = """Fit one region carefully: the region's mean signal with lmfit, 
 parameter's standard error, the correlation matrix, chi-square and reduced chi-square,
 AIC and BIC, and profile-likelihood confidence intervals (lmfit.conf_interval) at 1 and
 2 sigma; every voxel of the region is also fitted (median and IQR reported), and
-competing models are fitted to the same data (ir with the inversion efficiency fixed at
-1; mese against mese-mono) with delta-AIC/BIC and a verdict.
+competing models are fitted to the same data (ir and sr with the inversion or
+saturation efficiency fixed at 1; mese against mese-mono) with delta-AIC/BIC and a
+verdict. Not for mese-multi (solved by NNLS, not a curve fit).
 
 Region (exactly one):
   --label-map F --label N   the voxels where the label map equals N
