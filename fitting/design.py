@@ -28,6 +28,9 @@ SNR is M0/σ: M0 = 1 and σ = 1/SNR in every model (the signal of a fully relaxe
   inversions, ``tr``); excitation 90°, ideal inversion (eff = 1) assumed true; T1, M0 and
   eff are estimated. Budget: each TI is one image of one TR per line, counted as N·TR ≤
   budget (``lines`` phase-encode lines per image multiply it: N·TR·lines ≤ budget).
+* ``sr`` — N saturation delays in [``MIN_TI``, TR − ``MIN_TI``] (TR = time between
+  saturation pulses, ``tr``), ideal saturation (eff = 1) assumed true; T1, M0 and eff
+  estimated. Budget as for ``ir``.
 * ``vfa`` — N flip angles in [``MIN_ANGLE``, 90]°, spoiled gradient echo of repetition
   time TR, true B1 = ``b1`` (known, as from a B1 map); T1 and M0 estimated. Budget: each
   angle is one volume of ``lines`` TRs (phase encodes × partitions), N·TR·lines ≤ budget;
@@ -57,7 +60,8 @@ from fitting.signals import ernst_angle_deg
 from fitting.spec import ModelSpec, get_model
 from fitting.uncertainty import crlb
 
-DESIGN_MODELS = ("ir", "vfa", "mese")
+DESIGN_MODELS = ("ir", "sr", "vfa", "mese")
+RECOVERY = ("ir", "sr")   # N delays after a preparation in each period TR (same constraints)
 GRID_POINTS = 16          # log-spaced relaxation times on which the worst CV is taken
 SOFTMAX_SHARPNESS = 40.0  # of the log-sum-exp surrogate of max log CV ...
 SOFTMAX_POLISH = 400.0    # ... and of the continuation run from the best point
@@ -65,16 +69,16 @@ MIN_TI = 0.01             # s; shortest TI and shortest gap TR − TI (readout, 
 MIN_ANGLE = 1.0           # degrees
 # Proposed TIs/angles are distinct (a series with a repeated value is rejected on input):
 # neighbours differ by at least max(abs, rel·value).
-MIN_GAP = {"ir": (0.005, 0.02), "vfa": (1.0, 0.0)}
+MIN_GAP = {"ir": (0.005, 0.02), "sr": (0.005, 0.02), "vfa": (1.0, 0.0)}
 MAX_ANGLE = 90.0
 MIN_ESP = 0.005           # s; default shortest echo spacing
 MAX_POINTS = 32           # TIs/angles derived from a budget (or --points) are capped here
 MAX_POINTS_ECHOES = 256   # longest echo train --points may ask for (mese)
 MAX_ECHOES = 64           # echo trains searched up to this length
-DEFAULT_POINTS = {"ir": 8, "vfa": 4, "mese": 32}
+DEFAULT_POINTS = {"ir": 8, "sr": 8, "vfa": 4, "mese": 32}
 N_RANDOM_STARTS = 2
 INFEASIBLE_CV = 1e6       # % ; stands for an infinite bound inside the optimiser
-UNITS = {"ir": "s", "vfa": "degrees", "mese": "s"}
+UNITS = {"ir": "s", "sr": "s", "vfa": "degrees", "mese": "s"}
 VERIFY_TRIALS_MIN = 2
 
 
@@ -179,14 +183,14 @@ def make_problem(model: str, lo: float, hi: float, *, points: int | None = None,
     if grid_points < 2 and lo != hi:
         raise _bad("grid_points must be at least 2.")
     max_train = None
-    if model in ("ir", "vfa"):
+    if model in RECOVERY + ("vfa",):
+        period = {"ir": "time between inversions", "sr": "time between saturation pulses",
+                  "vfa": "repetition time"}[model]
         if tr is None:
-            raise _bad(f"--tr is required for {model}: the "
-                       f"{'time between inversions' if model == 'ir' else 'repetition time'} "
-                       f"in seconds.")
-        if model == "ir" and tr <= 2 * MIN_TI:
-            raise _bad(f"--tr {tr:g}: the inversion-recovery TR must exceed {2 * MIN_TI:g} s "
-                       f"(TIs lie in [{MIN_TI:g} s, TR − {MIN_TI:g} s]).")
+            raise _bad(f"--tr is required for {model}: the {period} in seconds.")
+        if model in RECOVERY and tr <= 2 * MIN_TI:
+            raise _bad(f"--tr {tr:g}: the {period} must exceed {2 * MIN_TI:g} s (delays lie "
+                       f"in [{MIN_TI:g} s, TR − {MIN_TI:g} s]).")
         cost = tr * lines
         if points is None:
             points = (min(MAX_POINTS, int(np.floor(budget / cost + 1e-9)))
@@ -236,6 +240,8 @@ def acquisition(problem: DesignProblem, values: np.ndarray) -> tuple[np.ndarray,
     x = np.sort(np.asarray(values, float))
     if problem.model == "ir":
         return x, {"tr": problem.tr, "alpha": 90.0, "signed": True}
+    if problem.model == "sr":
+        return x, {"signed": True}
     if problem.model == "vfa":
         return x, {"tr": problem.tr, "b1": problem.b1}
     return x, {"refocus": 180.0, "excite": 90.0, "t1": problem.t1}
@@ -245,7 +251,7 @@ def truth(problem: DesignProblem, grid: np.ndarray) -> dict[str, np.ndarray]:
     """True parameters at each relaxation time of ``grid`` (M0 = 1, see module docstring)."""
     g = np.asarray(grid, float)
     one = np.ones_like(g)
-    if problem.model == "ir":
+    if problem.model in RECOVERY:
         return {"T1": g, "M0": one, "eff": one}
     if problem.model == "vfa":
         return {"T1": g, "M0": one}
@@ -283,10 +289,10 @@ def check_protocol(problem: DesignProblem, values: Sequence[float]) -> str:
     v = np.sort(np.asarray(values, float))
     if v.size == 0 or not np.all(np.isfinite(v)):
         return "empty or non-finite values"
-    if problem.model == "ir":
+    if problem.model in RECOVERY:
         lo, hi = MIN_TI, problem.tr - MIN_TI
         if v[0] < lo - 1e-12 or v[-1] > hi + 1e-12:
-            return f"TIs must lie in [{lo:g}, {hi:g}] s (TR {problem.tr:g} s)"
+            return f"delays must lie in [{lo:g}, {hi:g}] s (TR {problem.tr:g} s)"
     elif problem.model == "vfa":
         if v[0] < MIN_ANGLE - 1e-12 or v[-1] > MAX_ANGLE + 1e-12:
             return f"angles must lie in [{MIN_ANGLE:g}, {MAX_ANGLE:g}] degrees"
@@ -325,7 +331,7 @@ def _soft_max_log(cv: np.ndarray, k: float = SOFTMAX_SHARPNESS) -> float:
 def _box(problem: DesignProblem) -> tuple[Callable, Callable, float, float]:
     """to_values, to_coords and coordinate bounds of the ir/vfa optimiser."""
     lo, hi = _value_bounds(problem)
-    if problem.model == "ir":   # log TI: inversion times span decades
+    if problem.model in RECOVERY:   # log delay: delays span decades
         return np.exp, np.log, float(np.log(lo)), float(np.log(hi))
     return np.asarray, np.asarray, lo, hi
 
@@ -333,13 +339,13 @@ def _box(problem: DesignProblem) -> tuple[Callable, Callable, float, float]:
 def start_protocol(problem: DesignProblem) -> np.ndarray:
     """The deterministic starting protocol (also a fallback candidate).
 
-    ir: TIs log-spaced from LO/4 to 2·HI (clipped to the allowed window), a common
-    spread around the zero crossings T1·ln 2; vfa: angles linearly spaced between half
+    ir, sr: delays log-spaced from LO/4 to 2·HI (clipped to the allowed window), a common
+    spread around the zero crossings T1·ln 2 (ir) and the recovery (sr); vfa: angles linearly spaced between half
     the Ernst angle of HI and twice that of LO (clipped); mese: ESP = LO/2 (clipped) with
     the largest N the limits allow.
     """
     n = problem.points
-    if problem.model == "ir":
+    if problem.model in RECOVERY:
         a = np.clip(problem.lo / 4, MIN_TI, problem.tr - MIN_TI)
         b = np.clip(2 * problem.hi, a, problem.tr - MIN_TI)
         return np.geomspace(a, b, n)
@@ -477,7 +483,7 @@ def design(problem: DesignProblem, compare: Sequence[float] | None = None) -> De
     not a candidate.
     """
     start = evaluate(problem, start_protocol(problem), "start")
-    cands = (_optimise_points(problem) if problem.model in ("ir", "vfa")
+    cands = (_optimise_points(problem) if problem.model in RECOVERY + ("vfa",)
              else _optimise_train(problem))
     cands.append(start)
     comp = None
@@ -502,7 +508,7 @@ def design(problem: DesignProblem, compare: Sequence[float] | None = None) -> De
 
 
 def _value_bounds(problem: DesignProblem) -> tuple[float, float]:
-    if problem.model == "ir":
+    if problem.model in RECOVERY:
         return MIN_TI, problem.tr - MIN_TI
     return MIN_ANGLE, MAX_ANGLE
 

@@ -481,6 +481,9 @@ def fit_command(model: str, inputs: Sequence[str | Path], out: str | Path,
     check_model_options(model, extra)
     if extra.get("slice_profile"):
         profiles.check_spec(extra["slice_profile"])
+    if engine == "lmfit" and get_model(model).extra.get("lmfit") is False:
+        raise InputError(f"--engine lmfit: the {model} model has no lmfit engine (it is solved "
+                         f"by its own method); use --engine fast.")
     spec, series, fixed = prepare(model, inputs, time_unit)
     check_t1_map_model(spec, t1_map)
     sigma = estimate_noise(series)

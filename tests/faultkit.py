@@ -37,7 +37,7 @@ class Kit:
         self.out = tmp / "out"           # must hold no final-named file afterwards
 
     def s(self, name: str) -> str:
-        folder = self.anat.with_name("fmap") if "TB1DAM" in name else self.anat
+        folder = self.anat.with_name("fmap") if "TB1" in name else self.anat
         return str(folder / f"{P}{name}.nii.gz")
 
     def grid(self, name: str = "VFA"):

@@ -31,6 +31,21 @@ def fit(model, *inputs, **kw):
                                          for k, v in kw.items()), [])]
 
 
+def drop(key):
+    return lambda sc: {k: v for k, v in sc.items() if k != key}
+
+
+def mp2rage_pair(k: Kit, change, both: bool = True, magnitude: bool = False) -> list[str]:
+    """The MP2RAGE pair with sidecar ``change`` on inv-1 (and inv-2 if ``both``)."""
+    one = k.variant("inv-1_MP2RAGE", change)
+    two = k.variant("inv-2_MP2RAGE", change if both else None)
+    if magnitude:
+        for p in (one, two):
+            img = nib.load(p)
+            nib.save(nib.Nifti1Image(np.abs(np.asarray(img.dataobj)), img.affine), p)
+    return [one, two]
+
+
 def zeros_series(k: Kit) -> str:
     return str(write_4d(k.tmp / "in", "x", np.ones((4, 4, 1, 1), np.float32),
                         "InversionTime", [0.1]))
@@ -111,6 +126,72 @@ CASES: dict[str, tuple[Callable[[Kit], list[str]], str]] = {
                             "option --skip-echoes applies to the mese-mono model only"),
     "--b1 on ir": (lambda k: fit("ir", k.s("IRT1"), b1=str(
         k.phantom / "truth_ses-20261101_TB1map.nii.gz")), "the ir model does not use a B1 map"),
+    # ---- further methods (the simulated first session holds one series of each)
+    "looklocker readout without spacing": (lambda k: fit("looklocker", k.variant(
+        "LLT1", drop("RepetitionTimeExcitation")), ll_correction="readout"),
+        "LLT1.nii.gz: sidecar key(s) 'RepetitionTimeExcitation' missing"),
+    "looklocker spacing in ms": (lambda k: fit("looklocker", k.variant(
+        "LLT1", setkey("RepetitionTimeExcitation", 100))),
+        "'RepetitionTimeExcitation' = 100 looks like milliseconds"),
+    "looklocker spacing longer than the images'": (lambda k: fit("looklocker", k.variant(
+        "LLT1", setkey("RepetitionTimeExcitation", 0.5)), ll_correction="readout"),
+        "is longer than every gap between the 'InversionTime' values"),
+    "looklocker ratio with --b1": (lambda k: fit("looklocker", k.s("LLT1"), b1=str(
+        k.phantom / "truth_ses-20261101_TB1map.nii.gz")),
+        "the looklocker model does not use a B1 map"),
+    "--ll-correction on ir": (lambda k: fit("ir", k.s("IRT1"), ll_correction="readout"),
+                              "option --ll-correction applies to the looklocker model only"),
+    "sr without SaturationDelay": (lambda k: fit("sr", k.s("IRT1")),
+                                   "IRT1.json: missing key 'SaturationDelay'"),
+    "sr delays in ms": (lambda k: fit("sr", k.variant("SRT1", lambda sc: {
+        **sc, "SaturationDelay": [v * 1000 for v in sc["SaturationDelay"]]})),
+        "'SaturationDelay' = 80 looks like milliseconds"),
+    "sr negative delay": (lambda k: fit("sr", k.variant("SRT1", first("SaturationDelay", -0.1))),
+                          "'SaturationDelay' = -0.1 s is negative"),
+    "sr repeated delay": (lambda k: fit("sr", k.variant("SRT1", first("SaturationDelay", 0.08))),
+                          "duplicate 'SaturationDelay' value(s) [0.08]"),
+    "afi one image": (lambda k: fit("afi", k.s("acq-tr1_TB1AFI")),
+                      "needs at least 2 values of 'RepetitionTimeExcitation'"),
+    "afi without its TR": (lambda k: fit("afi", k.variant("acq-tr1_TB1AFI", drop(
+        "RepetitionTimeExcitation")), k.s("acq-tr2_TB1AFI")),
+        "acq-tr1_TB1AFI.json: missing key 'RepetitionTimeExcitation'"),
+    "afi TRs too close": (lambda k: fit("afi", k.variant("acq-tr1_TB1AFI", setkey(
+        "RepetitionTimeExcitation", 0.09)), k.s("acq-tr2_TB1AFI")), "is too close to 1"),
+    "afi angles differ": (lambda k: fit("afi", k.variant("acq-tr1_TB1AFI", setkey(
+        "FlipAngle", 50)), k.s("acq-tr2_TB1AFI")), "key 'FlipAngle' = 60 differs from 50"),
+    "mp2rage magnitude only": (lambda k: fit("mp2rage", *mp2rage_pair(
+        k, None, magnitude=True)), "needs the inversion images as complex data"),
+    "mp2rage NumberShots 0": (lambda k: fit("mp2rage", *mp2rage_pair(
+        k, setkey("NumberShots", 0))), "'NumberShots' = 0 must be at least 1"),
+    "mp2rage NumberShots of three": (lambda k: fit("mp2rage", *mp2rage_pair(
+        k, setkey("NumberShots", [40, 40, 48]))), "must hold two numbers"),
+    "mp2rage NumberShots text": (lambda k: fit("mp2rage", *mp2rage_pair(
+        k, setkey("NumberShots", "128"))), "'NumberShots' must be a number, got '128'"),
+    "mp2rage NumberShots differ": (lambda k: fit("mp2rage", *mp2rage_pair(
+        k, setkey("NumberShots", 100), both=False)), "key 'NumberShots' = 128 differs from 100"),
+    "mp2rage without RepetitionTimePreparation": (lambda k: fit("mp2rage", *mp2rage_pair(
+        k, drop("RepetitionTimePreparation"))), "'RepetitionTimePreparation' missing"),
+    "mp2rage RepetitionTimePreparation in ms": (lambda k: fit("mp2rage", *mp2rage_pair(
+        k, setkey("RepetitionTimePreparation", 5000))),
+        "'RepetitionTimePreparation' = 5000 looks like milliseconds"),
+    "mp2rage cycle too short": (lambda k: fit("mp2rage", *mp2rage_pair(
+        k, setkey("RepetitionTimePreparation", 2.6))),
+        "the second block would end after the next inversion"),
+    "mp2rage FlipAngle in one sidecar only": (lambda k: fit("mp2rage", *mp2rage_pair(
+        k, drop("FlipAngle"), both=False)), "key 'FlipAngle' is missing here but given in"),
+    "mp2rage --inversion-efficiency 1.5": (lambda k: fit("mp2rage", k.s("inv-1_MP2RAGE"), k.s(
+        "inv-2_MP2RAGE"), inversion_efficiency="1.5"), "inversion efficiency 1.5"),
+    "mese-multi lmfit engine": (lambda k: fit("mese-multi", k.s("MESE"), engine="lmfit"),
+                                "the mese-multi model has no lmfit engine"),
+    "mese-multi cutoff below the echo spacing": (lambda k: fit(
+        "mese-multi", k.s("MESE"), short_t2_cutoff="0.005"), "short-T2 cutoff 0.005 s"),
+    "refit mese-multi": (lambda k: ["refit", "mese-multi", k.s("MESE"), "--voxel", "1,1,0"],
+                         "refit does not apply to mese-multi"),
+    "run looklocker b1 without readout": (lambda k: ["run", "--config", k.file("c.yaml", (
+        f"input_dir: {k.anat.parents[2]}\noutput_dir: {k.out}\nmodels:\n"
+        f"  afi: {{pattern: '*TB1AFI.nii.gz'}}\n"
+        f"  looklocker: {{pattern: '*LLT1.nii.gz', b1: afi}}\n"))],
+        "only the readout correction uses a B1 map"),
     # ---- maps
     "mask all zeros": (lambda k: fit("megre", k.s("MEGRE"), mask=k.image(
         "m.nii.gz", np.zeros(k.grid()[0], np.uint8))), "m.nii.gz: the mask has no non-zero"),

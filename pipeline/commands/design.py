@@ -18,11 +18,13 @@ from pipeline.series import MS_THRESHOLD_S
 HELP = "Protocol design: TIs, flip angles or echo spacing from the Cramér–Rao bound"
 DESCRIPTION = """\
 Propose the acquisition that minimises the worst-case coefficient of variation (CV) of
-T1 (ir, vfa) or T2 (mese) over a range, predicted by the Cramér–Rao bound with every
-model parameter estimated (M0, inversion efficiency, B1 included).
+T1 (ir, sr, vfa) or T2 (mese) over a range, predicted by the Cramér–Rao bound with every
+model parameter estimated (M0, inversion or saturation efficiency, B1 included).
 
   ir    inversion times in [0.01 s, TR − 0.01 s]; --tr is the time between inversions.
         Budget: N·TR·LINES ≤ --budget.
+  sr    saturation delays in [0.01 s, TR − 0.01 s]; --tr is the time between saturation
+        pulses. Budget as for ir.
   vfa   flip angles in [1, 90] degrees of a spoiled gradient echo with repetition time
         --tr, B1 = --b1 known. Budget: each angle is one volume of LINES TRs,
         N·TR·LINES ≤ --budget (LINES = 1: the budget counts TRs).
@@ -33,7 +35,7 @@ model parameter estimated (M0, inversion efficiency, B1 included).
 
 SNR is M0/σ: the signal of a fully relaxed, 90°-excited voxel over the noise sd of one
 image. The proposal is never predicted worse than the starting protocol or than a
-feasible --compare protocol (a shorter ir/vfa one is padded by repeating its points).
+feasible --compare protocol (a shorter ir/sr/vfa one is padded by repeating its points).
 Predictions assume Gaussian noise and an efficient estimator; at CVs above about 10 %
 real fits scatter more than the bound (check with --verify).
 This is a QA and research tool, not a medical device; local procedures and the
@@ -49,9 +51,9 @@ VERIFY_POINTS = 5         # relaxation times of the Monte-Carlo check
 
 
 def add_arguments(p: argparse.ArgumentParser) -> None:
-    p.add_argument("model", metavar="MODEL", help="ir, vfa or mese")
+    p.add_argument("model", metavar="MODEL", help="ir, sr, vfa or mese")
     p.add_argument("--range", required=True, metavar="LO:HI", dest="range_",
-                   help="range of T1 (ir, vfa) or T2 (mese) in seconds, e.g. 0.1:2.5")
+                   help="range of T1 (ir, sr, vfa) or T2 (mese) in seconds, e.g. 0.1:2.5")
     p.add_argument("--points", type=int, metavar="N",
                    help="number of TIs / flip angles / echoes (default: from --budget, "
                         "else 8 TIs, 4 angles, 32 echoes)")
@@ -62,7 +64,7 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
     p.add_argument("--budget", type=float, metavar="S",
                    help="scan-time budget in seconds (see above for each model)")
     p.add_argument("--lines", type=int, default=1, metavar="L",
-                   help="TRs per image for the ir/vfa budget (phase encodes × partitions; "
+                   help="TRs per image for the ir/sr/vfa budget (phase encodes × partitions; "
                         "default 1)")
     p.add_argument("--compare", metavar="LIST",
                    help="current protocol, comma-separated: TIs (s), angles (degrees) or "
@@ -157,10 +159,10 @@ def run(args: argparse.Namespace) -> int:
     if compare is not None and model == "vfa" and np.any(compare >= 180):
         raise InputError(f"--compare {args.compare!r}: flip angles must lie in (0, 180) "
                          f"degrees.")
-    if compare is not None and model == "ir" and args.tr is not None and np.any(
+    if compare is not None and model in ("ir", "sr") and args.tr is not None and np.any(
             compare >= args.tr):
-        raise InputError(f"--compare {args.compare!r}: every TI must be shorter than --tr "
-                         f"{args.tr:g} s.")
+        raise InputError(f"--compare {args.compare!r}: every {'TI' if model == 'ir' else 'delay'}"
+                         f" must be shorter than --tr {args.tr:g} s.")
     if args.plot and not args.plot.lower().endswith(".png"):
         raise InputError(f"--plot {args.plot}: the figure is a PNG; give a name ending .png.")
     problem = make_problem(model, lo, hi, points=args.points, tr=args.tr, snr=args.snr,
@@ -194,7 +196,7 @@ def run(args: argparse.Namespace) -> int:
                      {**_protocol_dict(model, result.compared, unit),
                       "feasible": result.compared.feasible, "note": result.compared.note}),
     }
-    if model in ("ir", "vfa"):
+    if model in ("ir", "sr", "vfa"):
         out["proposed"]["scan_time_s"] = round(result.proposed.values.size * problem.tr
                                                * problem.lines, 6)
     if sim is not None:
