@@ -229,6 +229,12 @@ class ModelSpec:
         return k.build if k is not None and k.signal is self.signal else None
 
     @property
+    def map_suffixes(self) -> tuple[str, ...]:
+        """Suffixes of every map the model writes: its parameters' and its extra outputs'."""
+        return tuple(self.outputs[k] for k in self.written) + tuple(
+            e.suffix for e in self.extra_outputs.values())
+
+    @property
     def n_params(self) -> int:
         return len(self.params)
 

@@ -110,7 +110,7 @@ def nonstandard_suffixes(suffixes: Iterable[str]) -> list[str]:
 def registry_suffixes() -> list[str]:
     """Every map suffix the registered models write (default options)."""
     from fitting.spec import get_model, model_names
-    return sorted({s for name in model_names() for s in get_model(name).outputs.values()})
+    return sorted({s for name in model_names() for s in get_model(name).map_suffixes})
 
 
 def configured_suffixes(models: dict[str, dict]) -> list[str]:
@@ -120,7 +120,7 @@ def configured_suffixes(models: dict[str, dict]) -> list[str]:
     from pipeline.wfconfig import model_options
     cfg = {"models": models}
     return sorted({s for name in models for s in configure_model(
-        get_model(name), model_options(cfg, name)).outputs.values()})
+        get_model(name), model_options(cfg, name)).map_suffixes})
 
 
 def bidsignore_text(extra_suffixes: Iterable[str] = ()) -> str:

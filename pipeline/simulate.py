@@ -79,10 +79,10 @@ SR_DELAYS = [0.03, 0.08, 0.15, 0.3, 0.6, 1.2, 2.4, 5.0]
 SR_WAIT = 0.4               # from the previous (90°) readout to the saturation pulse
 AFI_TR = [0.020, 0.100]     # TR1, TR2 (Yarnykh 2007's recommended n = 5)
 AFI_ALPHA = 60.0
-MP2RAGE_TI = [0.5, 2.5]
+MP2RAGE_TI = [0.35, 2.5]   # TI1 short enough that the 0.1 s vial lies on the monotonic branch
 MP2RAGE_ALPHA = [4.0, 5.0]
 MP2RAGE_TAU = 0.007
-MP2RAGE_SHOTS = 128
+MP2RAGE_SHOTS = [40, 88]    # excitations before and after the k-space centre (partial Fourier)
 MP2RAGE_TR = 5.0
 METHODS_SESSION = 0
 

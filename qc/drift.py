@@ -30,11 +30,13 @@ differs from its (temperature-corrected) reference by more than ``reference_pct`
 percent in ``reference_consecutive`` consecutive sessions.
 
 **What is judged.** Only *monitored* quantities: by default the primary map of each
-model that measures a phantom property (:data:`DEFAULT_MONITORED`: T1 of ``ir`` and
-``vfa``, T2 of ``mese``, T2* of ``megre``, B1 of the dedicated ``dam`` method).
-Nuisance parameters (M0, inversion efficiency, the ``mese`` B1, which is a refocusing
-efficiency estimate) and comparison models (``mese-mono``) are scored and shown but
-never fire a rule; ``monitor`` in the settings changes the set.
+model that measures a phantom property (:data:`DEFAULT_MONITORED`: T1 of ``ir``,
+``vfa``, ``looklocker``, ``sr`` and ``mp2rage``, T2 of ``mese`` and ``mese-multi`` (the
+geometric mean of the distribution), T2* of ``megre``, B1 of the dedicated ``dam`` and
+``afi`` methods). Nuisance parameters (M0, inversion or saturation efficiency, the
+``mese``/``mese-multi`` B1, which is a refocusing efficiency estimate, the Look-Locker
+T1*, the short-T2 fraction) and comparison models (``mese-mono``) are scored and shown
+but never fire a rule; ``monitor`` in the settings changes the set.
 
 **What is tracked.** A vial's relaxation times follow the phantom temperature (about
 1–2 %/°C for doped gels), which changes from session to session. The tracked value is
@@ -71,7 +73,8 @@ VIOLATION_COLUMNS = ["site", "scanner", "session", "model", "series", "map", "la
 # listed (mese-mono: the mono-exponential comparison of mese) are shown, not judged.
 DEFAULT_MONITORED: dict[str, tuple[str, ...]] = {
     "ir": ("T1map",), "vfa": ("T1map",), "mese": ("T2map",), "megre": ("T2starmap",),
-    "dam": ("TB1map",)}
+    "dam": ("TB1map",), "looklocker": ("T1map",), "sr": ("T1map",), "mp2rage": ("T1map",),
+    "afi": ("TB1map",), "mese-multi": ("T2map",)}
 
 
 @dataclass(frozen=True)

@@ -168,7 +168,7 @@ CASES: dict[str, tuple[Callable[[Kit], list[str]], str]] = {
     "mp2rage NumberShots text": (lambda k: fit("mp2rage", *mp2rage_pair(
         k, setkey("NumberShots", "128"))), "'NumberShots' must be a number, got '128'"),
     "mp2rage NumberShots differ": (lambda k: fit("mp2rage", *mp2rage_pair(
-        k, setkey("NumberShots", 100), both=False)), "key 'NumberShots' = 128 differs from 100"),
+        k, setkey("NumberShots", 100), both=False)), "key 'NumberShots' = [40, 88] differs from 100"),
     "mp2rage without RepetitionTimePreparation": (lambda k: fit("mp2rage", *mp2rage_pair(
         k, drop("RepetitionTimePreparation"))), "'RepetitionTimePreparation' missing"),
     "mp2rage RepetitionTimePreparation in ms": (lambda k: fit("mp2rage", *mp2rage_pair(

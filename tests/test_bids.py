@@ -113,7 +113,8 @@ def test_demo_raw_and_results_are_valid_bids(tmp_path):
     ses = results / SUB / f"ses-{session_label(0)}"
     sidecars = sorted(ses.glob("anat/*.json")) + sorted(ses.glob("fmap/*.json"))
     assert {p.name.split("_rec-")[1].split("_")[0] for p in sidecars} == \
-        {"ir", "dam", "vfa", "mese", "mesemono", "megre"}
+        {"ir", "dam", "vfa", "mese", "mesemono", "megre",      # and, in the first session,
+         "afi", "looklocker", "sr", "mp2rage", "mesemulti"}     # the further methods
     for p in sidecars:
         side = json.loads(p.read_text())
         assert side["Description"], p.name

@@ -17,6 +17,11 @@ SES = f"ses-{session_label(METHODS_SESSION)}"
 P = f"sub-relaxlinedemo_{SES}_"
 
 
+def _map(out: Path, model: str, suffix: str, ext: str = ".nii.gz") -> Path:
+    """The map a fit wrote (BIDS-derivative name: the model in the rec- entity)."""
+    return out / f"{P}rec-{model.replace('-', '')}_{suffix}{ext}"
+
+
 @pytest.fixture(scope="module")
 def session(tmp_path_factory) -> Path:
     root = tmp_path_factory.mktemp("sim")
@@ -49,8 +54,8 @@ def _img(path: Path) -> np.ndarray:
 def test_further_methods_end_to_end(session, tmp_path):
     root = session
     afi = _fit(root, tmp_path / "afi", "afi", "fmap/*_TB1AFI.nii.gz")
-    b1 = afi / f"{P}TB1AFI_TB1map.nii.gz"
-    assert not (afi / f"{P}TB1AFI_M0map.nii.gz").exists()     # amplitude: no map
+    b1 = _map(afi, "afi", "TB1map")
+    assert b1.is_file() and not _map(afi, "afi", "M0map").exists()   # amplitude: no map
     truth_b1 = _img(root / "phantom" / f"truth_{SES}_TB1map.nii.gz")
     got = _img(b1)
     labels = _img(Path(_paths(root, "anat/*_dseg.nii.gz")[0]))
@@ -62,21 +67,22 @@ def test_further_methods_end_to_end(session, tmp_path):
 
     ll = _fit(root, tmp_path / "ll", "looklocker", "anat/*_LLT1.nii.gz", "--ll-correction",
               "readout", "--b1", str(b1))
-    side = json.loads((ll / f"{P}LLT1_T1starmap.json").read_text())
+    side = json.loads(_map(ll, "looklocker", "T1starmap", ".json").read_text())
     assert side["Units"] == "s" and side["Model"] == "looklocker"
     sr = _fit(root, tmp_path / "sr", "sr", "anat/*_SRT1.nii.gz")
     eff = json.loads((root / "phantom" / f"truth_{SES}.json").read_text())[
         "inversion_efficiency"]
     mp = _fit(root, tmp_path / "mp", "mp2rage", "anat/*_MP2RAGE.nii.gz", "--b1", str(b1),
               "--inversion-efficiency", str(eff))
-    uni = _img(mp / f"{P}MP2RAGE_UNIT1.nii.gz")
+    uni = _img(_map(mp, "mp2rage", "UNIT1"))
     assert np.nanmin(uni) >= -0.5 and np.nanmax(uni) <= 0.5
     mw = _fit(root, tmp_path / "mw", "mese-multi", "anat/*_MESE.nii.gz")
-    dist = _img(mw / f"{P}MESE_T2distmap.nii.gz")
-    side = json.loads((mw / f"{P}MESE_T2distmap.json").read_text())
+    dist = _img(_map(mw, "mese-multi", "T2distmap"))
+    side = json.loads(_map(mw, "mese-multi", "T2distmap", ".json").read_text())
     assert dist.ndim == 4 and dist.shape[3] == len(side["AxisValues"]) == 40
     assert side["AxisName"] == "T2" and side["AxisUnits"] == "s"
-    assert json.loads((mw / f"{P}MESE_MWFmap.json").read_text())["Units"] == "percent"
+    assert json.loads(_map(mw, "mese-multi", "MWFmap", ".json").read_text())["Units"] == \
+        "percent"
 
     # per-vial QC against the reference (temperature-corrected); the inversion of the
     # simulated session is imperfect, which the readout correction and sr do not mind
