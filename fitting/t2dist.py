@@ -35,9 +35,13 @@ import numpy as np
 
 from fitting.epg import cpmg_echoes
 from fitting.nnls import nnls
+from fitting.rfpulse import SliceProfile
+from fitting.sliceprofile import profile_echoes
 
 B1_MIN = 0.3                 # smallest refocusing scale searched (54° of a nominal 180°)
-ANGLE_SEARCH = 8             # angles of the χ² search (Prasloski et al. 2012 search a grid)
+B1_MAX_PROFILE = 1.6         # largest one with a slice profile (no fold; table up to 1.8)
+ANGLE_SEARCH = 8             # angles of the χ² search over [B1_MIN, 1] (Prasloski et al.
+                             # 2012 search a grid); wider ranges get proportionally more
 ANGLE_SEARCH_STRIDE = 2      # the search uses every other T2 of the grid (half the cost;
                              # the misfit's dependence on the angle is unchanged, see tests)
 ANGLE_TABLE_STEP = 0.0025    # B1 step of the basis table (linear interpolation between)
@@ -67,24 +71,45 @@ class Basis:
         return (1.0 - w) * self.table[i] + w * self.table[i + 1]
 
 
-@lru_cache(maxsize=8)
 def basis(n_echoes: int, esp: float, t2_lo: float, t2_hi: float, n_t2: int, t1: float,
-          refocus_deg: float, excite_deg: float) -> Basis:
-    """The basis table for a CPMG protocol (cached): unit-amplitude echo trains."""
+          refocus_deg: float, excite_deg: float, profile: SliceProfile | None = None) -> Basis:
+    """The basis table for a CPMG protocol (cached): unit-amplitude echo trains.
+
+    Without a slice profile the train is symmetric about the refocusing scale that makes
+    the angle 180° (180°/nominal), so B1 is searched up to there; a slice profile (2D
+    data, :mod:`fitting.sliceprofile`) breaks the symmetry and B1 is searched up to
+    :data:`B1_MAX_PROFILE`, the trains being the slice-profile EPG sums.
+    """
+    b1_hi = B1_MAX_PROFILE if profile is not None else min(180.0 / refocus_deg,
+                                                            B1_MAX_PROFILE)
+    return _basis(int(n_echoes), float(esp), float(t2_lo), float(t2_hi), int(n_t2), float(t1),
+                  float(refocus_deg), float(excite_deg), round(b1_hi, 9),
+                  profile.key if profile is not None else "", profile)
+
+
+@lru_cache(maxsize=8)
+def _basis(n_echoes, esp, t2_lo, t2_hi, n_t2, t1, refocus_deg, excite_deg, b1_hi, key,
+           profile) -> Basis:
     t2 = np.geomspace(t2_lo, t2_hi, n_t2)
-    b1 = np.linspace(B1_MIN, 1.0, int(round((1.0 - B1_MIN) / ANGLE_TABLE_STEP)) + 1)
-    table = cpmg_echoes(n_echoes, esp, t2[None, :], t1, b1=b1[:, None],
-                        refocus_deg=refocus_deg, excite_deg=excite_deg)  # (A, G, M)
+    b1 = np.linspace(B1_MIN, b1_hi, int(round((b1_hi - B1_MIN) / ANGLE_TABLE_STEP)) + 1)
+    if profile is None:
+        table = cpmg_echoes(n_echoes, esp, t2[None, :], t1, b1=b1[:, None],
+                            refocus_deg=refocus_deg, excite_deg=excite_deg)  # (A, G, M)
+    else:
+        tt, bb = np.meshgrid(t2, b1)                                         # (A, G)
+        table = profile_echoes(n_echoes, esp, tt.ravel(), t1, bb.ravel(), refocus_deg,
+                               excite_deg, profile).reshape(b1.size, t2.size, n_echoes)
     return Basis(t2=t2, b1=b1, table=np.ascontiguousarray(table.transpose(0, 2, 1)))
 
 
 @lru_cache(maxsize=4)
-def _spline_matrix(n_search: int, n_fine: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+def _spline_matrix(n_search: int, n_fine: int, lo: float, hi: float
+                   ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Search grid, fine grid and the (F, K) matrix taking χ² at the search angles to the
     natural cubic spline's values on the fine grid (the spline is linear in the data)."""
     from scipy.interpolate import CubicSpline
-    coarse = np.linspace(B1_MIN, 1.0, n_search)
-    fine = np.linspace(B1_MIN, 1.0, n_fine)
+    coarse = np.linspace(lo, hi, n_search)
+    fine = np.linspace(lo, hi, n_fine)
     mat = CubicSpline(coarse, np.eye(n_search), bc_type="natural")(fine)
     return coarse, fine, mat
 
@@ -113,7 +138,10 @@ class Distribution:
 def choose_b1(bas: Basis, y: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Refocusing scale minimising the unregularised misfit (spline through the search
     angles), the spline's curvature there, and the passive set of the nearest search angle."""
-    coarse, fine, smat = _spline_matrix(ANGLE_SEARCH, SPLINE_POINTS)
+    lo, hi = float(bas.b1[0]), float(bas.b1[-1])
+    scale = max(1.0, (hi - lo) / (1.0 - B1_MIN))
+    coarse, fine, smat = _spline_matrix(int(round(ANGLE_SEARCH * scale)),
+                                        int(round(SPLINE_POINTS * scale)), lo, hi)
     n = y.shape[0]
     chi2 = np.empty((n, coarse.size))
     passive = None

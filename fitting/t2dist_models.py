@@ -11,7 +11,10 @@ Outputs: ``T2map`` the geometric-mean T2 of the distribution; ``MWFmap`` the sho
 fraction in percent (components with T2 ≤ ``short_t2_cutoff``, default
 :data:`SHORT_T2_CUTOFF`: the myelin water fraction in white matter; BIDS suffix MWFmap,
 whose values the specification recommends in percent, 0–100); ``M0map`` the
-total amplitude; ``TB1map`` the refocusing scale (folded to ≤ 1 as for ``mese``); and the
+total amplitude; ``TB1map`` the refocusing scale (searched up to the fold at 180°/nominal
+refocusing, as ``mese`` reports it; with a slice profile, option ``slice_profile`` for 2D
+data, the basis is the slice-profile EPG of :mod:`fitting.sliceprofile` and B1 is searched
+up to :data:`fitting.t2dist.B1_MAX_PROFILE`); and the
 distribution itself, ``T2distmap`` (relaxline's name): 4D, one volume per T2 of the grid
 (listed in the sidecar's ``AxisValues``). The basis uses a fixed T1 (option ``t1_fixed``,
 default 1 s, as ``mese``).
@@ -25,7 +28,7 @@ import numpy as np
 from fitting import status as st
 from fitting.errors import RelaxlineError
 from fitting.spec import ExtraOutput, Fixed, ModelSpec, Params, Solved, register
-from fitting.t2_models import T1_FIXED_DEFAULT, _mese_validate, echo_spacing
+from fitting.t2_models import T1_FIXED_DEFAULT, _mese_validate, _profile, echo_spacing
 from fitting.t2dist import (B1_MIN, SUB_BATCH, basis, fit_distribution, linear_stderr,
                             summaries)
 
@@ -38,10 +41,14 @@ MIN_ECHOES = 8
 def _fixed(meta: Mapping[str, Any], options: Mapping[str, Any]) -> Fixed:
     t1 = options.get("t1_fixed")
     cut = options.get("short_t2_cutoff")
-    return {"refocus": float(meta.get("RefocusingFlipAngle", 180.0)),
-            "excite": float(meta.get("FlipAngle", 90.0)),
-            "t1": T1_FIXED_DEFAULT if t1 is None else float(t1),
-            "cutoff": SHORT_T2_CUTOFF if cut is None else float(cut)}
+    fixed = {"refocus": float(meta.get("RefocusingFlipAngle", 180.0)),
+             "excite": float(meta.get("FlipAngle", 90.0)),
+             "t1": T1_FIXED_DEFAULT if t1 is None else float(t1),
+             "cutoff": SHORT_T2_CUTOFF if cut is None else float(cut)}
+    prof = options.get("slice_profile")
+    if prof is not None and prof is not False:
+        fixed["profile"] = _profile(prof, fixed)
+    return fixed
 
 
 def _validate(x: np.ndarray, fixed: Fixed) -> None:
@@ -60,7 +67,7 @@ def _validate(x: np.ndarray, fixed: Fixed) -> None:
 def _basis(x: np.ndarray, fixed: Fixed):
     esp = round(echo_spacing(x), 9)
     return basis(x.size, esp, esp, T2_GRID_HIGH, T2_GRID_POINTS, float(fixed["t1"]),
-                 float(fixed["refocus"]), float(fixed["excite"]))
+                 float(fixed["refocus"]), float(fixed["excite"]), fixed.get("profile"))
 
 
 def t2_axis(x: np.ndarray, fixed: Fixed) -> np.ndarray:
@@ -114,7 +121,7 @@ MESE_MULTI = register(ModelSpec(
     # MWF and B1 bounds lie outside what the solver returns ([0, 100], [B1_MIN, 1]), so a
     # single-component voxel (MWF 0) or a perfect refocusing (B1 1) is not "at a bound".
     lower=(1e-3, -100.0, 0.0, B1_MIN - 0.1),
-    upper=(10.0, 200.0, np.inf, 1.8),
+    upper=(10.0, 200.0, np.inf, 2.0),
     xkey="EchoTime",
     signal=_no_signal,
     init=_no_init,

@@ -51,7 +51,7 @@ from pipeline.t1map import check_t1_map_model, gap_note, load_t1_map, t1_values
 MODEL_OPTIONS = {"t1_fixed": ("--t1-fixed", ("mese", "mese-multi", "afi")),
                  "plateau": ("--plateau", ("mese-mono",)),
                  "skip_echoes": ("--skip-echoes", ("mese-mono",)),
-                 "slice_profile": ("--slice-profile", ("mese",)),
+                 "slice_profile": ("--slice-profile", ("mese", "mese-multi")),
                  "noise": ("--noise", ("ir", "vfa", "dam", "mese", "mese-mono", "megre",
                                        "looklocker", "sr", "afi", "mp2rage", "mese-multi")),
                  "ll_correction": ("--ll-correction", ("looklocker",)),

@@ -149,3 +149,23 @@ def test_bad_protocols(x, options, match):
     spec = get_model("mese-multi")
     with pytest.raises(RelaxlineError, match=match):
         spec.validate(np.asarray(x), spec.fixed_from_meta({}, options))
+
+
+def test_2d_data_need_the_slice_profile():
+    """A two-pool mixture in a 2D slice (Hanning sinc, time-bandwidth 3), simulated with
+    spinors and isochromats across the slice (tests/bloch_slice.py, written apart from
+    the project's models): with the slice-profile basis the short-T2 fraction is within
+    3 points of 15 % and the refocusing scale within 1 %; the plain basis reads the
+    profile's stimulated echoes as a low refocusing angle and finds no short-T2 water."""
+    from bloch_slice import slice_cpmg
+    b1 = np.array([1.0, 1.15])
+    trains = np.array([sum(f * slice_cpmg(M, ESP, t2, 1.0, b1=b, n_steps=128)
+                           for f, t2 in POOLS) for b in b1])
+    spec = get_model("mese-multi")
+    prof = fit_voxels(spec, TE, trains, spec.fixed_from_meta({}, {"slice_profile": "sinc:3"}),
+                      noise_sigma=1e-6)
+    np.testing.assert_allclose(prof.params["MWF"], 15.0, atol=3.0)
+    np.testing.assert_allclose(prof.params["B1"], b1, rtol=0.01)
+    np.testing.assert_allclose(prof.params["T2"], GM_POOLS, rtol=0.05)
+    plain = fit_voxels(spec, TE, trains, spec.fixed_from_meta({}, {}), noise_sigma=1e-6)
+    assert np.all(plain.params["MWF"] < 5.0)
