@@ -289,7 +289,7 @@ def test_bad_profile_specs(spec, fragment, tmp_path, capsys):
     assert code == 2 and fragment in err and "Traceback" not in err, err
     code, _, err = _run(capsys, "fit", "mese-mono", series, "--out", tmp_path / "o",
                         "--slice-profile", "sinc:3")
-    assert code == 2 and "--slice-profile applies to the mese model only" in err
+    assert code == 2 and "--slice-profile applies to the mese and mese-multi models only" in err
 
 
 def test_profile_file_fit_and_refit(tmp_path, capsys):
