@@ -109,6 +109,8 @@ AFI = register(ModelSpec(
     description="actual flip-angle imaging B1 map (ratio actual/nominal) from two "
                 "interleaved TRs",
     configure=_afi_configure,
+    # the workflow feeds a T1 map only when asked (models.afi.t1: ir|vfa), not by default
+    extra={"t1_feed": "fixed"},
 ))
 
 AFI_T1 = dataclasses.replace(

@@ -15,7 +15,6 @@ from pathlib import Path
 
 from fitting.errors import excerpt
 from pipeline.errors import InputError
-from pipeline.wfconfig import B1_SOURCES
 
 MANIFEST = "{sub}/{ses}/fits/{model}/{stem}.fit.json"   # maps: {sub}/{ses}/anat|fmap/
 CHUNK = "{sub}/{ses}/chunks/{model}/{stem}/chunk-{chunk}.npz"

@@ -37,9 +37,14 @@ def t1_users() -> list[str]:
 
 
 def t1_setting(cfg: dict, model: str) -> str:
-    """``models.<model>.t1``: auto (the default for models that take a T1 map), ir, vfa
-    or fixed (the default for the others)."""
-    return cfg["models"][model].get("t1") or ("auto" if model in t1_users() else "fixed")
+    """``models.<model>.t1``: auto (the default for models that take a T1 map, unless the
+    model's spec says ``extra["t1_feed"] = "fixed"``: ``afi``, whose published method is the
+    TR << T1 closed form), ir, vfa or fixed (the default for the others)."""
+    from fitting.spec import get_model
+    if cfg["models"][model].get("t1"):
+        return cfg["models"][model]["t1"]
+    auto = model in t1_users() and get_model(model).extra.get("t1_feed", "auto") == "auto"
+    return "auto" if auto else "fixed"
 
 
 def _depends(cfg: dict) -> dict[str, set[str]]:

@@ -47,7 +47,7 @@ def _load(tmp_path: Path, models: dict, **over) -> dict:
     ({"mese": {"pattern": "x", "slice_profile": "none.tsv"}}, "models.mese.slice_profile",
      "none.tsv: file not found"),
     ({"mese-mono": {"pattern": "x", "slice_profile": "sinc:3"}},
-     "models.mese-mono.slice_profile", "applies to mese only"),
+     "models.mese-mono.slice_profile", "applies to mese, mese-multi only"),
     ({"mese": {"pattern": "x", "t1_fixed": 0}}, "models.mese.t1_fixed", "less than or equal"),
 ])
 def test_bad_feed_settings_name_the_key(tmp_path, models, key, fragment):
