@@ -252,7 +252,6 @@ def fit_arrays(model: str | ModelSpec, series: Series, mask: np.ndarray | None =
     for e in spec.extra_outputs.values():     # vector outputs: one volume per axis point
         if e.axis is not None:
             out[e.suffix] = np.full(shape + (len(e.axis(x, fixed)),), np.nan, np.float32)
-    threshold = rayleigh_max_threshold(sigma, n) if (sigma is not None and mask is None) else 0.0
     for zs in _z_slabs(series, z, SLAB_VOXELS):
         block = series.read(zs)
         oz = slice(zs.start - zr.start, zs.stop - zr.start)

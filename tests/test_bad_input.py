@@ -181,6 +181,8 @@ CASES: dict[str, tuple[Callable[[Kit], list[str]], str]] = {
         k, drop("FlipAngle"), both=False)), "key 'FlipAngle' is missing here but given in"),
     "mp2rage --inversion-efficiency 1.5": (lambda k: fit("mp2rage", k.s("inv-1_MP2RAGE"), k.s(
         "inv-2_MP2RAGE"), inversion_efficiency="1.5"), "inversion efficiency 1.5"),
+    "mese-multi rician": (lambda k: fit("mese-multi", k.s("MESE"), noise="rician"),
+                          "the mese-multi model fits with Gaussian noise only"),
     "mese-multi lmfit engine": (lambda k: fit("mese-multi", k.s("MESE"), engine="lmfit"),
                                 "the mese-multi model has no lmfit engine"),
     "mese-multi cutoff below the echo spacing": (lambda k: fit(
