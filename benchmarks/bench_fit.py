@@ -17,11 +17,12 @@ inflated by load the others did not see; all three are single-threaded), the rat
 the T1 accuracy of each on the common sample.
 
 Part 2 writes a 256×256×64×10 float32 series (uncompressed NIfTI, an object filling
-about half the field of view) and runs ``fit_command`` in a child process, reporting
-the peak traced numpy/Python allocation (tracemalloc) and the growth of the peak
-resident set (VmHWM) over the resident set after the imports, each relative to the
-series size.
-Targets: ≥ 300× lmfit, ≥ 30× curve_fit at equal accuracy; peak memory < 3× series.
+about half the field of view) and runs ``fit_command`` in child processes, reporting
+the growth of the peak resident set (VmHWM) over the resident set after the imports and
+the compiled kernels' loading, and (in a second child, as tracing inflates the resident
+set) the peak traced numpy/Python allocation (tracemalloc), each relative to the series
+size. Targets: ≥ 300× lmfit, ≥ 30× curve_fit at equal accuracy (engine alone; the
+end-to-end figures are bench_speed.py's); peak memory < 2× series.
 """
 from __future__ import annotations
 
@@ -150,22 +151,34 @@ def _proc_status(key: str) -> int:
     return 0
 
 
-def _memory_child(folder: str) -> None:
-    """Run in a child: fit the series in ``folder`` and print memory figures as JSON."""
+def _memory_child(folder: str, traced: bool) -> None:
+    """Run in a child: fit the series in ``folder`` and print memory figures as JSON.
+
+    The compiled kernels are loaded on a few voxels before the baseline is taken (a fixed
+    cost of the process, like numpy's import, not a multiple of the series). ``traced``:
+    measure the peak of tracemalloc's traced allocations instead of the resident set
+    (tracemalloc's own bookkeeping inflates the resident set, so the two are separate
+    runs)."""
     import tracemalloc
 
+    from fitting.spec import get_model
+    from fitting.voxelwise import fit_voxels
     from pipeline.fitjob import fit_command
     from pipeline.series import read_series
+    spec = get_model("ir")
+    fit_voxels(spec, TI, np.abs(np.sin(np.arange(40.0)).reshape(4, 10)) + 0.1,
+               spec.fixed_from_meta({"RepetitionTime": TR}, {}))
     base = _proc_status("VmRSS")
     path = Path(folder) / "bench_IRT1.nii"
     series = read_series([path], "InversionTime")
-    tracemalloc.start()
+    if traced:
+        tracemalloc.start()
     t0 = time.perf_counter()
     with open(Path(folder) / "log.txt", "w") as log:
-        fit_command("ir", [path], Path(folder) / "out", stream=log)
+        fit_command("ir", [path], Path(folder) / ("out-traced" if traced else "out"),
+                    stream=log)
     elapsed = time.perf_counter() - t0
-    _, peak = tracemalloc.get_traced_memory()
-    tracemalloc.stop()
+    peak = tracemalloc.get_traced_memory()[1] if traced else None
     rss = _proc_status("VmHWM")
     print(json.dumps({"series_bytes": series.nbytes_float32, "traced_peak": peak,
                       "rss_base": base, "rss_peak": rss, "seconds": elapsed,
@@ -193,11 +206,15 @@ def memory(args) -> dict:
         (folder / "bench_IRT1.json").write_text(json.dumps(
             {"InversionTime": TI.tolist(), "RepetitionTime": TR}))
         del data
-        proc = subprocess.run([sys.executable, __file__, "--memory-child", str(folder)],
-                              capture_output=True, text=True)
-        if proc.returncode != 0:
-            raise SystemExit(proc.stderr)
-        res = json.loads(proc.stdout.strip().splitlines()[-1])
+        runs = []
+        for mode in ("rss", "traced"):
+            proc = subprocess.run([sys.executable, str(Path(__file__).resolve()),
+                                   "--memory-child", str(folder), mode],
+                                  capture_output=True, text=True)
+            if proc.returncode != 0:
+                raise SystemExit(proc.stderr)
+            runs.append(json.loads(proc.stdout.strip().splitlines()[-1]))
+        res = {**runs[0], "traced_peak": runs[1]["traced_peak"]}
     size = res["series_bytes"]
     res["traced_ratio"] = res["traced_peak"] / size
     res["rss_growth_ratio"] = (res["rss_peak"] - res["rss_base"]) / size
@@ -205,9 +222,9 @@ def memory(args) -> dict:
     print(f"relaxline fit ir on {shape}x{TI.size} float32 ({size / 1e6:.0f} MB series), "
           f"{res['seconds']:.0f} s ({res['voxels'] / res['seconds']:.0f} voxels/s incl. I/O):")
     print(f"  peak traced allocations : {res['traced_peak'] / 1e6:7.0f} MB = "
-          f"{res['traced_ratio']:.2f}x series  (target < 3x)")
+          f"{res['traced_ratio']:.2f}x series")
     print(f"  peak RSS growth         : {(res['rss_peak'] - res['rss_base']) / 1e6:7.0f} MB = "
-          f"{res['rss_growth_ratio']:.2f}x series")
+          f"{res['rss_growth_ratio']:.2f}x series  (target < 2x)")
     print(f"  peak RSS (whole process): {res['rss_peak'] / 1e6:7.0f} MB = "
           f"{res['rss_peak_ratio']:.2f}x series")
     return res
@@ -222,10 +239,10 @@ def main(argv=None) -> int:
     p.add_argument("--skip-memory", action="store_true")
     p.add_argument("--skip-throughput", action="store_true")
     p.add_argument("--json", metavar="F", help="also write the figures to this JSON file")
-    p.add_argument("--memory-child", help=argparse.SUPPRESS)
+    p.add_argument("--memory-child", nargs=2, help=argparse.SUPPRESS)
     args = p.parse_args(argv)
     if args.memory_child:
-        _memory_child(args.memory_child)
+        _memory_child(args.memory_child[0], args.memory_child[1] == "traced")
         return 0
     figures = {}
     if not args.skip_throughput:

@@ -61,6 +61,7 @@ NOISE_MODELS = ("auto", "gaussian", "rician")
 SLAB_VOXELS = 131072           # voxels read and fitted at a time (bounds memory)
 NOISE_SAMPLE_VOXELS = 200_000  # voxels sampled for the background-noise estimate
 STATUS_KEY = "desc-fitstatus_mask"
+PARALLEL_WRITE_BYTES = 64 << 20   # maps are compressed in parallel while this is in flight
 
 
 def check_model_options(model: str, options: Mapping[str, Any]) -> None:
@@ -370,9 +371,12 @@ def write_fit_outputs(arrays: Mapping[str, np.ndarray], series: Series, out_dir:
                 extra["Notes"] = list(per_map[suffix])
             paths.append((_map_folder(out_dir, suffix, datatype_folders), suffix, arr, desc,
                           u, extra))
-        # gzip releases the GIL: the maps are compressed on the job's cores side by side
-        with ThreadPoolExecutor(max_workers=int(options.get("jobs") or available_cores())
-                                ) as pool:
+        # gzip releases the GIL: the maps are compressed on the job's cores side by side,
+        # as long as the maps in flight (each about 3x its size while written) stay small
+        jobs = int(options.get("jobs") or available_cores())
+        in_flight = 3 * max((a[2].nbytes for a in paths), default=0)
+        workers = jobs if in_flight * jobs <= PARALLEL_WRITE_BYTES else 1
+        with ThreadPoolExecutor(max_workers=workers) as pool:
             return list(pool.map(lambda a: write_map(a[0], stem, a[1], a[2], series.affine,
                                                      prov, desc=a[3], units=a[4],
                                                      extra=a[5]), paths))

@@ -351,7 +351,7 @@ def _jsonable(o: Any):
     raise TypeError(f"not JSON serialisable: {type(o).__name__}")
 
 
-def nifti_bytes(array: np.ndarray, affine: np.ndarray) -> bytes:
+def nifti_bytes(array: np.ndarray, affine: np.ndarray) -> memoryview:
     """Deterministic .nii.gz bytes for ``array`` on ``affine``."""
     import nibabel as nib
     img = nib.Nifti1Image(np.asarray(array), np.asarray(affine, float))
@@ -362,7 +362,9 @@ def nifti_bytes(array: np.ndarray, affine: np.ndarray) -> bytes:
     buf = io.BytesIO()
     with gzip.GzipFile(fileobj=buf, mode="wb", compresslevel=6, mtime=0, filename="") as gz:
         gz.write(raw)
-    return buf.getvalue()
+    del raw
+    return buf.getbuffer()   # the compressed bytes without a copy (maps are written in
+                             # threads side by side: each copy is memory at the peak)
 
 
 def atomic_write_nifti(path: str | Path, array: np.ndarray, affine: np.ndarray) -> Path:
