@@ -99,10 +99,15 @@ def ir_signal_jacobian(ti: ArrayLike, t1: ArrayLike, m0: ArrayLike, eff: ArrayLi
                        tr: ArrayLike = np.inf, alpha_deg: ArrayLike = 90.0) -> np.ndarray:
     """Exact derivatives of :func:`ir_signal` by (T1, M0, eff), B + (M, 3), from the
     compiled :func:`ir_train` (∂S/∂M0 = S/M0 carries the sign of S)."""
-    xs = np.ascontiguousarray(np.asarray(ti, dtype=float).reshape(-1))
-    shape, flat = _flat_broadcast((t1, m0, eff, tr, alpha_deg))
-    out = np.empty(shape + (xs.size, 3))
-    _ir_jac_loop(xs, *flat, out.reshape(-1, xs.size, 3))
+    return _jacobian_apply(_ir_jac_loop, 3, ti, t1, m0, eff, tr, alpha_deg)
+
+
+def _jacobian_apply(loop, n_params: int, x, *params) -> np.ndarray:
+    """Derivatives B + (M, P) from a train kernel's compiled ``loop(x, *flat, out)``."""
+    xs = np.ascontiguousarray(np.asarray(x, dtype=float).reshape(-1))
+    shape, flat = _flat_broadcast(params)
+    out = np.empty(shape + (xs.size, n_params))
+    loop(xs, *flat, out.reshape(-1, xs.size, n_params))
     return out
 
 
@@ -189,6 +194,20 @@ def _spgr_loop(alpha, t1, m0, tr, b1, out):
     none = np.empty((0, 0))
     for i in range(out.shape[0]):
         spgr_train(alpha, t1[i], m0[i], tr[i], b1[i], out[i], none)
+
+
+def spgr_signal_jacobian(alpha_deg: ArrayLike, t1: ArrayLike, m0: ArrayLike, tr: ArrayLike,
+                         b1: ArrayLike = 1.0) -> np.ndarray:
+    """Exact derivatives of :func:`spgr_signal` by (T1, M0), B + (M, 2), from the compiled
+    :func:`spgr_train`."""
+    return _jacobian_apply(_spgr_jac_loop, 2, alpha_deg, t1, m0, tr, b1)
+
+
+@jit
+def _spgr_jac_loop(alpha, t1, m0, tr, b1, out):
+    s = np.empty(alpha.size)
+    for i in range(out.shape[0]):
+        spgr_train(alpha, t1[i], m0[i], tr[i], b1[i], s, out[i])
 
 
 def ernst_angle_deg(tr: ArrayLike, t1: ArrayLike) -> np.ndarray:

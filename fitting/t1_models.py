@@ -16,7 +16,12 @@ initialisation, sidecar handling and protocol validation.
   (φ = ½·arg Σ y², the sign chosen so the signal recovers with TI) and fitted as the
   signed real signal.
 * ``vfa`` — T1, M0 from spoiled gradient echoes at several flip angles, each nominal
-  angle scaled by a per-voxel B1 (``fixed["b1"]``, default 1).
+  angle scaled by a per-voxel B1 (``fixed["b1"]``, default 1). Ideal spoiling (the Ernst
+  steady state) or, when the sidecar's BIDS ``SpoilingType`` is RF/COMBINED (option
+  ``spoiling``), the RF-spoiled steady state of :mod:`fitting.spoiling` for the increment
+  ``SpoilingRFPhaseIncrement`` (or option ``spoiling_increment``) and an assumed T2 (option
+  ``assumed_t2``, default :data:`ASSUMED_T2_DEFAULT`); that variant runs on the numpy
+  iteration with its tabulated model.
 * ``dam`` — B1 (actual/nominal angle ratio) and M0 from an α/2α pair in closed form;
   output ``TB1map``.
 """
@@ -26,10 +31,10 @@ from typing import Any, Mapping
 
 import numpy as np
 
-from fitting import ir_search, kernels
+from fitting import ir_search, kernels, spoiling
 from fitting.errors import RelaxlineError
 from fitting.signals import (dam_b1, dam_signals, ir_params_from_ab, ir_signal,
-                             ir_signal_jacobian, spgr_signal)
+                             ir_signal_jacobian, spgr_signal, spgr_signal_jacobian)
 from fitting.spec import Fixed, Kernel, ModelSpec, Params, register
 
 T1_LOWER, T1_UPPER = 0.005, 20.0   # s; wide enough for phantoms and tissue at any field
@@ -134,12 +139,64 @@ IR = register(ModelSpec(
 
 
 # --------------------------------------------------------------------------- vfa
+SPOILING_CHOICES = ("auto", "ideal", "rf")
+ASSUMED_T2_DEFAULT = 0.05           # s; T2 of the RF-spoiled model (option assumed_t2)
+SPOILING_TYPES = ("RF", "GRADIENT", "COMBINED")   # BIDS SpoilingType values
+B1_TABLE_MAX = 2.0                  # the spoiling table covers actual angles to 2 × nominal
+
+
+def _vfa_spoiling(meta: Mapping[str, Any], options: Mapping[str, Any]) -> float | None:
+    """The RF phase increment Φ0 (degrees) of the RF-spoiled model, or None (ideal).
+
+    ``spoiling`` (option): ``auto`` (default) models RF spoiling when the sidecar's BIDS
+    ``SpoilingType`` is RF or COMBINED, or when it gives ``SpoilingRFPhaseIncrement``;
+    ``ideal`` always uses the Ernst steady state; ``rf`` requires an increment. The
+    increment comes from ``SpoilingRFPhaseIncrement`` or the option ``spoiling_increment``.
+    """
+    choice = options.get("spoiling") or "auto"
+    if choice not in SPOILING_CHOICES:
+        raise RelaxlineError(f"spoiling {choice!r}: choose one of {', '.join(SPOILING_CHOICES)} "
+                             f"(option --spoiling).")
+    kind = meta.get("SpoilingType")
+    if kind is not None and (not isinstance(kind, str) or kind.upper() not in SPOILING_TYPES):
+        raise RelaxlineError(f"'SpoilingType' = {str(kind)[:40]!r}: BIDS allows "
+                             f"{', '.join(SPOILING_TYPES)}; fix the sidecar.")
+    side = meta.get("SpoilingRFPhaseIncrement")
+    opt = options.get("spoiling_increment")
+    if side is not None and opt is not None and not np.isclose(float(side), float(opt)):
+        raise RelaxlineError(f"'SpoilingRFPhaseIncrement' = {float(side):g} degrees in the "
+                             f"sidecar but --spoiling-increment {float(opt):g}; give one.")
+    inc = side if side is not None else opt
+    if inc is not None and not np.isfinite(float(inc)):
+        raise RelaxlineError(f"RF phase increment {inc!r}: expected a number of degrees "
+                             f"('SpoilingRFPhaseIncrement' or --spoiling-increment).")
+    rf_said = kind is not None and kind.upper() in ("RF", "COMBINED")
+    if choice == "ideal":
+        return None
+    if choice == "rf" or rf_said:
+        if inc is None:
+            raise RelaxlineError(
+                f"the series is RF-spoiled ({'SpoilingType ' + kind if rf_said else '--spoiling rf'}"
+                f") but its RF phase increment is unknown: add 'SpoilingRFPhaseIncrement' "
+                f"(degrees) to the sidecar or give --spoiling-increment DEG; --spoiling ideal "
+                f"fits the Ernst steady state instead (T1 can then be biased by tens of "
+                f"percent).")
+        return float(inc) % 360.0
+    return None if inc is None else float(inc) % 360.0
+
+
 def _vfa_fixed(meta: Mapping[str, Any], options: Mapping[str, Any]) -> Fixed:
     if "RepetitionTime" not in meta:
         raise RelaxlineError(
             "variable-flip-angle series: sidecar key 'RepetitionTime' is missing; the vfa "
             "model needs TR (s). Add it to the JSON sidecar(s).")
-    return {"tr": float(meta["RepetitionTime"]), "b1": 1.0}
+    t2 = options.get("assumed_t2")
+    t2 = ASSUMED_T2_DEFAULT if t2 is None else t2
+    if not (isinstance(t2, (int, float)) and np.isfinite(t2) and t2 > 0):
+        raise RelaxlineError(f"assumed T2 {t2!r}: expected a positive number of seconds "
+                             f"(option --assumed-t2).")
+    return {"tr": float(meta["RepetitionTime"]), "b1": 1.0,
+            "increment": _vfa_spoiling(meta, options), "t2": float(t2)}
 
 
 def _vfa_validate(x: np.ndarray, fixed: Fixed) -> None:
@@ -150,11 +207,37 @@ def _vfa_validate(x: np.ndarray, fixed: Fixed) -> None:
         raise RelaxlineError(f"'RepetitionTime' = {fixed['tr']:g} s must be positive.")
 
 
+def _spoiling_ratio(x: np.ndarray, t1: np.ndarray, fixed: Fixed):
+    """r and ∂r/∂T1 of the RF-spoiled steady state (:mod:`fitting.spoiling`), (N, M)."""
+    alpha_max = min(179.0, B1_TABLE_MAX * float(np.max(x)))
+    tab = spoiling.table(fixed["tr"], fixed["t2"], fixed["increment"], alpha_max)
+    b1 = np.asarray(fixed.get("b1", 1.0), float)
+    act = np.asarray(x, float)[None, :] * np.reshape(b1, (-1, 1))
+    return tab.evaluate(act, np.asarray(t1, float)[:, None])
+
+
 def _vfa_signal(x: np.ndarray, p: Params, fixed: Fixed) -> np.ndarray:
-    return spgr_signal(x, p["T1"], p["M0"], fixed["tr"], fixed.get("b1", 1.0))
+    s = spgr_signal(x, p["T1"], p["M0"], fixed["tr"], fixed.get("b1", 1.0))
+    if fixed.get("increment") is None:
+        return s
+    return s * _spoiling_ratio(x, p["T1"], fixed)[0]
+
+
+def _vfa_jacobian(x: np.ndarray, p: Params, fixed: Fixed) -> np.ndarray:
+    """(N, M, 2) in the order (T1, M0); RF spoiling: S·r with r from the table."""
+    jac = spgr_signal_jacobian(x, p["T1"], p["M0"], fixed["tr"], fixed.get("b1", 1.0))
+    if fixed.get("increment") is None:
+        return jac
+    r, dr = _spoiling_ratio(x, p["T1"], fixed)
+    s = jac[..., 1] * np.asarray(p["M0"], float)[:, None]      # ∂S/∂M0 = S/M0
+    return np.stack([jac[..., 0] * r + s * dr, jac[..., 1] * r], axis=-1)
 
 
 def _vfa_kernel(x: np.ndarray, fixed: Fixed, n: int):
+    """The compiled ideal-spoiling train; None with RF spoiling (its tabulated model is
+    evaluated by the numpy iteration)."""
+    if fixed.get("increment") is not None:
+        return None
     return kernels.SPGR, x, kernels.constants(n, fixed["tr"], fixed.get("b1", 1.0))
 
 
@@ -162,8 +245,20 @@ def _vfa_init(x: np.ndarray, data: np.ndarray, fixed: Fixed) -> Params:
     """Linearised fit S/sin α = E1·S/tan α + M0·(1 − E1) per voxel (closed-form regression).
 
     (Gupta 1977, J Magn Reson 25:231; Deoni, Rutt & Peters 2003, Magn Reson Med 49:515.)
-    Angles are the actual ones, B1·α.
+    Angles are the actual ones, B1·α. With RF spoiling the data are divided by the
+    spoiling ratio r at that first T1 and the regression repeated once.
     """
+    p = _vfa_linear(x, data, fixed)
+    if fixed.get("increment") is None:
+        return p
+    with np.errstate(invalid="ignore", divide="ignore"):
+        corrected = data / _spoiling_ratio(x, p["T1"], fixed)[0]
+    q = _vfa_linear(x, corrected, fixed)
+    ok = np.isfinite(q["T1"]) & np.isfinite(q["M0"])
+    return {k: np.where(ok, q[k], p[k]) for k in p}
+
+
+def _vfa_linear(x: np.ndarray, data: np.ndarray, fixed: Fixed) -> Params:
     n = data.shape[0]
     b1 = np.broadcast_to(np.asarray(fixed.get("b1", 1.0), float), (n,))
     a = np.deg2rad(np.asarray(x, float))[None, :] * b1[:, None]
@@ -195,6 +290,7 @@ VFA = register(ModelSpec(
     fixed_from_meta=_vfa_fixed,
     validate=_vfa_validate,
     scale_param="M0",
+    jacobian=_vfa_jacobian,
     kernel=Kernel(_vfa_signal, _vfa_kernel),
     voxel_fixed=("b1",),
     primary="T1",

@@ -56,7 +56,10 @@ MODEL_OPTIONS = {"t1_fixed": ("--t1-fixed", ("mese", "mese-multi", "afi")),
                                        "looklocker", "sr", "afi", "mp2rage", "mese-multi")),
                  "ll_correction": ("--ll-correction", ("looklocker",)),
                  "inversion_efficiency": ("--inversion-efficiency", ("mp2rage",)),
-                 "short_t2_cutoff": ("--short-t2-cutoff", ("mese-multi",))}
+                 "short_t2_cutoff": ("--short-t2-cutoff", ("mese-multi",)),
+                 "spoiling": ("--spoiling", ("vfa",)),
+                 "spoiling_increment": ("--spoiling-increment", ("vfa",)),
+                 "assumed_t2": ("--assumed-t2", ("vfa",))}
 NOISE_MODELS = ("auto", "gaussian", "rician")
 SLAB_VOXELS = 131072           # voxels read and fitted at a time (bounds memory)
 NOISE_SAMPLE_VOXELS = 200_000  # voxels sampled for the background-noise estimate
@@ -493,7 +496,8 @@ def fit_command(model: str, inputs: Sequence[str | Path], out: str | Path,
     extra["noise"] = resolve_noise(extra.get("noise"), series, sigma, stream, spec=spec)
     maps = {"b1_map": str(b1) if b1 else None, "t1_map": str(t1_map) if t1_map else None}
     spec = configure_model(spec, {**extra, **maps})
-    acquisition(spec, series, extra)          # validate the options before any reading
+    fixed = acquisition(spec, series, extra)  # validate the options before any reading
+    extra.update(resolved_options(spec, fixed))
     refuse_overwriting_inputs(input_files(series, {"mask": mask, **maps}),
                               output_paths(spec, series.stem, out, datatype_folders),
                               "`relaxline fit`")
@@ -528,6 +532,17 @@ def fit_command(model: str, inputs: Sequence[str | Path], out: str | Path,
                              datatype_folders)
 
 
+def resolved_options(spec: ModelSpec, fixed: Fixed) -> dict[str, Any]:
+    """Model settings decided from the sidecars, for the maps' provenance (``Options``):
+    the vfa spoiling model (rf with its increment and assumed T2, or ideal)."""
+    if spec.name not in MODEL_OPTIONS["spoiling"][1]:
+        return {}
+    if fixed.get("increment") is None:
+        return {"spoiling": "ideal"}
+    return {"spoiling": "rf", "spoiling_increment": fixed["increment"],
+            "assumed_t2": fixed["t2"]}
+
+
 def fit_notes(arrays: Mapping[str, np.ndarray], options: Mapping[str, Any],
               t1: np.ndarray | None = None, spec: ModelSpec | None = None,
               series: Series | None = None) -> list[str]:
@@ -541,6 +556,13 @@ def fit_notes(arrays: Mapping[str, np.ndarray], options: Mapping[str, Any],
                      f"which biases T2 (about +10 % for a time-bandwidth 3 sinc) and B1; "
                      f"give --slice-profile (e.g. sinc:TBW of the protocol's pulses, or a "
                      f"profile TSV)")
+    if spec is not None and series is not None and spec.name in MODEL_OPTIONS[
+            "spoiling"][1] and options.get("spoiling") == "ideal" \
+            and str(series.meta.get("SpoilingType", "")).upper() in ("RF", "COMBINED"):
+        notes.append(f"the sidecar says SpoilingType {series.meta['SpoilingType']}, but "
+                     f"{spec.name} was fitted with ideal spoiling (--spoiling ideal): the "
+                     f"RF-spoiled steady state differs from the Ernst formula and T1 can be "
+                     f"off by tens of percent (long T2, short TR); use --spoiling auto")
     if t1 is not None:
         fitted = arrays[STATUS_KEY] != st.OUTSIDE
         note = gap_note(t1, fitted, str(options.get("t1_map")), options.get("t1_fixed"))

@@ -33,7 +33,7 @@ from pipeline.errors import InputError
 TIME_KEYS = ("InversionTime", "EchoTime", "RepetitionTime", "RepetitionTimeExcitation",
              "RepetitionTimePreparation", "SaturationDelay")
 ANGLE_KEYS = ("FlipAngle", "RefocusingFlipAngle")
-SCALAR_KEYS = TIME_KEYS + ANGLE_KEYS + ("MagneticFieldStrength",)
+SCALAR_KEYS = TIME_KEYS + ANGLE_KEYS + ("MagneticFieldStrength", "SpoilingRFPhaseIncrement")
 # BIDS NumberShots: excitations per readout block; a number, or a list of two numbers
 # (excitations before and after the k-space centre line)
 SHOT_KEYS = ("NumberShots",)
@@ -541,7 +541,8 @@ def _common_meta(paths: list[Path], metas: list[dict], key: str, time_unit: str,
                                      f"{v0:g} in {sidecar_path(seen[0][0])}; all volumes of a "
                                      f"series must share it.")
             meta[k] = v0
-    for k in ("PhantomTemperature", "Site", "Scanner", "MRAcquisitionType"):  # context
+    for k in ("PhantomTemperature", "Site", "Scanner", "MRAcquisitionType",  # context
+              "SpoilingType"):
         if k in metas[0]:
             meta[k] = metas[0][k]
     return meta

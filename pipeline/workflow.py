@@ -139,7 +139,8 @@ def step_chunk(model: str, inputs: Sequence[str], z0: int, z1: int, out: str,
                options: dict | None = None, t1_manifest: str | None = None) -> None:
     """Fit slices z0:z1 of a series into an .npz (noise σ from the whole series)."""
     from fitting.spec import configure_model
-    from pipeline.fitjob import estimate_noise, fit_arrays, prepare, resolve_noise
+    from pipeline.fitjob import acquisition, estimate_noise, fit_arrays, prepare, \
+        resolve_noise, resolved_options
     from pipeline.outputs import atomic_write_bytes
     from pipeline.series import load_grid_map
     from pipeline.t1map import load_t1_map
@@ -157,7 +158,9 @@ def step_chunk(model: str, inputs: Sequence[str], z0: int, z1: int, out: str,
                **options}
     if t1:
         options = _t1_fill(model, options)
-    t1_arr = load_t1_map(configure_model(spec, options), series, t1) if t1 else None
+    configured = configure_model(spec, options)
+    options.update(resolved_options(configured, acquisition(configured, series, options)))
+    t1_arr = load_t1_map(configured, series, t1) if t1 else None
     arrays = fit_arrays(model, series, None, b1_arr, options, z=slice(z0, z1), t1=t1_arr)
     keys = list(arrays)
     buf = io.BytesIO()

@@ -7,7 +7,8 @@ HELP = "Fit a relaxation model voxelwise and write maps (ir, vfa, dam, ...)"
 DESCRIPTION = """Fit a relaxation model voxel by voxel and write BIDS-derivative maps.
 
 Models: ir (inversion recovery: T1, M0, inversion efficiency; magnitude or complex),
-vfa (variable flip angle: T1, M0; --b1 scales the nominal angles), dam (double
+vfa (variable flip angle: T1, M0; --b1 scales the nominal angles; RF-spoiled steady
+state when the sidecar says so, see --spoiling), dam (double
 angle alpha/2alpha: TB1map), mese (CPMG multi-echo spin echo by extended phase graphs:
 T2, M0 and the refocusing scale TB1map, reported below the symmetry point of the echo
 train, 180/nominal refocusing angle, or as fitted with --slice-profile; with --b1 the B1 scale
@@ -86,6 +87,19 @@ def add_series_arguments(p: argparse.ArgumentParser) -> None:
     p.add_argument("--inversion-efficiency", type=float, metavar="E",
                    help="mp2rage: inversion efficiency of the lookup, -Mz after/Mz before "
                         "(default 0.96)")
+    p.add_argument("--spoiling", choices=("auto", "ideal", "rf"),
+                   help="vfa: steady state of the spoiled gradient echo. rf: RF spoiling "
+                        "with a quadratic phase schedule, by extended phase graphs (no "
+                        "diffusion) with --assumed-t2; ideal: the Ernst formula (every "
+                        "transverse magnetisation destroyed); auto (default): rf when the "
+                        "sidecar's SpoilingType is RF or COMBINED or it gives "
+                        "SpoilingRFPhaseIncrement, else ideal")
+    p.add_argument("--spoiling-increment", type=float, metavar="DEG",
+                   help="vfa: RF phase increment (degrees) when the sidecar lacks "
+                        "SpoilingRFPhaseIncrement")
+    p.add_argument("--assumed-t2", type=float, metavar="S",
+                   help="vfa with RF spoiling: the T2 (s) of the steady-state model "
+                        "(default 0.05; the residual transverse coherence grows with T2)")
     p.add_argument("--time-unit", choices=("s", "ms"), default="s",
                    help="unit of the times in the sidecars (BIDS: s)")
 
@@ -126,7 +140,8 @@ def series_options(args: argparse.Namespace) -> dict:
     """Model options of :func:`add_series_arguments` (shared with refit), only those set."""
     out = {"t1_fixed": args.t1_fixed, "slice_profile": args.slice_profile,
            "ll_correction": args.ll_correction,
-           "inversion_efficiency": args.inversion_efficiency}
+           "inversion_efficiency": args.inversion_efficiency, "spoiling": args.spoiling,
+           "spoiling_increment": args.spoiling_increment, "assumed_t2": args.assumed_t2}
     return {k: v for k, v in out.items() if v is not None}
 
 
