@@ -227,16 +227,27 @@ def dam_signals(alpha_deg: ArrayLike, b1: ArrayLike, m0: ArrayLike = 1.0,
     return spgr_signal(np.array([alpha, 2.0 * alpha]), t1, m0, tr, b1)
 
 
-def dam_b1(s_alpha: ArrayLike, s_2alpha: ArrayLike, alpha_deg: float) -> np.ndarray:
-    """B1 ratio from a double-angle pair: arccos(S(2α)/(2·S(α)))/α (Insko & Bolinger 1993).
+def dam_b1(s_alpha: ArrayLike, s_2alpha: ArrayLike, alpha_deg: float,
+           e1: ArrayLike = 0.0) -> np.ndarray:
+    """B1 ratio from a double-angle pair of spoiled acquisitions with E1 = e^(−TR/T1).
 
-    Ratios outside [−1, 1] (noise) are clipped; S(α) = 0 gives NaN.
+    Full recovery (E1 = 0): B1 = arccos(S(2α)/(2·S(α)))/α (Insko & Bolinger 1993,
+    J Magn Reson A 103:82). At finite TR the pair follows :func:`spgr_signal`; with
+    c = cos(B1·α) the ratio R = S(2α)/S(α) = 2c·(1 − c·E1)/(1 − (2c² − 1)·E1), a quadratic
+    in c: 2·E1·(1 − R)·c² − 2c + R·(1 + E1) = 0, whose root in [0, 1] (c = 1 at R = 2,
+    c = 0 at R = 0) is c = C/(1 + √(1 − A·C)) with A = 2·E1·(1 − R), C = R·(1 + E1) —
+    derived here from the spoiled steady state (Ernst & Anderson 1966, Rev Sci Instrum
+    37:93); E1 = 0 gives the full-recovery formula. Noise pushing the discriminant below 0
+    or c out of [−1, 1] is clipped; S(α) ≤ 0 gives NaN.
     """
     s1 = np.asarray(s_alpha, float)
     s2 = np.asarray(s_2alpha, float)
+    e1 = np.asarray(e1, float)
     with np.errstate(divide="ignore", invalid="ignore"):
-        r = np.clip(s2 / (2.0 * s1), -1.0, 1.0)
-        out = np.arccos(r) / np.deg2rad(alpha_deg)
+        r = s2 / s1
+        a, c = 2.0 * e1 * (1.0 - r), r * (1.0 + e1)
+        cos = np.clip(c / (1.0 + np.sqrt(np.maximum(1.0 - a * c, 0.0))), -1.0, 1.0)
+        out = np.arccos(cos) / np.deg2rad(alpha_deg)
     return np.where(s1 > 0, out, np.nan)
 
 

@@ -23,7 +23,10 @@ initialisation, sidecar handling and protocol validation.
   ``assumed_t2``, default :data:`ASSUMED_T2_DEFAULT`); that variant runs on the numpy
   iteration with its tabulated model.
 * ``dam`` — B1 (actual/nominal angle ratio) and M0 from an α/2α pair in closed form;
-  output ``TB1map``.
+  output ``TB1map``. At finite TR with a T1 (a T1 map, option ``t1_map``; or one value,
+  ``t1_fixed``) both signals are spoiled steady states and B1 solves a quadratic in
+  cos(B1·α) (:func:`fitting.signals.dam_b1`); without one, full recovery is assumed (the
+  method's classic form; the pipeline warns when TR < :data:`DAM_RECOVERY_TR`).
 """
 from __future__ import annotations
 
@@ -35,7 +38,7 @@ from fitting import ir_search, kernels, spoiling
 from fitting.errors import RelaxlineError
 from fitting.signals import (dam_b1, dam_signals, ir_params_from_ab, ir_signal,
                              ir_signal_jacobian, spgr_signal, spgr_signal_jacobian)
-from fitting.spec import Fixed, Kernel, ModelSpec, Params, register
+from fitting.spec import Fixed, Kernel, ModelSpec, Params, per_voxel, register
 
 T1_LOWER, T1_UPPER = 0.005, 20.0   # s; wide enough for phantoms and tissue at any field
 EFF_LOWER, EFF_UPPER = 0.0, 1.5    # above 1 is unphysical, but a margin keeps noisy ideal
@@ -300,10 +303,25 @@ VFA = register(ModelSpec(
 
 # --------------------------------------------------------------------------- dam
 DAM_RATIO_RTOL = 0.01
+DAM_T1_FILL = 1.0        # s; a workflow T1 map's gaps (voxels it has no value for) use it
+DAM_RECOVERY_TR = 5.0    # s; below this TR, full recovery fails for T1 of 1 s (warning)
 
 
 def _dam_fixed(meta: Mapping[str, Any], options: Mapping[str, Any]) -> Fixed:
-    return {}
+    """TR and the T1 of the finite-TR correction: per voxel from a T1 map (option
+    ``t1_map``; the pipeline sets ``fixed["t1"]``), or one value (option ``t1_fixed``), or
+    None (full recovery assumed, the method's classic form)."""
+    t1 = options.get("t1_fixed")
+    if t1 is not None and not (isinstance(t1, (int, float)) and np.isfinite(t1) and t1 > 0):
+        raise RelaxlineError(f"fixed T1 {t1!r}: expected a positive number of seconds "
+                             f"(option --t1-fixed).")
+    tr = meta.get("RepetitionTime")
+    if tr is None and (options.get("t1_map") or t1 is not None):
+        raise RelaxlineError("double-angle series: sidecar key 'RepetitionTime' is missing, "
+                             "but the finite-TR correction (a T1 map or --t1-fixed) needs "
+                             "the TR (s); add it to the JSON sidecar(s).")
+    return {"tr": np.inf if tr is None else float(tr),
+            "t1": None if t1 is None else float(t1)}
 
 
 def _dam_validate(x: np.ndarray, fixed: Fixed) -> None:
@@ -315,20 +333,46 @@ def _dam_validate(x: np.ndarray, fixed: Fixed) -> None:
                              f"needs a 2:1 pair (α and 2α); got a ratio of {x[1] / x[0]:.3g}.")
     if not 0 < x[0] < 90:
         raise RelaxlineError(f"'FlipAngle' α = {x[0]:g} degrees must lie in (0, 90).")
+    if not fixed["tr"] > 0:
+        raise RelaxlineError(f"'RepetitionTime' = {fixed['tr']:g} s must be positive.")
+
+
+def _dam_recovery(fixed: Fixed):
+    """(T1, TR) for the steady state: the given T1, or full recovery (TR = ∞)."""
+    t1 = fixed.get("t1")
+    if t1 is None:
+        return 1.0, np.inf
+    return np.asarray(t1, float), fixed["tr"]
 
 
 def _dam_signal(x: np.ndarray, p: Params, fixed: Fixed) -> np.ndarray:
-    return dam_signals(float(x[0]), p["B1"], p["M0"])
+    t1, tr = _dam_recovery(fixed)
+    return dam_signals(float(x[0]), p["B1"], p["M0"], t1, tr)
 
 
 def _dam_init(x: np.ndarray, data: np.ndarray, fixed: Fixed) -> Params:
-    """B1 = arccos(S(2α)/(2·S(α)))/α and M0 = S(α)/sin(B1·α) (Insko & Bolinger 1993,
-    J Magn Reson A 103:82; full recovery assumed, TR ≫ T1)."""
+    """B1 from the pair in closed form (:func:`fitting.signals.dam_b1`: Insko & Bolinger
+    1993, J Magn Reson A 103:82, with the finite-TR steady state when a T1 is known),
+    M0 = S(α)·(1 − cos a·E1)/(sin a·(1 − E1)) with a = B1·α."""
     alpha = float(x[0])
-    b1 = dam_b1(data[:, 0], data[:, 1], alpha)
+    t1, tr = _dam_recovery(fixed)
+    e1 = np.exp(-tr / t1) if np.isfinite(tr) else np.zeros(np.shape(t1))
+    b1 = dam_b1(data[:, 0], data[:, 1], alpha, e1)
+    a = np.deg2rad(alpha) * b1
     with np.errstate(divide="ignore", invalid="ignore"):
-        m0 = data[:, 0] / np.sin(np.deg2rad(alpha) * b1)
+        m0 = data[:, 0] * (1.0 - np.cos(a) * e1) / (np.sin(a) * (1.0 - e1))
     return {"B1": b1, "M0": m0}
+
+
+def dam_recovery_bias(alpha_deg: float, tr: float, t1: float) -> float:
+    """Relative B1 error of the full-recovery formula at true B1 = 1 for this TR and T1."""
+    s = dam_signals(alpha_deg, 1.0, 1.0, t1, tr)
+    return float(dam_b1(s[0], s[1], alpha_deg)) - 1.0
+
+
+def _dam_configure(spec: ModelSpec, options: Mapping[str, Any]) -> ModelSpec:
+    """``t1_map``: each voxel's T1 from ``fixed["t1"]`` (:mod:`fitting.spec`)."""
+    return per_voxel(spec, "t1") if options.get("t1_map") else spec
 
 
 DAM = register(ModelSpec(
@@ -348,4 +392,6 @@ DAM = register(ModelSpec(
     scale_param="M0",
     primary="B1",
     description="double-angle B1 map (actual/nominal flip-angle ratio) from an α/2α pair",
+    configure=_dam_configure,
+    extra={"t1_fill": DAM_T1_FILL},
 ))

@@ -48,7 +48,7 @@ from pipeline.series import Series, load_grid_map, read_series, sidecar_path
 from pipeline.t1map import check_t1_map_model, gap_note, load_t1_map, t1_values
 
 # model options of `relaxline fit` -> (flag, models it applies to)
-MODEL_OPTIONS = {"t1_fixed": ("--t1-fixed", ("mese", "mese-multi", "afi")),
+MODEL_OPTIONS = {"t1_fixed": ("--t1-fixed", ("mese", "mese-multi", "afi", "dam")),
                  "plateau": ("--plateau", ("mese-mono",)),
                  "skip_echoes": ("--skip-echoes", ("mese-mono",)),
                  "slice_profile": ("--slice-profile", ("mese", "mese-multi")),
@@ -543,6 +543,28 @@ def resolved_options(spec: ModelSpec, fixed: Fixed) -> dict[str, Any]:
             "assumed_t2": fixed["t2"]}
 
 
+def _dam_recovery_note(spec: ModelSpec | None, series: Series | None,
+                       options: Mapping[str, Any]) -> str | None:
+    """dam without a T1 (map or fixed) at a TR too short for full recovery of T1 = 1 s."""
+    from fitting.t1_models import DAM_RECOVERY_TR, dam_recovery_bias
+    if spec is None or series is None or spec.name != "dam" or options.get("t1_map") \
+            or options.get("t1_fixed") is not None:
+        return None
+    tr = series.meta.get("RepetitionTime")
+    if tr is not None and tr >= DAM_RECOVERY_TR:
+        return None
+    alpha = float(series.values[0])
+    if tr is None:
+        what = "the sidecar gives no RepetitionTime"
+    else:
+        bias = ", ".join(f"{100 * dam_recovery_bias(alpha, tr, t1):+.0f} % at T1 {t1:g} s"
+                         for t1 in (1.0, 2.0))
+        what = f"at TR {tr:g} s the B1 reads high ({bias}, true B1 1)"
+    return (f"dam assumes full recovery between pulses (TR ≫ T1), but {what}; give "
+            f"--t1-map (e.g. the session's ir T1map) or --t1-fixed S for the finite-TR "
+            f"correction")
+
+
 def fit_notes(arrays: Mapping[str, np.ndarray], options: Mapping[str, Any],
               t1: np.ndarray | None = None, spec: ModelSpec | None = None,
               series: Series | None = None) -> list[str]:
@@ -563,6 +585,9 @@ def fit_notes(arrays: Mapping[str, np.ndarray], options: Mapping[str, Any],
                      f"{spec.name} was fitted with ideal spoiling (--spoiling ideal): the "
                      f"RF-spoiled steady state differs from the Ernst formula and T1 can be "
                      f"off by tens of percent (long T2, short TR); use --spoiling auto")
+    note = _dam_recovery_note(spec, series, options)
+    if note:
+        notes.append(note)
     if t1 is not None:
         fitted = arrays[STATUS_KEY] != st.OUTSIDE
         note = gap_note(t1, fitted, str(options.get("t1_map")), options.get("t1_fixed"))

@@ -78,10 +78,13 @@ def _t1_fill(model: str, options: dict) -> dict:
     from pipeline.fitjob import MODEL_OPTIONS
     if options.get("t1_fixed") is not None or model not in MODEL_OPTIONS["t1_fixed"][1]:
         return options
-    try:   # the model's T1 without sidecar or options
-        t1 = get_model(model).fixed_from_meta({}, {}).get("t1")
-    except RelaxlineError:
-        t1 = None
+    spec = get_model(model)
+    t1 = spec.extra.get("t1_fill")     # a model without a default T1 names its gap fill
+    if t1 is None:
+        try:   # the model's T1 without sidecar or options
+            t1 = spec.fixed_from_meta({}, {}).get("t1")
+        except RelaxlineError:
+            t1 = None
     return options if t1 is None else {**options, "t1_fixed": float(t1)}
 
 

@@ -56,7 +56,9 @@ def add_series_arguments(p: argparse.ArgumentParser) -> None:
                         "fixed from the map)")
     p.add_argument("--t1-map", metavar="F",
                    help="T1 map in seconds on the series grid: each voxel's own T1 for the "
-                        "models that use one (mese; afi: the exact finite-TR solution). Inside the fitted region it must hold "
+                        "models that use one (mese: the echo-train model; dam: the finite-TR "
+                        "correction of the double-angle pair; afi: the exact finite-TR "
+                        "solution). Inside the fitted region it must hold "
                         "T1 > 0 everywhere, unless --t1-fixed gives the T1 used where the map "
                         "has no value (NaN or 0)")
     p.add_argument("--slice-profile", metavar="F.tsv|sinc:TBW[:RATIO]",
@@ -79,7 +81,8 @@ def add_series_arguments(p: argparse.ArgumentParser) -> None:
                    help="mese, mese-multi: T1 (s) of the echo-train model (default 1.0; it "
                         "only weights the stimulated echoes); with --t1-map, the T1 used where "
                         "the map has no value. afi: the T1 (s) of the exact finite-TR solution "
-                        "(default: the TR << T1 closed form)")
+                        "(default: the TR << T1 closed form). dam: one T1 for the finite-TR "
+                        "correction (default none: full recovery assumed)")
     p.add_argument("--ll-correction", choices=("ratio", "readout"),
                    help="looklocker: ratio = T1*(B/A - 1) (default, no readout parameters); "
                         "readout = from T1*, FlipAngle and RepetitionTimeExcitation (continuous "
