@@ -119,7 +119,8 @@ CASES: dict[str, tuple[Callable[[Kit], list[str]], str]] = {
     "--engine foo": (lambda k: fit("ir", k.s("IRT1"), engine="foo"), "argument --engine"),
     "--t1-fixed 0": (lambda k: fit("mese", k.s("MESE"), t1_fixed="0"), "fixed T1 = 0.0 s"),
     "--t1-fixed on ir": (lambda k: fit("ir", k.s("IRT1"), t1_fixed="1"),
-                         "option --t1-fixed applies to the mese, mese-multi, afi and dam models only"),
+                         "option --t1-fixed applies to the mese, mese-multi, afi and dam "
+                         "models only"),
     "--plateau on megre": (lambda k: fit("megre", k.s("MEGRE")) + ["--plateau"],
                            "option --plateau applies to the mese-mono model only"),
     "--skip-echoes on ir": (lambda k: fit("ir", k.s("IRT1")) + ["--skip-echoes", "1"],
