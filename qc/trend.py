@@ -113,9 +113,13 @@ def trend_figure(scored: pd.DataFrame, violations: pd.DataFrame | None = None,
 
 def trend_figures(scored: pd.DataFrame, violations: pd.DataFrame, value: str = "mean"
                   ) -> dict[tuple[str, str, str, str], bytes]:
-    """:func:`trend_figure` for every (site, scanner, series, map) of ``scored``."""
+    """:func:`trend_figure` for every (site, scanner, series, map) of ``scored`` seen in
+    at least two sessions (one session has no trend to show; its values are in the
+    session's tables)."""
     out = {}
     for key, g in scored.groupby(list(PANEL_GROUP), sort=True):
+        if g["session"].nunique() < 2:
+            continue
         v = violations.merge(pd.DataFrame([key], columns=list(PANEL_GROUP)), how="inner") \
             if not violations.empty else violations
         judged = bool(g["monitored"].any()) if "monitored" in g else True
