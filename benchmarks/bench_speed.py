@@ -16,8 +16,8 @@ like on whatever load the machine carries (the load average is printed):
   fitted voxels per second of the CLI / voxels per second of the loop, by wall clock
   and by CPU time (the loops use one core; the CLI as many as ``--jobs``).
 * ``fit mese`` end to end the same way (32 echoes, ESP 10 ms, T2 0.02–0.4 s, B1 0.75–1.1,
-  B1 fitted) against an lmfit loop; with ``--slice-profile`` available, the slice-profile
-  EPG's end-to-end time relative to the plain EPG's.
+  B1 fitted) against an lmfit loop (the slice-profile EPG's cost relative to the plain
+  EPG's: ``bench_slice_profile.py``).
 * cores used: CPU time / wall time of each CLI run, and the wall-time ratio of
   ``--jobs 1`` over ``--jobs 2``.
 * ``--memory``: peak memory of ``fit ir`` on a 256×256×64×10 float32 series (uncompressed
@@ -250,16 +250,9 @@ def main(argv=None) -> int:
             end_to_end("mese", path, rows, te, {}, lambda te_, t2, m0, b1: cpmg_echoes(
                 N_ECHO, ESP, t2, 1.0, b1=b1, m0=m0), max(20, args.sample // 4), work, jobs,
                 figures)
-            help_text = run_child([_relaxline(), "fit", "--help"])["stdout"]
-            if "--slice-profile" in help_text:
-                plain = figures["mese"]["cli"][str(max(jobs))]["wall_s"]
-                sp = cli_fit("mese", path, work / "mese-sp", max(jobs),
-                             ["--slice-profile", "sinc:4"])
-                figures["mese_slice_profile_vs_plain"] = sp["wall"] / plain
-                print(f"fit mese --slice-profile sinc:4: {sp['wall']:.1f} s wall = "
-                      f"{sp['wall'] / plain:.2f}x the plain EPG fit (target <= 3x)")
-            else:
-                print("fit mese --slice-profile: not available in this checkout")
+            # the slice-profile EPG's cost: benchmarks/bench_slice_profile.py, which fits
+            # each model to data of its own (a profile fit of plain-EPG trains does not
+            # converge in a third of the voxels, and their lmfit refits dominate)
         if args.memory:
             figures["memory"] = fit_memory(args)   # bench_fit's child-process measurement
         if args.demo:
