@@ -565,6 +565,29 @@ def _dam_recovery_note(spec: ModelSpec | None, series: Series | None,
             f"correction")
 
 
+SHORT_T2_MIN_VOXELS = 10   # fewer: isolated voxels at an edge, not a sample to warn about
+
+
+def _short_t2_note(arrays: Mapping[str, np.ndarray], spec: ModelSpec | None,
+                   series: Series | None, options: Mapping[str, Any]) -> str | None:
+    """mese with B1 fitted: usable voxels in the ambiguous short-T2 range
+    (:func:`fitting.t2_models.short_t2`)."""
+    if spec is None or series is None or spec.name != "mese" or options.get("b1_map") \
+            or "T2map" not in arrays:
+        return None
+    from fitting.t2_models import SHORT_T2_ESP, echo_spacing, short_t2
+    usable = np.isin(arrays[STATUS_KEY], st.USABLE)
+    n = int(np.count_nonzero(short_t2(arrays["T2map"], series.values) & usable))
+    if n < SHORT_T2_MIN_VOXELS:
+        return None
+    esp_ms = 1e3 * echo_spacing(series.values)
+    return (f"{n} of {int(usable.sum())} usable voxels have T2 below {SHORT_T2_ESP:g} echo "
+            f"spacings ({SHORT_T2_ESP * esp_ms:.3g} ms), where the B1-fitted echo train is "
+            f"ambiguous (a second solution with short T2 and low B1 fits the noise as well); "
+            f"for short-T2 samples give a B1 map (--b1, or `b1: dam` in the workflow) or read "
+            f"these T2 values as unreliable")
+
+
 def fit_notes(arrays: Mapping[str, np.ndarray], options: Mapping[str, Any],
               t1: np.ndarray | None = None, spec: ModelSpec | None = None,
               series: Series | None = None) -> list[str]:
@@ -585,9 +608,10 @@ def fit_notes(arrays: Mapping[str, np.ndarray], options: Mapping[str, Any],
                      f"{spec.name} was fitted with ideal spoiling (--spoiling ideal): the "
                      f"RF-spoiled steady state differs from the Ernst formula and T1 can be "
                      f"off by tens of percent (long T2, short TR); use --spoiling auto")
-    note = _dam_recovery_note(spec, series, options)
-    if note:
-        notes.append(note)
+    for note in (_dam_recovery_note(spec, series, options),
+                 _short_t2_note(arrays, spec, series, options)):
+        if note:
+            notes.append(note)
     if t1 is not None:
         fitted = arrays[STATUS_KEY] != st.OUTSIDE
         note = gap_note(t1, fitted, str(options.get("t1_map")), options.get("t1_fixed"))

@@ -47,20 +47,25 @@ def test_air_is_kept_out_at_peak_snr_8(tmp_path, capsys):
     assert opts["noise"] == "rician"            # the default for magnitude data with air
 
 
+def _vial_mese(tmp_path, stem: str, train: np.ndarray, seed: int, b1: float | None):
+    """A disc vial with the echo train ``train`` (32 echoes, ESP 10 ms), complex Gaussian
+    noise of σ = 1 in magnitude; ``b1``: also a uniform B1 map of that value (``--b1``)."""
+    rng = np.random.default_rng(seed)
+    disc = _disc(32, 11)
+    clean = np.where(disc[..., None], train, 0.0)[:, :, None, :]
+    mag = np.abs(clean + rng.standard_normal(clean.shape) + 1j * rng.standard_normal(clean.shape))
+    path = write_4d(tmp_path, stem, mag.astype(np.float32), "EchoTime", 0.01 * np.arange(1, 33))
+    extra = []
+    if b1 is not None:
+        extra = ["--b1", write_nifti(tmp_path / "b1.nii.gz", np.full((32, 32, 1), b1, np.float32))]
+    return path, disc, extra
+
+
 def _mese_10ms(tmp_path, b1_map: bool):
     """A 10 ms vial (32 echoes, ESP 10 ms, T1 1 s, B1 1) at SNR 50 = M0/σ in air,
     echo trains by isochromat simulation (tests/test_bloch.py)."""
-    rng = np.random.default_rng(11)
-    disc = _disc(32, 11)
     train = isochromat_cpmg(32, 0.01, 0.010, 1.0, b1=1.0, m0=50.0)
-    clean = np.where(disc[..., None], train, 0.0)[:, :, None, :]
-    mag = np.abs(clean + rng.standard_normal(clean.shape) + 1j * rng.standard_normal(clean.shape))
-    path = write_4d(tmp_path, "vial_MESE", mag.astype(np.float32), "EchoTime",
-                    0.01 * np.arange(1, 33))
-    extra = []
-    if b1_map:
-        extra = ["--b1", write_nifti(tmp_path / "b1.nii.gz", np.ones((32, 32, 1), np.float32))]
-    return path, disc, extra
+    return _vial_mese(tmp_path, "vial_MESE", train, 11, 1.0 if b1_map else None)
 
 
 @pytest.mark.parametrize("noise, within", [(None, 0.02), ("gaussian", None)])
@@ -119,3 +124,31 @@ def test_workflow_config_noise(tmp_path):
     cfg["models"]["megre"]["noise"] = "poisson"
     with pytest.raises(wfconfig.InputError, match=r"models\.megre\.noise"):
         wfconfig.validate_config(cfg)
+
+
+def _short_t2_vial(tmp_path, b1_map: bool):
+    """vial01 of the demo phantom: T2 12 ms (1.2 echo spacings), T1 0.105 s, B1 0.94,
+    M0/σ = 80, 32 echoes of 10 ms; isochromat trains (tests/test_bloch.py)."""
+    train = isochromat_cpmg(32, 0.01, 0.012, 0.105, b1=0.94, m0=80.0)
+    path, disc, extra = _vial_mese(tmp_path, "short_MESE", train, 21, 0.94 if b1_map else None)
+    return path, disc, ["--t1-fixed", "0.105", *extra]
+
+
+@pytest.mark.parametrize("b1_map", [False, True])
+def test_short_t2_with_b1_fitted_is_flagged(tmp_path, capsys, b1_map):
+    # T2 ≈ ESP with a short T1: the B1-fitted train has a second minimum (T2 of a few ms,
+    # B1 ~0.7) that pulls the vial mean down; the fit says so and names the remedy. With
+    # the B1 map the mean is within 3 % of the isochromat truth and nothing is flagged.
+    path, disc, extra = _short_t2_vial(tmp_path, b1_map)
+    code, err = _cli(capsys, "mese", path, "--out", tmp_path / "o", *extra)
+    assert code == 0, err
+    t2 = nib.load(tmp_path / "o" / "short_rec-mese_T2map.nii.gz").get_fdata()[:, :, 0][disc]
+    side = json.loads((tmp_path / "o" / "short_rec-mese_T2map.json").read_text())
+    flagged = "B1-fitted echo train is ambiguous" in err
+    assert flagged == (not b1_map), err
+    assert flagged == any("ambiguous" in w for w in side.get("Warnings", []))
+    n_short = int(np.sum(t2 < 0.004))
+    if b1_map:
+        assert n_short == 0 and abs(np.nanmean(t2) / 0.012 - 1) < 0.03
+    else:
+        assert n_short >= 10
