@@ -157,8 +157,11 @@ def step_report(cfg: dict, summaries: Sequence[str], report: str, status: str,
                          "failing": failing, "rejections": n_rej,
                          "temperature": m.get("temperature"),
                          "temperature_source": m.get("temperature_source", ""), "href": href})
-            lines.append(f"{s['sub']}/{s['ses']} {model}: {c.get('pass', 0)} pass, "
-                         f"{c.get('warn', 0)} warn, {c.get('fail', 0)} fail"
+            judged = sum(c.get(k, 0) for k in ("pass", "warn", "fail"))
+            lines.append(f"{s['sub']}/{s['ses']} {model}: " + (
+                f"{c.get('pass', 0)} pass, {c.get('warn', 0)} warn, {c.get('fail', 0)} fail"
+                if judged or not sum(c.values()) else
+                f"{sum(c.values())} vial/map results, no reference values (statistics only)")
                          + (f"; failing: {failing}" if failing else "")
                          + (f"; {n_rej} drift rejection(s)" if n_rej else ""))
     atomic_write_tsv(drift_tsv, violations)
