@@ -1,4 +1,5 @@
-"""Protocol design from the Cramér–Rao bound (fitting/design.py, `relaxline design`)."""
+"""Protocol design from the Cramér–Rao bound (fitting/design.py, design_search.py,
+`relaxline design`)."""
 from __future__ import annotations
 
 import json
@@ -6,8 +7,8 @@ import json
 import numpy as np
 import pytest
 
-from fitting.design import (check_protocol, design, echo_times, make_problem, pad_protocol,
-                            predicted_cv, simulate_cv)
+from fitting.design import check_protocol, echo_times, make_problem, predicted_cv, simulate_cv
+from fitting.design_search import design, pad_protocol
 from fitting.errors import RelaxlineError
 from fitting.signals import ernst_angle_deg, mono_exp, spgr_signal
 from fitting.spec import get_model

@@ -1,9 +1,10 @@
 """`relaxline design`: choose an acquisition from the Cramér–Rao bound (design §5).
 
-The optimisation itself is :mod:`fitting.design` (objective, constraints, budget and SNR
-definitions are documented there); this module parses options, prints the proposed
-protocol beside the compared one, writes the optional figure atomically and runs the
-optional Monte-Carlo check with the project's fitting engine.
+The problem and its bound are :mod:`fitting.design` (constraints, budget and SNR
+definitions are documented there), the search :mod:`fitting.design_search`; this module
+parses options, prints the proposed protocol beside the compared one, writes the optional
+figure atomically and runs the optional Monte-Carlo check with the project's fitting
+engine.
 """
 from __future__ import annotations
 
@@ -144,8 +145,9 @@ def _figure(result, compared_values, sim) -> bytes:
 def run(args: argparse.Namespace) -> int:
     import numpy as np
 
-    from fitting.design import (DESIGN_MODELS, UNITS, VERIFY_TRIALS_MIN, design, make_problem,
+    from fitting.design import (DESIGN_MODELS, UNITS, VERIFY_TRIALS_MIN, make_problem,
                                 parse_values, simulate_cv)
+    from fitting.design_search import design
     from pipeline.outputs import atomic_write_bytes
 
     model = args.model
