@@ -117,7 +117,8 @@ def step_report(cfg: dict, summaries: Sequence[str], report: str, status: str,
     from qc.history import load_history
     from qc.report import build_report
     settings = drift_settings(cfg["drift"])
-    hist = load_history(cfg["database"])
+    from pipeline.workflow import upgrade_series_key
+    hist = load_history(cfg["database"], rename_series=upgrade_series_key)
     scored, violations = drift.evaluate(hist, settings)
     trend_dir = Path(drift_tsv).parent
     atomic_write_tsv(trend_dir / "scored.tsv", scored)

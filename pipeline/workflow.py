@@ -303,8 +303,22 @@ def history_series(model: str, stem: str, ses: str) -> str:
     ``rec-<model>`` entity is dropped, the model being the key's prefix."""
     from pipeline.bidsderiv import model_label
     for entity in (ses, f"rec-{model_label(model)}"):
-        stem = re.sub(rf"_?{re.escape(entity)}(?=_|$)", "", stem)
+        if entity:
+            stem = re.sub(rf"_?{re.escape(entity)}(?=_|$)", "", stem)
     return f"{model}:{stem}"
+
+
+def upgrade_series_key(key: str) -> str:
+    """A series key of the first release's history (``model:<series stem>``, the stem
+    ending with the raw suffix: ``ir:sub-p_IRT1``) in today's form (:func:`history_series`
+    of the BIDS derivative map stem: ``ir:sub-p``), so a trend continues across the
+    upgrade. Applied once, when the database is migrated from schema 1
+    (:func:`qc.history.migrate`)."""
+    from pipeline.bidsderiv import derivative_stem
+    model, sep, stem = key.partition(":")
+    if not sep or not model:
+        return key
+    return history_series(model, derivative_stem(stem, model), "")
 
 
 def session_table(summary: dict) -> "pd.DataFrame":
@@ -335,7 +349,8 @@ def step_record(database: str, summary_path: str, out: str) -> None:
                        scanner=summary["scanner"], session=summary["session"],
                        subject=summary["sub"],
                        temperature=float(temps.iloc[0]) if len(temps) else None,
-                       source=str(Path(summary_path).resolve()))
+                       source=str(Path(summary_path).resolve()),
+                       rename_series=upgrade_series_key)
     atomic_write_json(out, {"database": database, "rows": n,
                             "site": summary["site"], "scanner": summary["scanner"],
                             "session": summary["session"]})

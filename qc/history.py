@@ -14,7 +14,9 @@ database on a node-local or properly locking shared disk (not plain NFS).
 
 Schema versions: 1 had no ``model`` column (the key lacked it); opening such a file
 migrates it in one transaction (:func:`migrate`), taking each row's model from the
-``model:`` prefix of its series key and keeping every row.
+``model:`` prefix of its series key and keeping every row. The caller may also pass a
+``rename_series`` function that turns the first release's series keys into today's (the
+workflow's map names changed with them); this module does not know how keys are made.
 
 The database is checked (``PRAGMA quick_check``) every time it is opened, and a damaged,
 truncated or foreign file is refused with an error that names it and the way back
@@ -27,8 +29,10 @@ from __future__ import annotations
 
 import os
 import sqlite3
+from collections import Counter
 from datetime import datetime, timezone
 from pathlib import Path
+from typing import Callable
 from urllib.parse import quote
 
 import numpy as np
@@ -46,6 +50,7 @@ _TEXT = {"site", "scanner", "session", "model", "series", "map", "name", "units"
          "subject", "temperature_source", "recorded_at"}
 _INT = {"label", "n_voxels"}
 SCHEMA_VERSION = 2
+SeriesRename = Callable[[str], str]   # old series key -> new one (migrate)
 BUSY_TIMEOUT_MS = 120_000
 BACKUPS = 3                      # copies kept: <name>.backup-1 (newest) .. -3
 SQLITE_MAGIC = b"SQLite format 3\x00"
@@ -198,8 +203,10 @@ def _disk_full(exc: BaseException) -> bool:
         isinstance(exc, OSError) and exc.errno in (28, 122)   # ENOSPC, EDQUOT
 
 
-def connect(path: str | Path) -> sqlite3.Connection:
-    """Open (creating if needed) the history database in WAL mode, after checking it."""
+def connect(path: str | Path, rename_series: SeriesRename | None = None
+            ) -> sqlite3.Connection:
+    """Open (creating if needed) the history database in WAL mode, after checking it;
+    an older schema is migrated (:func:`migrate`, with ``rename_series``)."""
     path = Path(path)
     check_database(path)
     try:
@@ -217,7 +224,7 @@ def connect(path: str | Path) -> sqlite3.Connection:
             conn.execute("INSERT OR IGNORE INTO meta VALUES ('schema_version', ?)",
                          (str(SCHEMA_VERSION),))
         else:
-            migrate(conn, backup_of=path)
+            migrate(conn, backup_of=path, rename_series=rename_series)
     except (sqlite3.DatabaseError, OSError) as exc:
         raise _cannot_open(path, exc) from None
     if str(mode).lower() != "wal":
@@ -233,14 +240,17 @@ def model_of_series(series: str) -> str:
     return series.split(":", 1)[0] if ":" in series else ""
 
 
-def migrate(conn: sqlite3.Connection, backup_of: Path | None = None) -> int:
+def migrate(conn: sqlite3.Connection, backup_of: Path | None = None,
+            rename_series: SeriesRename | None = None) -> int:
     """Bring an older history database to :data:`SCHEMA_VERSION`, keeping every row.
 
     Version 1 lacked the ``model`` column (and ``units``, ``temperature_source``). The
     table is rebuilt with the new key in one transaction: rows are copied with the model
     taken from the series key's ``model:`` prefix; the row count is checked before the
     commit, so a failure leaves the old table untouched; ``backup_of``: the database file,
-    copied first (:func:`_backup`). Returns the rows migrated (0 when already current).
+    copied first (:func:`_backup`); ``rename_series``: old series key -> new one, applied in
+    the same transaction (:func:`_rename_series`). Returns the rows migrated (0 when
+    already current).
     """
     cols = [r[1] for r in conn.execute("PRAGMA table_info(roi_history)")]
     if "model" in cols:
@@ -261,6 +271,8 @@ def migrate(conn: sqlite3.Connection, backup_of: Path | None = None) -> int:
             f"INSERT INTO roi_history_new (model, {', '.join(keep)}) SELECT "
             "CASE WHEN instr(series, ':') > 0 THEN substr(series, 1, instr(series, ':') - 1) "
             f"ELSE '' END, {', '.join(keep)} FROM roi_history")
+        if rename_series is not None:
+            _rename_series(conn, "roi_history_new", rename_series)
         if conn.execute("SELECT COUNT(*) FROM roi_history_new").fetchone()[0] != n:
             raise RelaxlineError("history migration lost rows; the database was left as it "
                                  "was.")
@@ -273,6 +285,17 @@ def migrate(conn: sqlite3.Connection, backup_of: Path | None = None) -> int:
         conn.execute("ROLLBACK")
         raise
     return n
+
+
+def _rename_series(conn: sqlite3.Connection, table: str, rename: SeriesRename) -> int:
+    """Rename series keys in ``table``; a key whose new name would meet another key's (old
+    or new) keeps its name, so no two series merge. Returns the keys renamed."""
+    old = [r[0] for r in conn.execute(f"SELECT DISTINCT series FROM {table}")]
+    new = {o: rename(str(o)) for o in old}
+    taken = Counter(new.values())
+    changes = [(n, o) for o, n in new.items() if n != o and taken[n] == 1 and n not in new]
+    conn.executemany(f"UPDATE {table} SET series=? WHERE series=?", changes)
+    return len(changes)
 
 
 def _backup(db: Path) -> None:
@@ -339,7 +362,7 @@ def _rows(df: pd.DataFrame, site: str, scanner: str, session: str, subject: str 
 
 def record_session(db: str | Path, stats: pd.DataFrame, *, site: str, scanner: str,
                    session: str, subject: str | None = None, temperature: float | None = None,
-                   source: str = "") -> int:
+                   source: str = "", rename_series: SeriesRename | None = None) -> int:
     """Replace one session's rows by ``stats`` in a single transaction.
 
     Parameters
@@ -349,6 +372,7 @@ def record_session(db: str | Path, stats: pd.DataFrame, *, site: str, scanner: s
         ``model`` (else taken from a ``model:`` prefix of ``series``).
     site, scanner, session : the session's identity (part of the key).
     subject, temperature, source : stored alongside for the report.
+    rename_series : for the migration of an older database (:func:`connect`).
 
     Returns
     -------
@@ -356,7 +380,7 @@ def record_session(db: str | Path, stats: pd.DataFrame, *, site: str, scanner: s
     """
     when = datetime.now(timezone.utc).isoformat(timespec="seconds")
     rows = _rows(stats, site, scanner, session, subject, temperature, when)
-    conn = connect(db)
+    conn = connect(db, rename_series)
     try:
         conn.execute("BEGIN IMMEDIATE")  # take the write lock now, not halfway through
         try:
@@ -379,12 +403,13 @@ def record_session(db: str | Path, stats: pd.DataFrame, *, site: str, scanner: s
     return len(rows)
 
 
-def load_history(db: str | Path, site: str | None = None,
-                 scanner: str | None = None) -> pd.DataFrame:
-    """All rows (optionally of one site/scanner), ordered by key; empty frame if no file."""
+def load_history(db: str | Path, site: str | None = None, scanner: str | None = None,
+                 rename_series: SeriesRename | None = None) -> pd.DataFrame:
+    """All rows (optionally of one site/scanner), ordered by key; empty frame if no file.
+    ``rename_series``: for the migration of an older database (:func:`connect`)."""
     if not Path(db).is_file():
         return pd.DataFrame(columns=list(COLUMNS))
-    conn = connect(db)
+    conn = connect(db, rename_series)
     try:
         where, args = [], []
         for col, val in (("site", site), ("scanner", scanner)):

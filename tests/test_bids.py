@@ -121,5 +121,21 @@ def test_demo_raw_and_results_are_valid_bids(tmp_path):
         for uri in side["Sources"]:
             assert uri.startswith("bids:raw:") and (link / uri[len("bids:raw:"):]).is_file()
     assert (ses / "fmap" / f"{SUB}_ses-{session_label(0)}_rec-dam_TB1map.nii.gz").is_file()
-    assert (ses / "fmap" / f"{SUB}_ses-{session_label(0)}_rec-mese_TB1map.nii.gz").is_file()
+    # B1 fitted from an echo train is a B1 map too (the demo's mese takes dam's B1)
+    assert (ses / "fmap" / f"{SUB}_ses-{session_label(0)}_rec-mesemulti_TB1map.nii.gz").is_file()
     assert (ses / "qc" / "ir" / "roi_stats.tsv").is_file() and (results / "report.html").is_file()
+
+
+@pytest.mark.parametrize("raw_stem, model", [
+    ("sub-p_ses-1_IRT1", "ir"), ("sub-p_ses-1_TB1DAM", "dam"), ("sub-p_ses-1_MESE", "mese-mono"),
+    ("sub-p_ses-1_acq-fast_VFA", "vfa"), ("site9_ses-1_IRT1", "ir")])
+def test_first_release_history_keys_continue(raw_stem, model):
+    # the first release keyed a series `model:<raw stem without ses>`; the derivative map
+    # names changed the key, and the migration maps the old key onto the one today's
+    # workflow records for the same raw series, so the trend continues
+    from pipeline.bidsderiv import derivative_stem
+    from pipeline.workflow import history_series, upgrade_series_key
+    old = f"{model}:{raw_stem.replace('_ses-1', '')}"
+    today = history_series(model, derivative_stem(raw_stem, model), "ses-1")
+    assert upgrade_series_key(old) == today
+    assert upgrade_series_key("IRT1") == "IRT1"       # a key without a model stays

@@ -136,10 +136,8 @@ def test_model_is_part_of_the_key(tmp_path):
     assert sorted(h["model"].unique()) == ["mese", "mese-mono"]
 
 
-def test_version_1_database_is_migrated_without_losing_rows(tmp_path):
-    """A database written before the model column existed (schema 1) opens as schema 2:
-    every row kept, the model taken from the series key's `model:` prefix."""
-    db = tmp_path / "old.sqlite"
+def _v1_database(db, series_keys):
+    """A schema-1 database (no model column) with sessions 1 and 2, labels 1 and 2."""
     v1 = ["site", "scanner", "session", "series", "map", "label", "name", "n_voxels", "mean",
           "sd", "median", "iqr", "cv_pct", "reference", "reference_at_temperature",
           "bias_pct", "tolerance_pct", "status", "subject", "temperature", "recorded_at"]
@@ -149,12 +147,33 @@ def test_version_1_database_is_migrated_without_losing_rows(tmp_path):
         "series, map, label)); CREATE TABLE meta (key TEXT PRIMARY KEY, value TEXT); "
         "INSERT INTO meta VALUES ('schema_version', '1');")
     rows = [("A", "S", s, series, "T2map", lab) + (None,) * 2 + (0.1 * lab,) + (None,) * 12
-            for s in ("1", "2") for series in ("mese:sub-p_MESE", "mese-mono:sub-p_MESE",
-                                               "IRT1") for lab in (1, 2)]
+            for s in ("1", "2") for series in series_keys for lab in (1, 2)]
     conn.executemany(f"INSERT INTO roi_history ({', '.join(v1)}) VALUES "
                      f"({', '.join('?' * len(v1))})", rows)
     conn.commit()
     conn.close()
+    return rows
+
+
+def test_migration_renames_series_keys_without_merging(tmp_path):
+    # the caller's rename applies once, with the migration; a key whose new name another
+    # key already holds (or would take) keeps its old name, so no two series merge
+    db = tmp_path / "old.sqlite"
+    _v1_database(db, ("ir:a_X", "ir:b_X", "ir:b", "mese:c_X", "mese:d_X"))
+    rename = {"ir:a_X": "ir:a", "ir:b_X": "ir:b", "mese:c_X": "mese:e", "mese:d_X": "mese:e"}
+    h = history.load_history(db, rename_series=lambda k: rename.get(k, k))
+    assert len(h) == 20
+    assert sorted(h["series"].unique()) == ["ir:a", "ir:b", "ir:b_X", "mese:c_X", "mese:d_X"]
+    # applied once: a later open with another rename changes nothing
+    h2 = history.load_history(db, rename_series=lambda k: k + "_again")
+    assert sorted(h2["series"].unique()) == sorted(h["series"].unique())
+
+
+def test_version_1_database_is_migrated_without_losing_rows(tmp_path):
+    """A database written before the model column existed (schema 1) opens as schema 2:
+    every row kept, the model taken from the series key's `model:` prefix."""
+    db = tmp_path / "old.sqlite"
+    rows = _v1_database(db, ("mese:sub-p_MESE", "mese-mono:sub-p_MESE", "IRT1"))
     h = history.load_history(db)
     assert len(h) == len(rows) == 12
     assert h.groupby("model").size().to_dict() == {"": 4, "mese": 4, "mese-mono": 4}
