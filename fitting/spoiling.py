@@ -34,12 +34,14 @@ Table
 from __future__ import annotations
 
 from functools import lru_cache
+from typing import TYPE_CHECKING
 
 import numpy as np
-import scipy.sparse as sp
-from scipy.linalg import solve_banded
 
 from fitting.signals import spgr_signal
+
+if TYPE_CHECKING:
+    import scipy.sparse as sp
 
 STATE_DECADES = 8
 MIN_STATES = 8
@@ -79,6 +81,7 @@ def _index(nmax: int):
 
 def _pulse(alpha_rad: float, nmax: int) -> sp.csr_matrix:
     """One pulse about the RF axis on the states, real 2×2-block form (slots of _index)."""
+    import scipy.sparse as sp   # here, not at the top: every fit process imports this module
     size = 6 * (nmax + 1)
     c2, s2 = np.cos(alpha_rad / 2) ** 2, np.sin(alpha_rad / 2) ** 2
     sa, ca = np.sin(alpha_rad), np.cos(alpha_rad)
@@ -98,6 +101,7 @@ def _pulse(alpha_rad: float, nmax: int) -> sp.csr_matrix:
 def _period(e2: float, increment_rad: float, nmax: int):
     """One TR after the pulse as (G, D): G relaxes (E2), ramps (n·Φ0) and shifts the F
     states (F_n → F_(n+1)); D ramps the Z states, which relax by E1·D (module docstring)."""
+    import scipy.sparse as sp
     size = 6 * (nmax + 1)
     k, f, fm, z = _index(nmax)
     ramp = np.exp(1j * k * increment_rad)
@@ -114,6 +118,8 @@ def steady_state(alpha_deg: float, t1: np.ndarray, t2: float, tr: float,
                  increment_deg: float) -> np.ndarray:
     """RF-spoiled steady-state magnitudes (M0 = 1) right after the pulse, one per T1 of
     ``t1`` (module docstring); all T1 values in one block-diagonal banded solve."""
+    import scipy.sparse as sp
+    from scipy.linalg import solve_banded
     t1 = np.atleast_1d(np.asarray(t1, float))
     nmax = n_states(tr, t2)
     p = _pulse(np.deg2rad(alpha_deg), nmax)

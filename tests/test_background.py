@@ -1,6 +1,8 @@
 """Background noise σ down to low SNR and the signal (object) mask (fitting/background.py)."""
 from __future__ import annotations
 
+import math
+
 import numpy as np
 import pytest
 import scipy.stats
@@ -109,3 +111,25 @@ def test_signal_mask_keeps_air_out_and_signal_in():
     rows = np.vstack([air[:3], np.full((1, 10), np.nan)])
     assert signal_mask(rows, 1.0)[-1]                       # non-finite: kept (BAD_DATA)
     assert signal_mask(rows, None).all()                    # no background: fit everything
+
+
+def test_brent_root_matches_scipy_brentq():
+    """The project's Brent root finder takes scipy.optimize.brentq's steps (reference
+    library): the same float for smooth, flat, kinked and the estimator's own functions."""
+    from scipy.optimize import brentq
+
+    from fitting.background import _h, brent_root
+    funcs = [(lambda x: x ** 3 - 2 * x - 5, 2.0, 3.0),
+             (lambda x: math.exp(x) - 10.0, -5.0, 7.0),
+             (lambda x: math.tanh(50 * (x - 0.3)), -1.0, 2.0),
+             (lambda x: abs(x - 1.0) ** 0.5 * math.copysign(1.0, x - 1.0), 0.0, 5.0),
+             (lambda x: (x - 0.5) * (1.0 + x * x), 0.0, 3.0)]
+    for n, mean in [(10, 4.0), (1, 0.3), (32, 20.0)]:
+        cut = 3.0 * n
+        funcs.append((lambda lt, n=n, mean=mean, cut=cut:
+                      math.exp(lt) * (n - _h(cut / math.exp(lt), n)) - mean,
+                      math.log(mean / n), math.log(cut) + 6.0))
+    for f, a, b in funcs:
+        for tol in (1e-12, 2e-12, 1e-6):
+            assert brent_root(f, a, b, xtol=tol, rtol=1e-12) == brentq(f, a, b, xtol=tol,
+                                                                       rtol=1e-12)
