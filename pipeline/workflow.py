@@ -394,6 +394,22 @@ def fit_params(cfg: dict, job_model: str, stem: str | None = None) -> dict:
             "options": model_options(cfg, job_model, stem)}
 
 
+SMALL_FIT_VOXELS = 131072   # a fit job on fewer voxels runs on one thread (fit_threads)
+
+
+def fit_threads(cfg: dict, plan_: Plan, wc) -> int:
+    """Threads of a ``fit`` or ``chunk`` job: ``fit.threads``, except 1 for a volume (or
+    chunk) of fewer than :data:`SMALL_FIT_VOXELS` voxels. Such a job spends its time
+    starting Python and loading the compiled code (about 1 s on one core) rather than
+    fitting, so two of them side by side finish sooner than each on two cores
+    (benchmarks/README.md: the demo). The maps do not depend on the thread count."""
+    job = plan_.job(wc.sub, wc.ses, wc.model, wc.stem)
+    chunk = getattr(wc, "chunk", None)
+    z0, z1 = job.slabs[int(chunk)] if chunk is not None else (0, job.shape[2])
+    voxels = job.shape[0] * job.shape[1] * (z1 - z0)
+    return 1 if voxels < SMALL_FIT_VOXELS else int(cfg["fit"]["threads"])
+
+
 def fit_command(cfg: dict, plan_: Plan, step: str, wc, input, output, threads: int,
                 log) -> str:
     """Shell command of a ``fit`` or ``chunk`` job (a separate process per job)."""

@@ -591,3 +591,23 @@ def test_qc_step_scan_session_judged_by_configured_ranges(tmp_path):
     # 0.80 s lies in [0.70, 0.95]; 1.50 s does not
     assert df.loc[1, "status"] == "pass" and df.loc[2, "status"] == "fail"
     assert summary["models"]["ir"]["exit_status"] == 1
+
+
+def test_fit_threads_one_for_small_volumes_and_chunks():
+    """Small fit jobs run on one thread (two side by side on two cores); large volumes and
+    large chunks get fit.threads."""
+    from types import SimpleNamespace
+
+    from pipeline.sessions import SeriesJob
+    small = SeriesJob("sub-a", "ses-1", "ir", "s", [], (40, 40, 12), [(0, 12)])
+    big = SeriesJob("sub-a", "ses-1", "ir", "b", [], (256, 256, 64), [(0, 32), (32, 64)])
+    jobs = {"s": small, "b": big}
+    plan_ = SimpleNamespace(job=lambda sub, ses, model, stem: jobs[stem])
+    cfg = {"fit": {"threads": 4}}
+    wc = lambda stem, **kw: SimpleNamespace(sub="sub-a", ses="ses-1", model="ir", stem=stem,  # noqa: E731
+                                            **kw)
+    assert W.fit_threads(cfg, plan_, wc("s")) == 1
+    assert W.fit_threads(cfg, plan_, wc("b")) == 4              # gathers 4M voxels' maps
+    assert W.fit_threads(cfg, plan_, wc("b", chunk="1")) == 4   # 2M voxels
+    big.slabs = [(0, 1), (1, 64)]
+    assert W.fit_threads(cfg, plan_, wc("b", chunk="0")) == 1   # one slice: 65 536 voxels

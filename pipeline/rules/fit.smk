@@ -12,7 +12,7 @@ rule fit_chunk:
         "logs/{sub}/{ses}/fit_{model}_{stem}_chunk-{chunk}.log",
     params:
         fit=lambda wc: W.fit_params(CFG, wc.model, wc.stem),
-    threads: CFG["fit"]["threads"]
+    threads: lambda wc: W.fit_threads(CFG, PLAN, wc)
     resources:
         mem_mb=CFG["fit"]["mem_mb"],
         runtime=CFG["fit"]["runtime"],
@@ -29,7 +29,7 @@ rule fit:
         "logs/{sub}/{ses}/fit_{model}_{stem}.log",
     params:
         fit=lambda wc: W.fit_params(CFG, wc.model, wc.stem),
-    threads: CFG["fit"]["threads"]
+    threads: lambda wc: W.fit_threads(CFG, PLAN, wc)
     resources:
         mem_mb=CFG["fit"]["mem_mb"],
         runtime=CFG["fit"]["runtime"],
