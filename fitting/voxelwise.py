@@ -36,6 +36,7 @@ or on the number of threads or processes.
 from __future__ import annotations
 
 import os
+import threading
 from concurrent.futures import ProcessPoolExecutor, ThreadPoolExecutor
 from dataclasses import dataclass, field
 from typing import Callable, Iterable, Iterator
@@ -180,16 +181,18 @@ def fit_voxels(spec: ModelSpec, x: np.ndarray, data: np.ndarray, fixed: Fixed,
 
 
 _THREADS: dict[int, ThreadPoolExecutor] = {}
+_THREADS_LOCK = threading.Lock()
 
 
 def _in_threads(fn, items: list, jobs: int) -> Iterator:
     """``map(fn, items)`` in order, on ``jobs`` threads (one reused pool per count)."""
     if jobs <= 1 or len(items) <= 1:
         return map(fn, items)
-    pool = _THREADS.get(jobs)
-    if pool is None:
-        pool = _THREADS[jobs] = ThreadPoolExecutor(max_workers=jobs,
-                                                  thread_name_prefix="relaxline-fit")
+    with _THREADS_LOCK:   # fit_voxels may be called from several threads at once
+        pool = _THREADS.get(jobs)
+        if pool is None:
+            pool = _THREADS[jobs] = ThreadPoolExecutor(max_workers=jobs,
+                                                      thread_name_prefix="relaxline-fit")
     return pool.map(fn, items)
 
 

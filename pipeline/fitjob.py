@@ -256,7 +256,8 @@ def fit_arrays(model: str | ModelSpec, series: Series, mask: np.ndarray | None =
     for e in spec.extra_outputs.values():     # vector outputs: one volume per axis point
         if e.axis is not None:
             out[e.suffix] = np.full(shape + (len(e.axis(x, fixed)),), np.nan, np.float32)
-    for zs in _z_slabs(series, z, SLAB_VOXELS):
+
+    def fit_slab(zs: slice) -> None:
         block = series.read(zs)
         oz = slice(zs.start - zr.start, zs.stop - zr.start)
         flat = block.reshape(-1, n)
@@ -286,7 +287,18 @@ def fit_arrays(model: str | ModelSpec, series: Series, mask: np.ndarray | None =
                 _put(out[e.suffix], oz, slab_shape, idx, res.extras[name])
         _put(out[keys[-2]], oz, slab_shape, idx, res.rmse)
         _put(out[STATUS_KEY], oz, slab_shape, idx, res.status)
-        del block, flat
+
+    slabs = list(_z_slabs(series, z, SLAB_VOXELS))
+    if jobs > 1 and len(slabs) > 1:
+        # two slabs in flight: the next slab's voxels keep the fit threads busy while this
+        # slab's refits and bookkeeping run in its own thread (each voxel's result is the
+        # same either way; the slabs write disjoint slices of the maps)
+        with ThreadPoolExecutor(max_workers=2, thread_name_prefix="relaxline-slab") as pool:
+            for _ in pool.map(fit_slab, slabs):
+                pass
+    else:
+        for zs in slabs:
+            fit_slab(zs)
     return out
 
 

@@ -2,6 +2,7 @@
 from __future__ import annotations
 
 import sys
+import threading
 import time
 from typing import TextIO
 
@@ -25,10 +26,15 @@ class Progress:
         self.tty = bool(getattr(self.stream, "isatty", lambda: False)())
         self._next_step = 10
         self._t0 = time.monotonic()
+        self._lock = threading.Lock()   # called from several threads (slabs fitted side by side)
 
     def __call__(self, n: int = 1) -> None:
         if not self.enabled:
             return
+        with self._lock:
+            self._report(n)
+
+    def _report(self, n: int) -> None:
         self.done = min(self.total, self.done + int(n))
         pct = 100.0 * self.done / self.total
         if self.tty:

@@ -17,6 +17,7 @@ import hashlib
 import json
 import math
 import re
+import threading
 import zlib
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -186,9 +187,10 @@ class Series:
         """
         z = z or slice(0, self.shape[2])
         if self.compressed:
-            if self._cache is None:
-                self._cache = self._read(slice(0, self.shape[2]))
-                self._cache.flags.writeable = False
+            with _DECOMPRESS_LOCK:   # slabs read from two threads: decompress once
+                if self._cache is None:
+                    self._cache = self._read(slice(0, self.shape[2]))
+                    self._cache.flags.writeable = False
             return self._cache[:, :, z]
         out = self._read(z)
         out.flags.writeable = False
@@ -223,6 +225,9 @@ class Series:
             if sc.is_file():
                 out.append({"path": str(sc), "sha256": sha256_file(sc)})
         return out
+
+
+_DECOMPRESS_LOCK = threading.Lock()
 
 
 def _read_proxy(img, path: Path, index: tuple) -> np.ndarray:
