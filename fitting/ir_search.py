@@ -121,6 +121,7 @@ def _search_block(ti, data, signed, lgrid, centred, weight, offsets, out):
     yc = np.empty(m)
     r_grid = np.empty(g)
     c_base = np.empty(g)
+    c_hyp = np.empty(g)
     for v in range(n):
         imin = 0
         for j in range(1, m):
@@ -128,12 +129,14 @@ def _search_block(ti, data, signed, lgrid, centred, weight, offsets, out):
                 imin = j
         k0 = 0 if signed else imin
         # Σ (e − ē)·y = Σ e·y_c of the pattern "first k0 negative" at every grid point;
-        # the other patterns differ from it in one or two points
+        # the other patterns differ from it in one or two points. The grid is the inner
+        # loop (vectorised by the compiler); each sum still adds its terms in TI order.
         for i in range(g):
-            c = 0.0
-            for j in range(m):
-                c += (-data[v, j] if j < k0 else data[v, j]) * centred[j, i]
-            c_base[i] = c
+            c_base[i] = 0.0
+        for j in range(m):
+            yj = -data[v, j] if j < k0 else data[v, j]
+            for i in range(g):
+                c_base[i] += yj * centred[j, i]
         best, best_ok = np.inf, False
         t1b, ab, bb = np.nan, np.nan, np.nan
         n_hyp = 1 if signed else offsets.size
@@ -152,13 +155,17 @@ def _search_block(ti, data, signed, lgrid, centred, weight, offsets, out):
             for j in range(m):
                 yc[j] = y[j] - ybar
                 yy += yc[j] * yc[j]
-            gi = 0
             lo, hi = min(k, k0), max(k, k0)
             for i in range(g):
-                c = c_base[i]
-                for j in range(lo, hi):
-                    c += 2.0 * y[j] * centred[j, i]   # y[j] flipped sign against the base
-                r_grid[i] = yy - c * c * weight[i]
+                c_hyp[i] = c_base[i]
+            for j in range(lo, hi):
+                yj2 = 2.0 * y[j]                      # y[j] flipped sign against the base
+                for i in range(g):
+                    c_hyp[i] += yj2 * centred[j, i]
+            for i in range(g):
+                r_grid[i] = yy - c_hyp[i] * c_hyp[i] * weight[i]
+            gi = 0
+            for i in range(1, g):
                 if r_grid[i] < r_grid[gi]:
                     gi = i
             u = lgrid[gi]
