@@ -33,7 +33,11 @@ SNR is M0/σ: M0 = 1 and σ = 1/SNR in every model (the signal of a fully relaxe
   T2, M0 and B1 are estimated. B1 = 1 exactly is not allowed as the truth: there the echo
   train is stationary in B1 (it is even in B1 − 1, see :mod:`fitting.t2_models`), so
   the Fisher information is singular and the bound infinite. With N free (no ``points``)
-  N and ESP are optimised together; without a budget or TR, ESP ≤ HI.
+  N and ESP are optimised together; without a budget or TR, ESP ≤ HI. With a
+  ``slice_profile`` (2D multi-slice) the train is the slice-profile EPG that ``fit mese
+  --slice-profile`` fits, summed over the profile's positions directly (no tables: each
+  candidate protocol has its own ESP); the symmetry about B1 = 1 is broken, so B1 = 1 is
+  allowed.
 
 For ir and vfa N is ``points``; if it is not given it follows from the budget (capped at
 ``MAX_POINTS``), else a default (8 TIs, 4 angles). Repeated values are allowed (the
@@ -47,6 +51,7 @@ from typing import Any, Sequence
 import numpy as np
 
 from fitting.errors import RelaxlineError
+from fitting.rfpulse import SliceProfile
 from fitting.spec import ModelSpec, get_model
 from fitting.uncertainty import crlb
 
@@ -90,6 +95,7 @@ class DesignProblem:
     max_train: float | None = None  # mese: longest echo train (s)
     grid_points: int = GRID_POINTS
     seed: int = 0
+    slice_profile: SliceProfile | None = None  # mese: 2D slice profile (fitting.rfpulse)
 
     @property
     def spec(self) -> ModelSpec:
@@ -139,14 +145,22 @@ def make_problem(model: str, lo: float, hi: float, *, points: int | None = None,
                  tr: float | None = None, snr: float = 50.0, budget: float | None = None,
                  lines: int = 1, b1: float | None = None, t1: float | None = None,
                  min_esp: float = MIN_ESP, grid_points: int = GRID_POINTS,
-                 seed: int = 0) -> DesignProblem:
+                 seed: int = 0, slice_profile: SliceProfile | str | None = None
+                 ) -> DesignProblem:
     """Validate a design request and fix N (see module docstring for the rules).
 
-    ``lo == hi`` designs for a single relaxation time. Raises RelaxlineError naming the
-    option at fault.
+    ``lo == hi`` designs for a single relaxation time. ``slice_profile`` (mese only): a
+    :class:`~fitting.rfpulse.SliceProfile` or ``sinc:TBW[:RATIO]`` for the nominal 90°/180°
+    pulses. Raises RelaxlineError naming the option at fault.
     """
     if model not in DESIGN_MODELS:
         raise _bad(f"design supports the models {', '.join(DESIGN_MODELS)}; got {model!r}.")
+    if slice_profile is not None and model != "mese":
+        raise _bad(f"--slice-profile applies to mese only (the echo train of a 2D "
+                   f"multi-slice acquisition), not to {model}.")
+    if slice_profile is not None:   # the model's own route from the option to the profile
+        slice_profile = get_model("mese").fixed_from_meta(
+            {}, {"slice_profile": slice_profile})["profile"]
     spec = get_model(model)
     if not (np.isfinite(lo) and np.isfinite(hi) and 0 < lo <= hi):
         raise _bad(f"--range {lo:g}:{hi:g}: need 0 < LO < HI (seconds of "
@@ -197,7 +211,7 @@ def make_problem(model: str, lo: float, hi: float, *, points: int | None = None,
         t1_true = 1.0
     else:
         b1_true = 0.9 if b1 is None else float(b1)
-        if abs(b1_true - 1.0) < 1e-3:
+        if abs(b1_true - 1.0) < 1e-3 and slice_profile is None:
             raise _bad("--b1 1 for mese: the echo train does not change to first order in B1 "
                        "at B1 = 1, so B1 (fitted) and the bound are undefined there; give the "
                        "expected B1 away from 1 (e.g. 0.9).")
@@ -221,7 +235,8 @@ def make_problem(model: str, lo: float, hi: float, *, points: int | None = None,
     return DesignProblem(model=model, lo=float(lo), hi=float(hi), snr=float(snr),
                          points=None if points is None else int(points), tr=tr, budget=budget,
                          lines=int(lines), b1=b1_true, t1=t1_true, min_esp=float(min_esp),
-                         max_train=max_train, grid_points=int(grid_points), seed=int(seed))
+                         max_train=max_train, grid_points=int(grid_points), seed=int(seed),
+                         slice_profile=slice_profile)
 
 
 # --------------------------------------------------------------------------- the bound
@@ -234,7 +249,10 @@ def acquisition(problem: DesignProblem, values: np.ndarray) -> tuple[np.ndarray,
         return x, {"signed": True}
     if problem.model == "vfa":
         return x, {"tr": problem.tr, "b1": problem.b1}
-    return x, {"refocus": 180.0, "excite": 90.0, "t1": problem.t1}
+    fixed: dict[str, Any] = {"refocus": 180.0, "excite": 90.0, "t1": problem.t1}
+    if problem.slice_profile is not None:   # few voxels, many protocols: no tables
+        fixed.update(profile=problem.slice_profile, profile_direct=True)
+    return x, fixed
 
 
 def truth(problem: DesignProblem, grid: np.ndarray) -> dict[str, np.ndarray]:
@@ -369,6 +387,7 @@ def simulate_cv(problem: DesignProblem, values: Sequence[float], grid: Sequence[
     g = np.asarray(grid, float)
     spec = problem.spec
     x, fixed = acquisition(problem, values)
+    fixed.pop("profile_direct", None)   # thousands of voxels at one protocol: the tables
     p = {k: np.repeat(v, trials) for k, v in truth(problem, g).items()}
     clean = spec.signal(x, p, fixed)
     rng = np.random.default_rng(seed)

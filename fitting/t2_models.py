@@ -74,7 +74,7 @@ from fitting.epg import cpmg_echoes, cpmg_echoes_jacobian
 from fitting.errors import RelaxlineError
 from fitting.rfpulse import SliceProfile, parse_sinc, sinc_profile
 from fitting.signals import mono_exp
-from fitting.sliceprofile import get_table, profile_echoes
+from fitting.sliceprofile import get_table, profile_echoes, profile_echoes_direct
 from fitting.spec import Fixed, Kernel, ModelSpec, Params, per_voxel, register
 
 T2_LOWER, T2_UPPER = 1e-3, 10.0     # s (also T2*)
@@ -204,8 +204,11 @@ def _train(x: np.ndarray, p: Params, fixed: Fixed, m0, derivs: bool):
     """The mese echo train: plain EPG, or the slice-profile EPG when ``fixed["profile"]``."""
     esp, b1, prof = echo_spacing(x), _mese_b1(p, fixed), fixed.get("profile")
     if prof is not None:
-        return profile_echoes(x.size, esp, p["T2"], fixed["t1"], b1, fixed["refocus"],
-                              fixed["excite"], prof, m0=m0, derivs=derivs)
+        # "profile_direct": sum the positions' trains instead of building tables, for
+        # callers that evaluate few voxels at many protocols (relaxline design)
+        f = profile_echoes_direct if fixed.get("profile_direct") else profile_echoes
+        return f(x.size, esp, p["T2"], fixed["t1"], b1, fixed["refocus"], fixed["excite"],
+                 prof, m0=m0, derivs=derivs)
     f = cpmg_echoes_jacobian if derivs else cpmg_echoes
     return f(x.size, esp, p["T2"], fixed["t1"], b1=b1, refocus_deg=fixed["refocus"],
              excite_deg=fixed["excite"], m0=m0)

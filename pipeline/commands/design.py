@@ -33,6 +33,7 @@ model parameter estimated (M0, inversion or saturation efficiency, B1 included).
         --budget (the budget is the train duration) and in --tr when given. True B1 =
         --b1 (default 0.9; at exactly 1 the train is stationary in B1 and the bound is
         undefined), T1 = --t1. Without --points, N and ESP are optimised together.
+        2D multi-slice: give --slice-profile (the profile raises the bound 2-3 times).
 
 SNR is M0/σ: the signal of a fully relaxed, 90°-excited voxel over the noise sd of one
 image. The proposal is never predicted worse than the starting protocol or than a
@@ -76,6 +77,9 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
                    help="mese: assumed T1 in seconds (default max(1, HI))")
     p.add_argument("--min-esp", type=float, default=0.005, metavar="S",
                    help="mese: shortest echo spacing in seconds (default 0.005)")
+    p.add_argument("--slice-profile", metavar="SPEC",
+                   help="mese, 2D multi-slice: the slice profile, as for `relaxline fit mese` "
+                        "(sinc:TBW[:RATIO] or a TSV file)")
     p.add_argument("--verify", action="store_true",
                    help="check the predictions by Monte Carlo with the fast fitting engine")
     p.add_argument("--trials", type=int, default=1000, metavar="N",
@@ -167,9 +171,15 @@ def run(args: argparse.Namespace) -> int:
                          f" must be shorter than --tr {args.tr:g} s.")
     if args.plot and not args.plot.lower().endswith(".png"):
         raise InputError(f"--plot {args.plot}: the figure is a PNG; give a name ending .png.")
+    profile = None
+    if args.slice_profile is not None:
+        from pipeline.profiles import check_spec, is_file_spec, read_profile
+        check_spec(args.slice_profile)
+        profile = read_profile(args.slice_profile) if is_file_spec(args.slice_profile) \
+            else args.slice_profile
     problem = make_problem(model, lo, hi, points=args.points, tr=args.tr, snr=args.snr,
                            budget=args.budget, lines=args.lines, b1=args.b1, t1=args.t1,
-                           min_esp=args.min_esp, seed=args.seed)
+                           min_esp=args.min_esp, seed=args.seed, slice_profile=profile)
     result = design(problem, compare)
     unit = UNITS[model]
     sim = None
@@ -192,7 +202,10 @@ def run(args: argparse.Namespace) -> int:
         "constraints": {"tr_s": problem.tr, "budget_s": problem.budget, "lines": problem.lines,
                         "points": problem.points, "b1": problem.b1,
                         **({"t1_s": problem.t1, "min_esp_s": problem.min_esp,
-                            "max_train_s": problem.max_train} if model == "mese" else {})},
+                            "max_train_s": problem.max_train,
+                            "slice_profile": problem.slice_profile.source
+                            if problem.slice_profile is not None else None}
+                           if model == "mese" else {})},
         "start": _protocol_dict(model, result.start, unit),
         "compared": ({} if result.compared is None else
                      {**_protocol_dict(model, result.compared, unit),
@@ -235,8 +248,9 @@ def _print_text(out: dict, sim) -> None:
     w = sys.stdout.write
     unit = out["proposed"]["unit"]
     what = out["parameter"]
+    prof = out["constraints"].get("slice_profile")
     w(f"relaxline design {out['model']}: {what} range {out['range'][0]:g}–{out['range'][1]:g} s, "
-      f"SNR {out['snr']:g} (M0/σ)\n")
+      f"SNR {out['snr']:g} (M0/σ)" + (f", slice profile {prof}" if prof else "") + "\n")
     w(f"proposed ({out['proposed']['n_points']} points, {unit}): "
       f"{', '.join(f'{v:g}' for v in out['proposed']['values'])}\n")
     if "esp_s" in out["proposed"]:
