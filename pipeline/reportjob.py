@@ -107,6 +107,9 @@ def _findings(sess: list[dict], latest: set[str], current, warn_latest) -> tuple
     return rej, fails, warns
 
 
+NO_REFERENCE = "no reference values (statistics only)"
+
+
 def step_report(cfg: dict, summaries: Sequence[str], report: str, status: str,
                 drift_tsv: str) -> None:
     """Drift rules over the whole history, trend figures, the report and status.json."""
@@ -151,18 +154,19 @@ def step_report(cfg: dict, summaries: Sequence[str], report: str, status: str,
             c = m["counts"]
             n_rej = int(((rejected["session"] == s["session"]) & (rejected["model"] == model)
                          & (rejected["site"] == s["site"])).sum()) if len(rejected) else 0
+            judged = sum(c.get(k, 0) for k in ("pass", "warn", "fail"))
+            unjudged = not judged and sum(c.values()) > 0   # statistics, no reference
             failing = ", ".join(dict.fromkeys(f["vial"] for f in m.get("failing", []))) or \
                 ("vials not placed" if not m["roi_stats"] else "")
             rows.append({"session": s["session"], "model": model, "n_pass": c.get("pass", 0),
                          "n_warn": c.get("warn", 0), "n_fail": c.get("fail", 0),
-                         "failing": failing, "rejections": n_rej,
+                         "judged": not unjudged,
+                         "failing": NO_REFERENCE if unjudged else failing, "rejections": n_rej,
                          "temperature": m.get("temperature"),
                          "temperature_source": m.get("temperature_source", ""), "href": href})
-            judged = sum(c.get(k, 0) for k in ("pass", "warn", "fail"))
             lines.append(f"{s['sub']}/{s['ses']} {model}: " + (
-                f"{c.get('pass', 0)} pass, {c.get('warn', 0)} warn, {c.get('fail', 0)} fail"
-                if judged or not sum(c.values()) else
-                f"{sum(c.values())} vial/map results, no reference values (statistics only)")
+                f"{sum(c.values())} vial/map results, {NO_REFERENCE}" if unjudged else
+                f"{c.get('pass', 0)} pass, {c.get('warn', 0)} warn, {c.get('fail', 0)} fail")
                          + (f"; failing: {failing}" if failing else "")
                          + (f"; {n_rej} drift rejection(s)" if n_rej else ""))
     atomic_write_tsv(drift_tsv, violations)

@@ -107,7 +107,8 @@ def sessions_html(rows: pd.DataFrame) -> str:
     """Session × model table: counts, failing vials, drift rejections, temperature, link.
 
     ``rows`` columns: session, model, n_pass, n_warn, n_fail, failing, rejections,
-    temperature, temperature_source, href (relative link to the session page, may be empty).
+    temperature, temperature_source, href (relative link to the session page, may be empty),
+    and optionally judged (False: no reference values, the counts are shown as "–").
     """
     if rows.empty:
         return "<p>No session.</p>"
@@ -125,9 +126,10 @@ def sessions_html(rows: pd.DataFrame) -> str:
             else f"{float(r.temperature):.1f}"
         fail_cls = ' class="fail"' if r.n_fail else ""
         rej_cls = ' class="fail"' if r.rejections else ""
+        counts = (r.n_pass, r.n_warn, r.n_fail) if getattr(r, "judged", True) else ("–",) * 3
         body.append(
             f'<tr><td class="t">{ses}</td><td class="t">{esc(r.model)}</td>'
-            f"<td>{r.n_pass}</td><td>{r.n_warn}</td><td{fail_cls}>{r.n_fail}</td>"
+            f"<td>{counts[0]}</td><td>{counts[1]}</td><td{fail_cls}>{counts[2]}</td>"
             f'<td class="t note">{esc(r.failing)}</td><td{rej_cls}>{r.rejections}</td>'
             f'<td>{t}</td><td class="t note">{esc(r.temperature_source)}</td></tr>')
     return f"<table><thead>{head}</thead><tbody>{''.join(body)}</tbody></table>"

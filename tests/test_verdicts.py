@@ -131,3 +131,22 @@ def test_step_in_one_vial_is_rejected_and_named(history):
     assert {r["label"] for r in status["drift_rejections_latest"]} == {7}
     assert re.search(rf"{new} ir: .*1 drift rejection", log)
     assert "verdict: DRIFT REJECTION (exit status 1)" in log
+
+
+def test_sessions_table_shows_unjudged_models_as_statistics_only():
+    # a model without reference values (dam, megre in the demo) has statistics but no
+    # pass/warn/fail: the table says so instead of "0 0 0"
+    import pandas as pd
+    from pipeline.reportjob import NO_REFERENCE
+    from qc.verdict import sessions_html
+    rows = pd.DataFrame([
+        {"session": "1", "model": "ir", "n_pass": 12, "n_warn": 0, "n_fail": 0, "judged": True,
+         "failing": "", "rejections": 0, "temperature": 20.0, "temperature_source": "",
+         "href": ""},
+        {"session": "1", "model": "dam", "n_pass": 0, "n_warn": 0, "n_fail": 0,
+         "judged": False, "failing": NO_REFERENCE, "rejections": 0, "temperature": 20.0,
+         "temperature_source": "", "href": ""}])
+    page = sessions_html(rows)
+    dam = page[page.index(">dam<"):]
+    assert dam.count("<td>–</td>") == 3 and NO_REFERENCE in dam
+    assert "<td>12</td>" in page[:page.index(">dam<")]
