@@ -8,6 +8,7 @@ constants (TR, angles) are bound when the model is built; per-voxel constants
 from __future__ import annotations
 
 import inspect
+import sys
 from typing import Any
 
 import numpy as np
@@ -15,8 +16,32 @@ import numpy as np
 from fitting.spec import Fixed, ModelSpec
 
 
+# lmfit imports these optional packages only for its plots and its JSON form of data
+# frames, which relaxline never uses; a fit process that needs lmfit for a few refits
+# would spend 0.15-0.7 s importing them (measured)
+_LMFIT_OPTIONAL = ("pandas", "matplotlib")
+
+
+def import_lmfit():
+    """``lmfit``, imported (once per process) without pandas and matplotlib unless they
+    are loaded already: while lmfit is imported they are hidden (their import fails,
+    which lmfit handles), then made importable again."""
+    if "lmfit" in sys.modules:
+        return sys.modules["lmfit"]
+    hidden = [m for m in _LMFIT_OPTIONAL if m not in sys.modules]
+    for m in hidden:
+        sys.modules[m] = None        # an import of m now raises ImportError
+    try:
+        import lmfit
+    finally:
+        for m in hidden:
+            if sys.modules.get(m, 0) is None:
+                del sys.modules[m]
+    return lmfit
+
+
 def _model_class():
-    import lmfit
+    lmfit = import_lmfit()
 
     class SpecModel(lmfit.Model):
         """lmfit Model whose function, bounds and guess come from a ModelSpec."""

@@ -49,7 +49,7 @@ import numpy as np
 
 from fitting import status as st
 from fitting.errors import RelaxlineError
-from fitting.lmfit_models import build_model, voxel_kwargs
+from fitting.lmfit_models import build_model, import_lmfit, voxel_kwargs
 from fitting.spec import Fixed, ModelSpec, get_model, subset_fixed
 from fitting.voxelwise import bad_data, fit_voxels
 
@@ -240,7 +240,7 @@ def profile_intervals(res, free: Sequence[str], stderr: Mapping[str, float], kno
     cannot be traced (no standard error, no degrees of freedom, or lmfit gives up)."""
     import warnings
 
-    import lmfit
+    lmfit = import_lmfit()
     nan = (float("nan"), float("nan"))
     out = {k: {f"{s}sigma": nan for s in SIGMAS} for k in free}
     ok = [k for k in free if stderr.get(k) is not None and np.isfinite(stderr[k])

@@ -232,3 +232,16 @@ def test_spec_variant_without_efficiency_is_fit_by_same_engine(ir):
     y = np.abs(ir_signal(TI, np.array([0.3, 1.2]), 2.0, 1.0, TR, 90.0))
     res = fit_voxels(two, TI, y, fixed)
     assert np.allclose(res.params["T1"], [0.3, 1.2], rtol=1e-6)
+
+
+def test_lmfit_imported_without_pandas_and_matplotlib():
+    """A fit process imports lmfit for its refits without pandas and matplotlib, which
+    stay importable afterwards (a fresh interpreter: the test process has them loaded)."""
+    import subprocess
+    import sys
+    code = ("import sys; from fitting.lmfit_models import import_lmfit; lm = import_lmfit(); "
+            "assert 'pandas' not in sys.modules and 'matplotlib' not in sys.modules; "
+            "assert lm.Model is not None; import pandas, matplotlib; print('ok')")
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
+                         timeout=120)
+    assert out.returncode == 0 and out.stdout.strip() == "ok", out.stderr
