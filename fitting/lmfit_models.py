@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import inspect
 import sys
+import threading
 from typing import Any
 
 import numpy as np
@@ -22,21 +23,26 @@ from fitting.spec import Fixed, ModelSpec
 _LMFIT_OPTIONAL = ("pandas", "matplotlib")
 
 
+_IMPORT_LOCK = threading.Lock()
+
+
 def import_lmfit():
     """``lmfit``, imported (once per process) without pandas and matplotlib unless they
     are loaded already: while lmfit is imported they are hidden (their import fails,
-    which lmfit handles), then made importable again."""
-    if "lmfit" in sys.modules:
-        return sys.modules["lmfit"]
-    hidden = [m for m in _LMFIT_OPTIONAL if m not in sys.modules]
-    for m in hidden:
-        sys.modules[m] = None        # an import of m now raises ImportError
-    try:
-        import lmfit
-    finally:
-        for m in hidden:
-            if sys.modules.get(m, 0) is None:
-                del sys.modules[m]
+    which lmfit handles), then made importable again. Thread-safe (slabs are fitted in
+    threads side by side): a second caller waits for the first import to finish."""
+    with _IMPORT_LOCK:
+        if "lmfit" not in sys.modules:
+            hidden = [m for m in _LMFIT_OPTIONAL if m not in sys.modules]
+            for m in hidden:
+                sys.modules[m] = None        # an import of m now raises ImportError
+            try:
+                import lmfit  # noqa: F401
+            finally:
+                for m in hidden:
+                    if sys.modules.get(m, 0) is None:
+                        del sys.modules[m]
+    import lmfit
     return lmfit
 
 

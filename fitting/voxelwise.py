@@ -308,9 +308,10 @@ _PROCESSES: dict[int, ProcessPoolExecutor] = {}
 
 def _process_pool(jobs: int) -> ProcessPoolExecutor:
     """One pool of ``jobs`` worker processes per process, started on first use."""
-    pool = _PROCESSES.get(jobs)
-    if pool is None:
-        pool = _PROCESSES[jobs] = ProcessPoolExecutor(max_workers=jobs)
+    with _THREADS_LOCK:   # slabs refit from two threads
+        pool = _PROCESSES.get(jobs)
+        if pool is None:
+            pool = _PROCESSES[jobs] = ProcessPoolExecutor(max_workers=jobs)
     return pool
 
 

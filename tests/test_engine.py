@@ -245,3 +245,19 @@ def test_lmfit_imported_without_pandas_and_matplotlib():
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
                          timeout=120)
     assert out.returncode == 0 and out.stdout.strip() == "ok", out.stderr
+
+
+def test_lmfit_import_from_two_threads_at_once():
+    """Two slabs refit side by side: both threads get the fully imported lmfit (a second
+    caller must not see the module half-initialised)."""
+    import subprocess
+    import sys
+    code = ("import threading; from fitting.lmfit_models import import_lmfit\n"
+            "got = []\n"
+            "ts = [threading.Thread(target=lambda: got.append(import_lmfit().Model)) "
+            "for _ in range(4)]\n"
+            "[t.start() for t in ts]; [t.join() for t in ts]\n"
+            "assert len(got) == 4 and all(g is got[0] for g in got); print('ok')")
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
+                         timeout=120)
+    assert out.returncode == 0 and out.stdout.strip() == "ok", out.stderr
