@@ -76,7 +76,6 @@ def timed_child(argv: list[str], ok: tuple[int, ...] = (0,)) -> dict:
     res = run_child(argv, ok=ok)
     after = resource.getrusage(resource.RUSAGE_CHILDREN)
     res["cpu"] = (after.ru_utime - before.ru_utime) + (after.ru_stime - before.ru_stime)
-    res["maxrss_kb"] = after.ru_maxrss
     return res
 
 

@@ -33,12 +33,9 @@ def noisy(clean: np.ndarray, snr: float, n: int, seed: int, complex_data: bool =
 
 def bias_pct(truth: np.ndarray, est: np.ndarray, n: int) -> np.ndarray:
     """Percent bias of the mean estimate per vial (estimates grouped by vial, ``n`` each);
-    non-finite estimates are left out (counted by :func:`failed`)."""
+    non-finite estimates are left out."""
     e = np.asarray(est, float).reshape(truth.size, n)
     with np.errstate(invalid="ignore"), warnings.catch_warnings():
         warnings.simplefilter("ignore", RuntimeWarning)     # a vial without any estimate
         return 100.0 * (np.nanmean(e, axis=1) / truth - 1.0)
 
-
-def failed(est: np.ndarray, truth: np.ndarray, n: int) -> np.ndarray:
-    return np.sum(~np.isfinite(np.asarray(est, float).reshape(truth.size, n)), axis=1)

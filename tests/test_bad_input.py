@@ -46,11 +46,6 @@ def mp2rage_pair(k: Kit, change, both: bool = True, magnitude: bool = False) -> 
     return [one, two]
 
 
-def zeros_series(k: Kit) -> str:
-    return str(write_4d(k.tmp / "in", "x", np.ones((4, 4, 1, 1), np.float32),
-                        "InversionTime", [0.1]))
-
-
 CASES: dict[str, tuple[Callable[[Kit], list[str]], str]] = {
     # ---- input files
     "input is a folder": (lambda k: fit("ir", str(k.anat)), "anat: expected a NIfTI"),

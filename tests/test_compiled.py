@@ -117,11 +117,6 @@ def test_compiled_engine_gives_the_numpy_engines_maps(name, options):
     np.testing.assert_allclose(fast.rmse[ok], ref.rmse[ok], rtol=1e-6)
 
 
-def test_every_registered_model_has_a_case():
-    for name in model_names():
-        _case(name)
-
-
 @pytest.mark.parametrize("name", ["ir", "megre"])
 def test_compiled_results_do_not_depend_on_block_size_or_threads(name, monkeypatch):
     spec, x, y, fixed = _data(name)

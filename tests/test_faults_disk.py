@@ -7,8 +7,6 @@ files) and never cost the history database its rows.
 """
 from __future__ import annotations
 
-import hashlib
-import json
 import os
 import subprocess
 import uuid

@@ -8,7 +8,6 @@ from accuracy import VIAL_T1, bias_pct, noisy
 from bloch_more import afi_pair, mp2rage_pair
 from fitting import status as st
 from fitting.errors import RelaxlineError
-from fitting.mp2rage import uniform_image
 from fitting.spec import configure_model, get_model
 from fitting.voxelwise import fit_voxels
 
@@ -111,8 +110,8 @@ def test_mp2rage_noiseless_identity(mp_clean):
     np.testing.assert_allclose(res.params["T1"][1:], VIAL_T1[1:], rtol=1e-6)
     np.testing.assert_allclose(res.params["M0"][1:], 1.0, rtol=1e-6)
     # UNI = GRE1·GRE2/(GRE1² + GRE2²) of the simulated pair (Marques et al. 2010, eq. 3)
-    np.testing.assert_allclose(res.extras["UNI"], uniform_image(mp_clean[:, 0], mp_clean[:, 1]),
-                               rtol=1e-9)
+    g1, g2 = mp_clean.T
+    np.testing.assert_allclose(res.extras["UNI"], g1 * g2 / (g1 ** 2 + g2 ** 2), rtol=1e-9)
 
 
 def test_mp2rage_uniform_image_free_of_m0_and_phase(mp_clean):
@@ -201,3 +200,20 @@ def test_afi_bad_protocols(x, meta, match):
     spec = get_model("afi")
     with pytest.raises(RelaxlineError, match=match):
         spec.validate(np.asarray(x), spec.fixed_from_meta(meta, {}))
+
+
+# --------------------------------------------------------------------------- simulators' models
+def test_afi_signals_match_the_simulation(afi_clean):
+    # the forward pair `relaxline simulate` writes, against the pulse-by-pulse steady
+    # state of the interleaved sequence (tests/bloch_more.py)
+    from fitting.afi import afi_signals
+    amp = -np.expm1(-AFI_TR[0] / VIAL_T1)            # A = M0·(1 − e^(−TR1/T1)), M0 = 1
+    got = afi_signals(AFI_TR, AFI_B1, amp[:, None], AFI_ALPHA, VIAL_T1[:, None])
+    np.testing.assert_allclose(got.reshape(afi_clean.shape), afi_clean, atol=1e-12)
+
+
+def test_mp2rage_signals_match_the_simulation(mp_clean):
+    from fitting.mp2rage import Protocol, mp2rage_signals
+    prot = Protocol(tis=tuple(MP_TI), alphas=(4.0, 5.0), tau=0.007, tr=5.0, n=160,
+                    n_before=80, eff=MP_EFF)
+    np.testing.assert_allclose(mp2rage_signals(VIAL_T1, prot), mp_clean, atol=1e-12)

@@ -153,16 +153,6 @@ def test_sr_bias_per_vial(sr_clean, snr, limit_pct):
     assert np.max(np.abs(bias)) < limit_pct, bias
 
 
-def test_sr_ideal_saturation_model_is_biased(sr_clean):
-    """Fitted with η fixed at 1 (the two-parameter model) the same data give biased T1."""
-    from scipy.optimize import curve_fit
-
-    def two(td, t1, m0):    # S = M0·(1 − e^(−TD/T1)), common practice
-        return m0 * (1 - np.exp(-td / t1))
-    t1s = [curve_fit(two, SD, s, p0=[1.0, s[-1]])[0][0] for s in sr_clean[4:8]]
-    assert np.min(np.abs(np.array(t1s) / VIAL_T1[4:8] - 1)) > 0.02
-
-
 # --------------------------------------------------------------------------- validation
 @pytest.mark.parametrize("model, meta, options, x, match", [
     ("looklocker", {}, {"ll_correction": "readout"}, [0.1, 0.2, 0.3],
