@@ -42,8 +42,7 @@ def import_lmfit():
                 for m in hidden:
                     if sys.modules.get(m, 0) is None:
                         del sys.modules[m]
-    import lmfit
-    return lmfit
+    return sys.modules["lmfit"]
 
 
 def _model_class():

@@ -46,12 +46,6 @@ from numpy.typing import ArrayLike
 from fitting.signals import _prep
 
 
-def ll_signal_ab(ti: ArrayLike, t1star: ArrayLike, a: ArrayLike, b: ArrayLike) -> np.ndarray:
-    """Look-Locker recovery S(TI) = A − B·e^(−TI/T1*) (Deichmann & Haase 1992), signed."""
-    ti, (t1s, a, b) = _prep(ti, t1star, a, b)
-    return a - b * np.exp(-ti / t1s)
-
-
 def ll_t1_from_ab(t1star: ArrayLike, a: ArrayLike, b: ArrayLike) -> np.ndarray:
     """The Look-Locker correction T1 = T1*·(B/A − 1) (Deichmann & Haase 1992,
     J Magn Reson 96:608; Messroghli et al. 2004, Magn Reson Med 52:141)."""

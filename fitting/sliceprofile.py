@@ -46,6 +46,7 @@ from numpy.typing import ArrayLike
 
 from fitting.dictionary import EpgDictionary, T1_NODE_FACTOR, t1_nodes
 from fitting.epg import _trains
+from fitting.gridtables import grid_derivative, hermite
 from fitting.rfpulse import SliceProfile
 
 # Table grid: u = ln T2 over the fit's T2 bounds, B1 over its bounds, each with one
@@ -55,22 +56,6 @@ B1_RANGE = (0.2, 1.8)
 U_STEP = 0.1
 B1_STEP = 0.01
 THETA_STEP = 0.01
-
-
-def _hermite(s: np.ndarray):
-    """Cubic Hermite basis (h00, h10, h01, h11) at s and its derivative in s."""
-    s2, s3 = s * s, s * s * s
-    val = (2 * s3 - 3 * s2 + 1, s3 - 2 * s2 + s, -2 * s3 + 3 * s2, s3 - s2)
-    der = (6 * s2 - 6 * s, 3 * s2 - 4 * s + 1, -6 * s2 + 6 * s, 3 * s2 - 2 * s)
-    return val, der
-
-
-def _d_db(f: np.ndarray, h: float) -> np.ndarray:
-    """∂f/∂B1 along axis 1 of a uniform grid: fourth-order central differences inside,
-    second-order one-sided (numpy.gradient) on the two nodes at each end."""
-    d = np.gradient(f, h, axis=1, edge_order=2)
-    d[:, 2:-2] = (f[:, :-4] - 8 * f[:, 1:-3] + 8 * f[:, 3:-1] - f[:, 4:]) / (12 * h)
-    return d
 
 
 def _weights(profile: SliceProfile, excite_deg: float, refocus_deg: float) -> np.ndarray:
@@ -141,7 +126,7 @@ class ProfileTable:
         # Hermite for G (with dG/dθ), 4-point Lagrange for dG/du (no d²G/du dθ needed)
         nb, nt = self.b.size, theta.size
         k = np.minimum((th_r / THETA_STEP).astype(int), nt - 2)
-        (h00, h10, h01, h11), _ = _hermite(th_r / THETA_STEP - k)
+        (h00, h10, h01, h11), _ = hermite(th_r / THETA_STEP - k)
         amp = w * np.sin(th_e)                                            # (nb, P)
         rows = np.repeat(np.arange(nb), th_r.shape[1])
 
@@ -159,7 +144,7 @@ class ProfileTable:
         s_u = apply(self._lagrange(th_r, k, amp, nt), g_u)
         # ∂/∂B1 of both along the B1 grid by fourth-order differences (the profile-summed
         # train is smooth in B1; the fit uses the interpolant's own derivatives)
-        s_b, s_ub = _d_db(s, B1_STEP), _d_db(s_u, B1_STEP)
+        s_b, s_ub = grid_derivative(s, B1_STEP, 1), grid_derivative(s_u, B1_STEP, 1)
         # float32 storage halves the memory; its rounding (6e-8) is far below the interpolation's
         self.tab = np.ascontiguousarray(np.stack([s, s_u, s_b, s_ub], axis=2), dtype=np.float32)
         self._dictionary: EpgDictionary | None = None
@@ -188,8 +173,8 @@ class ProfileTable:
         fb = (b - self.b[0]) / B1_STEP
         i = np.clip(np.floor(fu), 0, self.u.size - 2).astype(int)
         j = np.clip(np.floor(fb), 0, self.b.size - 2).astype(int)
-        (a0, a1, a2, a3), (da0, da1, da2, da3) = _hermite(fu - i)
-        (c0, c1, c2, c3), (dc0, dc1, dc2, dc3) = _hermite(fb - j)
+        (a0, a1, a2, a3), (da0, da1, da2, da3) = hermite(fu - i)
+        (c0, c1, c2, c3), (dc0, dc1, dc2, dc3) = hermite(fb - j)
         hu, hb = U_STEP, B1_STEP
         # per corner: weights of (S, S_u, S_b, S_ub) for the value, d/du and d/dB1
         us = ((a0, a1 * hu, da0 / hu, da1), (a2, a3 * hu, da2 / hu, da3))

@@ -38,6 +38,7 @@ from typing import TYPE_CHECKING
 
 import numpy as np
 
+from fitting.gridtables import grid_derivative, hermite
 from fitting.signals import spgr_signal
 
 if TYPE_CHECKING:
@@ -139,14 +140,6 @@ def steady_state(alpha_deg: float, t1: np.ndarray, t2: float, tr: float,
     return np.hypot(y[:, 0], y[:, 1])             # F_0 (slot 0)
 
 
-def _hermite(s: np.ndarray):
-    """Cubic Hermite basis (h00, h10, h01, h11) at s, and its derivative in s."""
-    s2, s3 = s * s, s * s * s
-    val = (2 * s3 - 3 * s2 + 1, s3 - 2 * s2 + s, -2 * s3 + 3 * s2, s3 - s2)
-    der = (6 * s2 - 6 * s, 3 * s2 - 4 * s + 1, -6 * s2 + 6 * s, 3 * s2 - 2 * s)
-    return val, der
-
-
 class SpoilingTable:
     """r(α, T1) = S_RF/S_ideal on the (α, ln T1) grid of one TR, assumed T2 and Φ0.
 
@@ -164,9 +157,9 @@ class SpoilingTable:
         for i, a in enumerate(self.alpha[1:], start=1):
             ideal = spgr_signal(np.array([a]), t1, 1.0, self.tr)[:, 0]
             r[i] = steady_state(a, t1, self.t2, self.tr, self.increment) / ideal
-        r_a = _grid_derivative(r, ALPHA_STEP, 0)
-        r_u = _grid_derivative(r, U_STEP, 1)
-        self.tab = np.stack([r, r_a, r_u, _grid_derivative(r_a, U_STEP, 1)], axis=2)
+        r_a = grid_derivative(r, ALPHA_STEP, 0)
+        r_u = grid_derivative(r, U_STEP, 1)
+        self.tab = np.stack([r, r_a, r_u, grid_derivative(r_a, U_STEP, 1)], axis=2)
 
     def evaluate(self, alpha_deg: np.ndarray, t1: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         """r and ∂r/∂T1 at actual angles ``alpha_deg`` and ``t1`` (broadcast together)."""
@@ -176,8 +169,8 @@ class SpoilingTable:
         fu = np.clip((u - self.u[0]) / U_STEP, 0.0, self.u.size - 1.0)
         i = np.minimum(fa.astype(int), self.alpha.size - 2)
         j = np.minimum(fu.astype(int), self.u.size - 2)
-        (a0, a1, a2, a3), _ = _hermite(fa - i)
-        (c0, c1, c2, c3), (d0, d1, d2, d3) = _hermite(fu - j)
+        (a0, a1, a2, a3), _ = hermite(fa - i)
+        (c0, c1, c2, c3), (d0, d1, d2, d3) = hermite(fu - j)
         ha, hu = ALPHA_STEP, U_STEP
         wa = ((a0, a1 * ha), (a2, a3 * ha))
         wu = ((c0, c1 * hu, d0 / hu, d1), (c2, c3 * hu, d2 / hu, d3))
@@ -191,16 +184,6 @@ class SpoilingTable:
                 dr += av * uvd * q[..., 0] + ad * uvd * q[..., 1] + av * udd * q[..., 2] \
                     + ad * udd * q[..., 3]
         return r, dr / t
-
-
-def _grid_derivative(f: np.ndarray, h: float, axis: int) -> np.ndarray:
-    """Derivative along ``axis`` of a uniform grid: fourth-order central differences
-    inside, second-order (numpy.gradient) on the two nodes at each end."""
-    d = np.gradient(f, h, axis=axis, edge_order=2)
-    g = np.moveaxis(f, axis, 0)
-    inner = (g[:-4] - 8 * g[1:-3] + 8 * g[3:-1] - g[4:]) / (12 * h)
-    np.moveaxis(d, axis, 0)[2:-2] = inner
-    return d
 
 
 @lru_cache(maxsize=8)

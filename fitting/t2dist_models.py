@@ -28,7 +28,7 @@ import numpy as np
 from fitting import status as st
 from fitting.errors import RelaxlineError
 from fitting.spec import ExtraOutput, Fixed, ModelSpec, Params, Solved, register
-from fitting.t2_models import T1_FIXED_DEFAULT, _mese_validate, _profile, echo_spacing
+from fitting.t2_models import _mese_fixed, _mese_validate, echo_spacing
 from fitting.t2dist import (B1_MIN, SUB_BATCH, basis, fit_distribution, linear_stderr,
                             summaries)
 
@@ -39,16 +39,10 @@ MIN_ECHOES = 8
 
 
 def _fixed(meta: Mapping[str, Any], options: Mapping[str, Any]) -> Fixed:
-    t1 = options.get("t1_fixed")
+    """mese's constants (angles, T1, slice profile) and the short-T2 cutoff."""
     cut = options.get("short_t2_cutoff")
-    fixed = {"refocus": float(meta.get("RefocusingFlipAngle", 180.0)),
-             "excite": float(meta.get("FlipAngle", 90.0)),
-             "t1": T1_FIXED_DEFAULT if t1 is None else float(t1),
-             "cutoff": SHORT_T2_CUTOFF if cut is None else float(cut)}
-    prof = options.get("slice_profile")
-    if prof is not None and prof is not False:
-        fixed["profile"] = _profile(prof, fixed)
-    return fixed
+    return {**_mese_fixed(meta, options),
+            "cutoff": SHORT_T2_CUTOFF if cut is None else float(cut)}
 
 
 def _validate(x: np.ndarray, fixed: Fixed) -> None:

@@ -35,17 +35,16 @@ or on the number of threads or processes.
 """
 from __future__ import annotations
 
-import os
 import threading
 from concurrent.futures import ProcessPoolExecutor, ThreadPoolExecutor
 from dataclasses import dataclass, field
-from typing import Callable, Iterable, Iterator
+from typing import Callable, Iterator
 
 import numpy as np
 
 from fitting import status as st
 from fitting.errors import RelaxlineError
-from fitting.lm import FTOL, LAM0, XTOL, jacobian, levenberg_marquardt
+from fitting.lm import FTOL, LAM0, MAX_ITER, XTOL, jacobian, levenberg_marquardt
 from fitting.spec import Fixed, ModelSpec, subset_fixed
 from fitting.uncertainty import sigma_from_residuals, stderr_from_jacobian
 
@@ -57,14 +56,6 @@ LMFIT_BATCH_VOXELS = 256     # per process, lmfit engine
 LMFIT_SERIAL_BELOW = 16      # fewer lmfit fits per process than this run in this process
 BOUND_RTOL = 1e-6
 SIGNAL_FLOOR = 5.0           # peak signal / background σ below which no refit is tried
-
-
-def available_cores() -> int:
-    """Cores this process may run on (the scheduler's affinity mask, e.g. a SLURM job's)."""
-    try:
-        return max(1, len(os.sched_getaffinity(0)))
-    except AttributeError:     # not on Linux
-        return max(1, os.cpu_count() or 1)
 
 
 @dataclass
@@ -105,7 +96,7 @@ def bad_data(spec: ModelSpec, data: np.ndarray, fixed: Fixed) -> np.ndarray:
 def fit_voxels(spec: ModelSpec, x: np.ndarray, data: np.ndarray, fixed: Fixed,
                engine: str = "fast", jobs: int = 1, noise_sigma: float | None = None,
                progress: Callable[[int], None] | None = None,
-               max_iter: int = 60, refit: bool = True) -> VoxelFit:
+               max_iter: int = MAX_ITER, refit: bool = True) -> VoxelFit:
     """Fit ``spec`` to every row of ``data`` (N, M); ``x`` (M,) ascending.
 
     Parameters
