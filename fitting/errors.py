@@ -4,6 +4,9 @@
 error type lives here; `pipeline` and `qc` import it (they may subclass it).
 The command line turns it into a one-paragraph message and exit status 2.
 """
+from __future__ import annotations
+
+import errno
 
 
 class RelaxlineError(ValueError):
@@ -70,6 +73,11 @@ def shorten_message(text: str, limit: int = MESSAGE_CHARS) -> str:
         return text
     half = limit // 2
     return f"{text[:half]} […{len(text) - 2 * half} characters cut…] {text[-half:]}"
+
+
+def is_no_space(exc: BaseException) -> bool:
+    """True for an OSError meaning a full disk or an exhausted quota."""
+    return isinstance(exc, OSError) and exc.errno in (errno.ENOSPC, errno.EDQUOT)
 
 
 def no_space_error(folder: object, clean: bool = True) -> RelaxlineError:

@@ -7,13 +7,12 @@ that ``relaxline --help`` stays fast.
 from __future__ import annotations
 
 import argparse
-import errno
 import importlib
 import os
 import sys
 from typing import Sequence
 
-from fitting.errors import no_space_error, shorten_message
+from fitting.errors import is_no_space, no_space_error, shorten_message
 from pipeline.errors import EXIT_BAD_INPUT, RelaxlineError
 
 # Order is the order shown by --help.
@@ -70,7 +69,7 @@ def main(argv: Sequence[str] | None = None) -> int:
         _say(args.command, "error: out of memory; fit a mask or use smaller chunks")
         return EXIT_BAD_INPUT
     except OSError as exc:
-        if exc.errno in (errno.ENOSPC, errno.EDQUOT):   # a write no writer translated
+        if is_no_space(exc):   # a write no writer translated
             folder = os.path.dirname(exc.filename) if exc.filename else "the output folder"
             _say(args.command, f"error: {no_space_error(folder or '.', clean=False)}")
             return EXIT_BAD_INPUT

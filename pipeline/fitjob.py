@@ -38,8 +38,9 @@ import numpy as np
 from fitting import status as st
 from fitting.background import estimate as estimate_background
 from fitting.background import signal_mask
-from fitting.spec import Fixed, ModelSpec, configure_model, get_model
-from fitting.voxelwise import ENGINES, available_cores, fit_voxels
+from fitting.spec import Fixed, ModelSpec, configure_model, get_model, model_names
+from fitting.voxelwise import ENGINES, fit_voxels
+from pipeline.commands.run import available_cores
 from pipeline import profiles
 from pipeline.errors import InputError, RelaxlineError
 from pipeline.outputs import (map_name, output_set, provenance, refuse_overwriting_inputs,
@@ -47,13 +48,12 @@ from pipeline.outputs import (map_name, output_set, provenance, refuse_overwriti
 from pipeline.series import Series, load_grid_map, read_series, sidecar_path
 from pipeline.t1map import check_t1_map_model, gap_note, load_t1_map, t1_values
 
-# model options of `relaxline fit` -> (flag, models it applies to)
+# model options of `relaxline fit` -> (flag, models it applies to; None: every model)
 MODEL_OPTIONS = {"t1_fixed": ("--t1-fixed", ("mese", "mese-multi", "afi", "dam")),
                  "plateau": ("--plateau", ("mese-mono",)),
                  "skip_echoes": ("--skip-echoes", ("mese-mono",)),
                  "slice_profile": ("--slice-profile", ("mese", "mese-multi")),
-                 "noise": ("--noise", ("ir", "vfa", "dam", "mese", "mese-mono", "megre",
-                                       "looklocker", "sr", "afi", "mp2rage", "mese-multi")),
+                 "noise": ("--noise", None),
                  "ll_correction": ("--ll-correction", ("looklocker",)),
                  "inversion_efficiency": ("--inversion-efficiency", ("mp2rage",)),
                  "short_t2_cutoff": ("--short-t2-cutoff", ("mese-multi",)),
@@ -67,11 +67,18 @@ STATUS_KEY = "desc-fitstatus_mask"
 PARALLEL_WRITE_BYTES = 64 << 20   # maps are compressed in parallel while this is in flight
 
 
+def option_models(opt: str) -> tuple[str, ...]:
+    """The models the option ``opt`` of :data:`MODEL_OPTIONS` applies to."""
+    models = MODEL_OPTIONS[opt][1]
+    return tuple(model_names()) if models is None else models
+
+
 def check_model_options(model: str, options: Mapping[str, Any]) -> None:
     """Refuse a model option (:data:`MODEL_OPTIONS`) given for a model it does not apply to
     (an unknown model is named as such first)."""
     get_model(model)
-    for opt, (flag, models) in MODEL_OPTIONS.items():
+    for opt, (flag, _) in MODEL_OPTIONS.items():
+        models = option_models(opt)
         if options.get(opt) is not None and options.get(opt) is not False \
                 and model not in models:
             which = f"the {models[0]} model" if len(models) == 1 else \
@@ -332,7 +339,7 @@ def output_paths(spec: ModelSpec, series_stem: str, out_dir: str | Path,
     for key in output_keys(spec):
         desc, suffix = _split_key(key)
         p = _map_folder(out_dir, suffix, datatype_folders) / map_name(stem, suffix, desc)
-        paths += [p, p.with_name(p.name[: -len(".nii.gz")] + ".json")]
+        paths += [p, sidecar_path(p)]
     return paths
 
 
@@ -365,9 +372,10 @@ def write_fit_outputs(arrays: Mapping[str, np.ndarray], series: Series, out_dir:
     stem = derivative_stem(series.stem, spec.name)
     what = f"{spec.name} model fitted voxelwise to {series.stem}"
     output_notes = spec.extra.get("output_notes")
-    per_map = output_notes(acquisition(spec, series, options)) if output_notes else {}
+    fixed = acquisition(spec, series, options)
+    per_map = output_notes(fixed) if output_notes else {}
     extra_out = {e.suffix: e for e in spec.extra_outputs.values()}
-    axes = {s: [float(v) for v in e.axis(series.values, acquisition(spec, series, options))]
+    axes = {s: [float(v) for v in e.axis(series.values, fixed)]
             for s, e in extra_out.items() if e.axis is not None}
     paths = []
     with output_set(out_dir, protect=input_files(series, options)):
@@ -377,7 +385,7 @@ def write_fit_outputs(arrays: Mapping[str, np.ndarray], series: Series, out_dir:
                 raise ValueError(f"{key}: array shape {arr.shape} is not the series grid "
                                  f"{series.shape}")
             desc, suffix = _split_key(key)
-            u, extra = _map_sidecar(spec, units, desc, suffix, what, notes, options)
+            u, extra = _map_sidecar(spec, units, desc, suffix, what, notes, options, extra_out)
             if suffix in axes:      # a vector output: the values of its fourth axis
                 e = extra_out[suffix]
                 extra.update({"AxisName": e.axis_name, "AxisUnits": e.axis_unit,
@@ -398,15 +406,14 @@ def write_fit_outputs(arrays: Mapping[str, np.ndarray], series: Series, out_dir:
 
 
 def _map_sidecar(spec: ModelSpec, units: Mapping[str, str], desc: str | None, suffix: str,
-                 what: str, notes: Sequence[str], options: Mapping[str, Any]
-                 ) -> tuple[str, dict[str, Any]]:
+                 what: str, notes: Sequence[str], options: Mapping[str, Any],
+                 extra_out: Mapping[str, Any]) -> tuple[str, dict[str, Any]]:
     """Units and the extra sidecar keys (Description, StatusCodes, ...) of one map.
 
     Descriptions come from the spec where it gives them (``extra_outputs``,
     ``extra["map_descriptions"]``, ``extra["stderr_description"]``)."""
     from pipeline.bidsderiv import QUANTITY, is_parametric
     extra: dict[str, Any] = {"Warnings": list(notes)} if notes else {}
-    extra_out = {e.suffix: e for e in spec.extra_outputs.values()}
     if desc == "fitstatus":
         u = "code"
         extra["StatusCodes"] = {str(c): name for c, name in st.NAMES.items()}
@@ -508,7 +515,7 @@ def fit_command(model: str, inputs: Sequence[str | Path], out: str | Path,
     extra["noise"] = resolve_noise(extra.get("noise"), series, sigma, stream, spec=spec)
     maps = {"b1_map": str(b1) if b1 else None, "t1_map": str(t1_map) if t1_map else None}
     spec = configure_model(spec, {**extra, **maps})
-    fixed = acquisition(spec, series, extra)  # validate the options before any reading
+    fixed = acquisition(spec, series, extra)  # options checked before the masks and maps are read
     extra.update(resolved_options(spec, fixed))
     refuse_overwriting_inputs(input_files(series, {"mask": mask, **maps}),
                               output_paths(spec, series.stem, out, datatype_folders),

@@ -15,7 +15,6 @@ recognised and removed by the next write into that folder (:func:`clean_stale`).
 """
 from __future__ import annotations
 
-import errno
 import gzip
 import io
 import json
@@ -33,7 +32,7 @@ from typing import Any, Iterable, Iterator
 
 import numpy as np
 
-from fitting.errors import no_space_error
+from fitting.errors import is_no_space, no_space_error
 from pipeline.errors import InputError
 
 BIDS_UNITS = {"T1map": "s", "T2map": "s", "T2starmap": "s", "M0map": "arbitrary",
@@ -44,7 +43,6 @@ _TEMP = re.compile(r"\.~(?P<host>[A-Za-z0-9_-]+)~(?P<pid>[0-9]+)~[0-9a-f]+\.tmp$
 # removed once surely abandoned
 _LEGACY_TEMP = re.compile(r"^\..+\.[a-z0-9_]{8}\.tmp$")
 STALE_AFTER_S = 24 * 3600   # no write takes this long: any temporary this old is a leftover
-_NO_SPACE = (errno.ENOSPC, errno.EDQUOT)
 _cleaned: set[str] = set()   # folders already cleaned by this process
 
 
@@ -106,7 +104,7 @@ def _clean_once(folder: Path) -> None:
 
 def _no_space(exc: OSError, folder: Path) -> InputError | None:
     """The user-facing error for a full disk (or quota), else None."""
-    if getattr(exc, "errno", None) in _NO_SPACE:
+    if is_no_space(exc):
         return InputError(str(no_space_error(folder)))
     return None
 

@@ -26,8 +26,8 @@ def _option_keys() -> dict[str, tuple[str, ...]]:
     """Model options a `models.<name>` entry may set -> the models they apply to: the
     options of `relaxline fit` (:data:`pipeline.fitjob.MODEL_OPTIONS`), passed to the fit
     jobs as JSON."""
-    from pipeline.fitjob import MODEL_OPTIONS
-    return {k: models for k, (_, models) in MODEL_OPTIONS.items()}
+    from pipeline.fitjob import MODEL_OPTIONS, option_models
+    return {k: option_models(k) for k in MODEL_OPTIONS}
 
 
 def t1_users() -> list[str]:
@@ -319,7 +319,7 @@ def check_paths(cfg: dict, source: str = "config", create_input: bool = False) -
 
 # what the workflow writes in output_dir (pipeline.workflow's layout)
 _WRITTEN_TOP = {"report.html", "status.json", "trend", "logs", ".snakemake", "history.sqlite"}
-_WRITTEN_IN_SESSION = {"maps", "qc", "chunks"}
+_WRITTEN_IN_SESSION = {"fits", "qc", "chunks"}   # sessions.MANIFEST, QC, sessions.CHUNK
 
 
 def _written_by_workflow(path: Path, out: Path, discovery: dict) -> bool:

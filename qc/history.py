@@ -38,7 +38,7 @@ from urllib.parse import quote
 import numpy as np
 import pandas as pd
 
-from fitting.errors import RelaxlineError, excerpt, no_space_error
+from fitting.errors import RelaxlineError, excerpt, is_no_space, no_space_error
 
 KEY = ("site", "scanner", "session", "model", "series", "map", "label")
 # roi_stats.tsv columns kept in the history (design §6), after the key.
@@ -199,8 +199,7 @@ def _create(path: Path) -> None:
 
 
 def _disk_full(exc: BaseException) -> bool:
-    return isinstance(exc, sqlite3.OperationalError) and "full" in str(exc) or \
-        isinstance(exc, OSError) and exc.errno in (28, 122)   # ENOSPC, EDQUOT
+    return isinstance(exc, sqlite3.OperationalError) and "full" in str(exc) or is_no_space(exc)
 
 
 def connect(path: str | Path, rename_series: SeriesRename | None = None
